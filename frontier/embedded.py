@@ -39,6 +39,8 @@ from types import TracebackType
 from typing import Any
 
 import redis
+from redis.backoff import NoBackoff
+from redis.retry import Retry
 
 from frontier.exceptions import ConfigError, RedisLaunchError
 
@@ -407,6 +409,7 @@ class RedisProcess:
             port=self.port,
             socket_timeout=PING_TIMEOUT_S,
             socket_connect_timeout=PING_TIMEOUT_S,
+            retry=Retry(NoBackoff(), 0),  # this loop is the retry; no client-side backoff
         )
         try:
             return bool(client.ping())

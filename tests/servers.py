@@ -26,6 +26,8 @@ from pathlib import Path
 from types import TracebackType
 
 import redis
+from redis.backoff import NoBackoff
+from redis.retry import Retry
 
 from frontier.embedded import LOOPBACK, RedisProcess, find_server_binary
 from frontier.exceptions import RedisLaunchError
@@ -153,7 +155,9 @@ def find_cli_binary(server_binary: str) -> str:
 
 
 def _cluster_info(port: int) -> dict[str, str]:
-    client = redis.Redis(host=LOOPBACK, port=port, decode_responses=True)
+    client = redis.Redis(
+        host=LOOPBACK, port=port, decode_responses=True, retry=Retry(NoBackoff(), 0)
+    )
     try:
         raw = client.execute_command("CLUSTER", "INFO")
     except redis.RedisError:
