@@ -1,0 +1,162 @@
+"""The one place that builds Redis keys.
+
+A job ``J`` has ``P`` partitions. Every key of partition ``p`` carries the hash tag
+``{J.p}``, so a Lua script that touches one partition touches one Cluster slot. Job-wide
+keys carry ``{J}``. Nobody else concatenates key strings.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+from functools import cached_property
+
+import mmh3
+
+PREFIX = "sluice"
+
+
+def partition_of(politeness_key: str, partitions: int) -> int:
+    """The partition of a politeness key (a host, or a registered domain)."""
+    return mmh3.hash(politeness_key, signed=False) % partitions
+
+
+@dataclass(frozen=True, slots=True)
+class PartitionKeys:
+    """Keys of one partition; per-host keys are methods taking the politeness key."""
+
+    job: str
+    index: int
+
+    @property
+    def tag(self) -> str:
+        return f"{PREFIX}:{{{self.job}.{self.index}}}"
+
+    # fixed keys, one each per partition
+    @property
+    def counts(self) -> str:
+        """HASH state -> count (admitted, queued, leased, fetched, failed, excluded, dead)."""
+        return f"{self.tag}:counts"
+
+    @property
+    def reasons(self) -> str:
+        """HASH 'outcome:reason' -> count."""
+        return f"{self.tag}:reasons"
+
+    @property
+    def due(self) -> str:
+        """ZSET host -> earliest next fetch (ms)."""
+        return f"{self.tag}:due"
+
+    @property
+    def ready(self) -> str:
+        """ZSET host -> priority of its best URL times its boost."""
+        return f"{self.tag}:ready"
+
+    @property
+    def prio(self) -> str:
+        """HASH host -> its current priority (read when a due host becomes ready)."""
+        return f"{self.tag}:prio"
+
+    @property
+    def claims(self) -> str:
+        """ZSET host -> claim expiry (ms): hosts picked by a worker, about to be leased."""
+        return f"{self.tag}:claims"
+
+    @property
+    def leases(self) -> str:
+        """ZSET lease id -> expiry (ms)."""
+        return f"{self.tag}:leases"
+
+    @property
+    def lease_data(self) -> str:
+        """HASH lease id -> 'host\\nscore\\nattempts\\nurl'."""
+        return f"{self.tag}:lease-data"
+
+    @property
+    def attempts(self) -> str:
+        """HASH url -> failed attempts so far (only URLs that failed once)."""
+        return f"{self.tag}:attempts"
+
+    @property
+    def dead(self) -> str:
+        """HASH url -> last error, for URLs past the attempt limit."""
+        return f"{self.tag}:dead"
+
+    @property
+    def hosts(self) -> str:
+        """SET of the politeness keys known in this partition."""
+        return f"{self.tag}:hosts"
+
+    def seen(self, bucket: int) -> str:
+        """SET of 64-bit URL fingerprints (intset encoded: ~8 bytes each)."""
+        return f"{self.tag}:seen:{bucket}"
+
+    # per-host keys
+    def host(self, host: str) -> str:
+        """HASH of one politeness key: state, boost, delays, next fetch, lease, counters."""
+        return f"{self.tag}:host:{host}"
+
+    def hot(self, host: str) -> str:
+        """ZSET url -> score: the host's best queued URLs (listpack encoded)."""
+        return f"{self.tag}:hot:{host}"
+
+    def cold(self, host: str) -> str:
+        """LIST of 'score url': queued URLs beyond the hot window, in arrival order."""
+        return f"{self.tag}:cold:{host}"
+
+    def robots(self, host: str) -> str:
+        """HASH: the shared robots.txt cache entry of one scheme://host:port."""
+        return f"{self.tag}:robots:{host}"
+
+    def robots_lock(self, host: str) -> str:
+        return f"{self.tag}:robots-lock:{host}"
+
+    def linking_hosts(self, host: str) -> str:
+        """HyperLogLog of the other hosts that link to this host (budget growth)."""
+        return f"{self.tag}:in-hosts:{host}"
+
+
+@dataclass(frozen=True)
+class Keys:
+    """All keys of one job."""
+
+    job: str
+    partitions: int
+
+    @cached_property
+    def parts(self) -> tuple[PartitionKeys, ...]:
+        return tuple(PartitionKeys(self.job, p) for p in range(self.partitions))
+
+    def part(self, index: int) -> PartitionKeys:
+        return self.parts[index]
+
+    def part_for(self, politeness_key: str) -> PartitionKeys:
+        return self.parts[partition_of(politeness_key, self.partitions)]
+
+    @property
+    def tag(self) -> str:
+        return f"{PREFIX}:{{{self.job}}}"
+
+    @property
+    def settings(self) -> str:
+        """STRING: the job's settings as JSON (written by the daemon, read by workers)."""
+        return f"{self.tag}:settings"
+
+    @property
+    def budget(self) -> str:
+        """HASH: 'used' = pages fetched + in flight, against the job's page budget."""
+        return f"{self.tag}:budget"
+
+    @property
+    def control(self) -> str:
+        """HASH: job-wide flags (paused, stopping)."""
+        return f"{self.tag}:control"
+
+    def near_dup(self, block: int, value: int) -> str:
+        """SET of SimHash fingerprints sharing one block value (Manku et al. 2007)."""
+        return f"{PREFIX}:{{{self.job}.nd{block}.{value >> 8}}}:nd:{block}:{value}"
+
+    @staticmethod
+    def job_index() -> str:
+        """SET of job names, for listing."""
+        return f"{PREFIX}:jobs"

@@ -1,0 +1,130 @@
+"""Plain values that cross the store's boundary: candidates, leases, outcomes, counts."""
+
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+from enum import StrEnum
+
+# A score packs an URL's cash (OPIC importance, in micro-units) and its link depth:
+# score = round(cash * CASH_SCALE) * DEPTH_SCALE + depth. Integer scores keep Redis
+# listpacks compact; 2**53 bounds cash at about 3.5e7.
+CASH_SCALE = 1_000_000
+DEPTH_SCALE = 256
+MAX_DEPTH = DEPTH_SCALE - 1
+
+
+def encode_score(cash: float, depth: int) -> int:
+    """The sorted-set score of a URL with this cash at this depth (cash >= 1 micro-unit)."""
+    return max(1, round(cash * CASH_SCALE)) * DEPTH_SCALE + min(max(depth, 0), MAX_DEPTH)
+
+
+def encode_credit(cash: float) -> int:
+    """The score increment for extra cash (the depth bits stay as they are)."""
+    return max(0, round(cash * CASH_SCALE)) * DEPTH_SCALE
+
+
+def decode_score(score: float) -> tuple[float, int]:
+    """(cash, depth) of a score."""
+    whole = int(score)
+    return (whole // DEPTH_SCALE) / CASH_SCALE, whole % DEPTH_SCALE
+
+
+class Outcome(StrEnum):
+    """How a lease ends."""
+
+    FETCHED = "fetched"
+    FAILED = "failed"  # final: will not be tried again
+    EXCLUDED = "excluded"  # robots, scope, content policy
+    RETRY = "retry"  # back to the queue with attempts + 1, dead past the limit
+
+
+STATES = ("queued", "leased", "fetched", "failed", "excluded", "dead")
+
+
+@dataclass(frozen=True, slots=True)
+class Candidate:
+    """A URL offered to the frontier: a seed or a discovered link."""
+
+    url: str
+    depth: int = 0
+    cash: float = 1.0  # initial priority of a new URL
+    credit: float = 0.0  # cash added if the URL already waits in its host's queue
+    source_host: str | None = None  # the host of the page that links here
+
+
+@dataclass(frozen=True, slots=True)
+class Lease:
+    """One URL held by one worker until ``expires_ms``."""
+
+    id: str
+    host: str
+    url: str
+    score: int
+    attempts: int
+    expires_ms: int
+
+    @property
+    def partition(self) -> int:
+        return int(self.id.split("-", 1)[0])
+
+    @property
+    def cash(self) -> float:
+        return decode_score(self.score)[0]
+
+    @property
+    def depth(self) -> int:
+        return decode_score(self.score)[1]
+
+
+@dataclass(frozen=True, slots=True)
+class Completion:
+    """The end of one lease."""
+
+    lease: Lease
+    outcome: Outcome
+    reason: str = ""
+    response_s: float = 0.0
+    extra_delay_s: float = 0.0  # Retry-After, backoff
+    crawl_delay_s: float | None = None  # from robots.txt, if known
+
+
+@dataclass
+class AdmitResult:
+    new: int = 0
+    credited: int = 0
+    excluded: int = 0
+    duplicates: int = 0
+
+    def add(self, other: AdmitResult) -> None:
+        self.new += other.new
+        self.credited += other.credited
+        self.excluded += other.excluded
+        self.duplicates += other.duplicates
+
+
+@dataclass
+class Counts:
+    """URLs by state. Invariant: admitted == queued + leased + fetched + failed + excluded + dead."""
+
+    admitted: int = 0
+    queued: int = 0
+    leased: int = 0
+    fetched: int = 0
+    failed: int = 0
+    excluded: int = 0
+    dead: int = 0
+    reasons: dict[str, int] = field(default_factory=dict)
+
+    @property
+    def accounted(self) -> int:
+        return sum(getattr(self, s) for s in STATES)
+
+    @property
+    def balanced(self) -> bool:
+        return self.admitted == self.accounted
+
+    def as_dict(self) -> dict[str, object]:
+        out: dict[str, object] = {"admitted": self.admitted}
+        out.update({s: getattr(self, s) for s in STATES})
+        out["reasons"] = dict(sorted(self.reasons.items()))
+        return out

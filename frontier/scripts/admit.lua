@@ -1,0 +1,91 @@
+-- admit: add a batch of URLs of one partition to the frontier.
+-- KEYS[1] counts   KEYS[2] reasons   KEYS[3] due   KEYS[4] ready   KEYS[5] prio
+-- KEYS[6] claims   KEYS[7] hosts
+-- KEYS[8 ..]       per host group g (0-based): host hash, hot ZSET, cold LIST (3 keys)
+-- then             the URL-seen buckets this batch touches
+-- ARGV[1] now (ms)  ARGV[2] hot capacity  ARGV[3] number of host groups  ARGV[4] excluded count
+-- then per group:  host, budget (0: none), n, and n times: seen slot, fingerprint, score, credit, url
+-- then per excluded URL: seen slot, fingerprint, reason
+-- (a seen slot is a 1-based index into the seen-bucket part of KEYS)
+-- A new URL is queued on its host (or excluded: host blocked, host budget spent); a URL
+-- seen before that still waits in its host's hot window gains `credit` (OPIC cash).
+-- Returns {new, credited, excluded, duplicates}.
+local now = tonumber(ARGV[1])
+local cap = tonumber(ARGV[2])
+local ngroups = tonumber(ARGV[3])
+local nexcl = tonumber(ARGV[4])
+local seen_base = 7 + 3 * ngroups
+local S = {due = KEYS[3], ready = KEYS[4], prio = KEYS[5], claims = KEYS[6]}
+local new, credited, excluded, dups = 0, 0, 0, 0
+local reasons = {}
+
+local function exclude(reason)
+  excluded = excluded + 1
+  reasons[reason] = (reasons[reason] or 0) + 1
+end
+
+local a = 5
+for g = 0, ngroups - 1 do
+  local host, budget, n = ARGV[a], tonumber(ARGV[a + 1]), tonumber(ARGV[a + 2])
+  a = a + 3
+  local hk, hot, cold = KEYS[8 + 3 * g], KEYS[9 + 3 * g], KEYS[10 + 3 * g]
+  local f = redis.call('HMGET', hk, 'state', 'admitted')
+  local state, admitted = f[1], tonumber(f[2] or '0')
+  if not state then
+    state = 'active'
+    redis.call('HSET', hk, 'state', state, 'boost', '1')
+    redis.call('SADD', KEYS[7], host)
+  end
+  local changed = false
+  for _ = 1, n do
+    local slot, fp, score, credit, url = ARGV[a], ARGV[a + 1], ARGV[a + 2], ARGV[a + 3], ARGV[a + 4]
+    a = a + 5
+    if redis.call('SADD', KEYS[seen_base + tonumber(slot)], fp) == 1 then
+      if state == 'blocked' then
+        exclude('host_blocked')
+      elseif budget > 0 and admitted >= budget then
+        exclude('host_budget')
+      else
+        push_url(hot, cold, url, score, cap)
+        admitted = admitted + 1
+        new = new + 1
+        changed = true
+      end
+    else
+      dups = dups + 1
+      if credit ~= '0' and redis.call('ZSCORE', hot, url) then
+        redis.call('ZINCRBY', hot, credit, url)
+        credited = credited + 1
+        changed = true
+      end
+    end
+  end
+  if changed then
+    redis.call('HSET', hk, 'admitted', admitted)
+    schedule(S, host, hk, hot, now)
+  end
+end
+
+for _ = 1, nexcl do
+  local slot, fp, reason = ARGV[a], ARGV[a + 1], ARGV[a + 2]
+  a = a + 3
+  if redis.call('SADD', KEYS[seen_base + tonumber(slot)], fp) == 1 then
+    exclude(reason)
+  else
+    dups = dups + 1
+  end
+end
+
+if new + excluded > 0 then
+  redis.call('HINCRBY', KEYS[1], 'admitted', new + excluded)
+end
+if new > 0 then
+  redis.call('HINCRBY', KEYS[1], 'queued', new)
+end
+if excluded > 0 then
+  redis.call('HINCRBY', KEYS[1], 'excluded', excluded)
+  for reason, count in pairs(reasons) do
+    redis.call('HINCRBY', KEYS[2], 'excluded:' .. reason, count)
+  end
+end
+return {new, credited, excluded, dups}

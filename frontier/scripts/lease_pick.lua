@@ -1,0 +1,29 @@
+-- lease_pick: claim the best hosts of one partition whose next-fetch time has come.
+-- KEYS[1] due   KEYS[2] ready   KEYS[3] prio   KEYS[4] claims
+-- ARGV[1] now (ms)  ARGV[2] how many hosts  ARGV[3] claim expiry (ms)  ARGV[4] promote limit
+-- Stale claims (a picker that died before lease_take) go back to due; due hosts whose
+-- time has come move to ready at their priority; the best ready hosts are claimed.
+-- Returns the claimed hosts, best first. lease_take (with the hosts' keys) leases them.
+local now = tonumber(ARGV[1])
+local stale = redis.call('ZRANGEBYSCORE', KEYS[4], '-inf', now, 'LIMIT', 0, 1000)
+for _, host in ipairs(stale) do
+  redis.call('ZREM', KEYS[4], host)
+  if redis.call('HEXISTS', KEYS[3], host) == 1 then
+    redis.call('ZADD', KEYS[1], 'NX', now, host)
+  end
+end
+local due = redis.call('ZRANGEBYSCORE', KEYS[1], '-inf', now, 'LIMIT', 0, tonumber(ARGV[4]))
+for _, host in ipairs(due) do
+  redis.call('ZREM', KEYS[1], host)
+  local p = redis.call('HGET', KEYS[3], host)
+  if p then
+    redis.call('ZADD', KEYS[2], p, host)
+  end
+end
+local top = redis.call('ZPOPMAX', KEYS[2], tonumber(ARGV[2]))
+local out = {}
+for i = 1, #top, 2 do
+  redis.call('ZADD', KEYS[4], ARGV[3], top[i])
+  out[#out + 1] = top[i]
+end
+return out

@@ -1,0 +1,217 @@
+"""One validated model for a crawl job, read from TOML, ``SLUICE_`` variables and flags.
+
+Precedence, highest first: command-line flags (passed as keyword overrides), then
+environment variables (``SLUICE_FETCH__USER_AGENT=...``, nested with ``__``), then the
+TOML job file, then the defaults below. Every model is frozen. Defaults are polite;
+where a default comes from a published source, the source is named beside it.
+"""
+
+from __future__ import annotations
+
+import tomllib
+from pathlib import Path
+from typing import Any, Literal
+
+from pydantic import BaseModel, ConfigDict, Field, ValidationError, field_validator
+from pydantic_settings import (
+    BaseSettings,
+    PydanticBaseSettingsSource,
+    SettingsConfigDict,
+)
+
+from frontier.exceptions import ConfigError
+
+
+class _Part(BaseModel):
+    model_config = ConfigDict(frozen=True, extra="forbid")
+
+
+class ScopeSettings(_Part):
+    """Which URLs belong to the crawl."""
+
+    allow_hosts: tuple[str, ...] = Field(
+        default=(), description="host patterns ('site.test', '*.site.test'); empty: the seeds' hosts"
+    )
+    allow_all_hosts: bool = Field(default=False, description="follow links to any host")
+    include: tuple[str, ...] = Field(default=(), description="regexes; if any, a URL must match one")
+    exclude: tuple[str, ...] = Field(default=(), description="regexes; a match excludes the URL")
+    max_depth: int | None = Field(default=None, ge=0, description="link hops from a seed")
+    max_url_length: int = Field(default=2048, ge=64, le=65536)
+    schemes: tuple[str, ...] = ("http", "https")
+
+
+class BudgetSettings(_Part):
+    """Bounds on the crawl."""
+
+    max_pages: int | None = Field(default=None, ge=1, description="pages fetched in all")
+    max_pages_per_host: int | None = Field(
+        default=5000, ge=1, description="URLs admitted per politeness key (a trap bound)"
+    )
+
+
+class PolitenessSettings(_Part):
+    """When a host may be fetched again: now + max(crawl-delay, min delay, factor x response time)."""
+
+    key: Literal["host", "domain"] = "host"
+    min_delay_s: float = Field(default=1.0, ge=0.0, description="common practice, no source")
+    # Najork & Heydon, "High-Performance Web Crawling", SRC Research Report 173 (2001):
+    # wait a multiple (10x) of the time the last download from the host took.
+    response_time_factor: float = Field(default=10.0, ge=0.0)
+    max_delay_s: float = Field(default=120.0, ge=0.0, description="cap on the computed gap")
+    crawl_delay_cap_s: float = Field(default=30.0, ge=0.0, description="robots crawl-delay cap")
+    obey_robots: bool = True
+    robots_ttl_s: float = Field(default=86400.0, gt=0, le=86400.0)  # RFC 9309 s.2.4: <= 24 h
+    robots_error_ttl_s: float = Field(default=600.0, gt=0)
+    retry_backoff_s: float = Field(default=30.0, ge=0.0, description="host pause after a retryable error")
+
+
+class LeaseSettings(_Part):
+    """How long a worker may hold a URL, and how often it may fail."""
+
+    ttl_s: float = Field(default=120.0, gt=0)
+    max_attempts: int = Field(default=3, ge=1)
+    batch: int = Field(default=32, ge=1, le=1000)
+
+
+class StoreSettings(_Part):
+    """The Redis layout: fixed when the job is created."""
+
+    partitions: int = Field(default=16, ge=1, le=4096)
+    hot_capacity: int = Field(default=128, ge=8, le=4096, description="URLs per host kept sorted")
+    expected_urls: int = Field(default=2_000_000, ge=1000, description="sizes the URL-seen buckets")
+    seen_bucket_entries: int = Field(default=2048, ge=64, le=8192)
+
+
+class RedisSettings(_Part):
+    url: str | None = Field(default=None, description="none: start the embedded server")
+    socket_timeout_s: float = Field(default=10.0, gt=0)
+
+
+class FetchSettings(_Part):
+    user_agent: str | None = Field(
+        default=None, description="an honest User-Agent with a contact URL (required to crawl)"
+    )
+    concurrency: int = Field(default=32, ge=1, le=4096)
+    connect_timeout_s: float = Field(default=10.0, gt=0)
+    read_timeout_s: float = Field(default=20.0, gt=0)
+    total_timeout_s: float = Field(default=60.0, gt=0)
+    max_body_bytes: int = Field(default=10 * 1024 * 1024, ge=1024)
+    max_decompressed_bytes: int = Field(default=20 * 1024 * 1024, ge=1024)
+    max_header_bytes: int = Field(default=32 * 1024, ge=1024)
+    archive_other_types: bool = Field(default=True, description="archive non-HTML bodies")
+    map_hosts: tuple[str, ...] = Field(default=(), description="'*.test=127.0.0.1[:PORT]' entries")
+    allow_private: bool = Field(default=False, description="allow non-global addresses (unsafe)")
+    follow_nofollow: bool = False
+
+    @field_validator("user_agent")
+    @classmethod
+    def _honest(cls, value: str | None) -> str | None:
+        if value is not None and not any(m in value for m in ("http://", "https://", "@")):
+            raise ValueError("must carry a contact URL or e-mail, e.g. 'name/1.0 (+https://you.test/)'")
+        return value
+
+
+class PrioritySettings(_Part):
+    """Importance estimation (OPIC, Abiteboul, Preda & Cobena, WWW 2003) and its defences."""
+
+    seed_cash: float = Field(default=1.0, gt=0)
+    jump_share: float = Field(default=0.15, ge=0, lt=1, description="cash to the random-jump pool")
+    cross_host_weight: float = Field(default=4.0, ge=1, description="a link to another host counts this much more")
+    host_budget_base: int = Field(default=50, ge=1, description="pages a host may get with no in-links from other hosts")
+    host_budget_per_linking_host: int = Field(default=200, ge=0)
+    trap_depth: int = Field(default=8, ge=1, description="path segments beyond which a URL is penalised")
+    trap_length: int = Field(default=200, ge=16, description="URL length beyond which a URL is penalised")
+    trap_penalty: float = Field(default=0.05, gt=0, le=1)
+
+
+class OutputSettings(_Part):
+    warc_max_bytes: int = Field(default=1_000_000_000, ge=1_000_000)
+    warc_prefix: str = "sluice"
+
+
+class JobSettings(BaseSettings):
+    """A crawl job: everything a daemon and its workers need to agree on."""
+
+    model_config = SettingsConfigDict(
+        env_prefix="SLUICE_", env_nested_delimiter="__", frozen=True, extra="forbid"
+    )
+
+    name: str = Field(default="crawl", pattern=r"^[A-Za-z0-9_.-]{1,64}$")
+    seeds: tuple[str, ...] = ()
+    state_dir: Path = Path(".sluice")
+    scope: ScopeSettings = ScopeSettings()
+    budget: BudgetSettings = BudgetSettings()
+    politeness: PolitenessSettings = PolitenessSettings()
+    lease: LeaseSettings = LeaseSettings()
+    store: StoreSettings = StoreSettings()
+    redis: RedisSettings = RedisSettings()
+    fetch: FetchSettings = FetchSettings()
+    priority: PrioritySettings = PrioritySettings()
+    output: OutputSettings = OutputSettings()
+
+    @classmethod
+    def settings_customise_sources(
+        cls,
+        settings_cls: type[BaseSettings],
+        init_settings: PydanticBaseSettingsSource,
+        env_settings: PydanticBaseSettingsSource,
+        dotenv_settings: PydanticBaseSettingsSource,
+        file_secret_settings: PydanticBaseSettingsSource,
+    ) -> tuple[PydanticBaseSettingsSource, ...]:
+        return (init_settings, env_settings)
+
+    def public_dict(self) -> dict[str, Any]:
+        """The settings as JSON-ready data (stored with the job in Redis)."""
+        return self.model_dump(mode="json")
+
+
+def _merge(base: dict[str, Any], over: dict[str, Any]) -> dict[str, Any]:
+    out = dict(base)
+    for key, value in over.items():
+        if isinstance(value, dict) and isinstance(out.get(key), dict):
+            out[key] = _merge(out[key], value)
+        else:
+            out[key] = value
+    return out
+
+
+def _explain(error: ValidationError, origin: str) -> ConfigError:
+    lines = []
+    for item in error.errors():
+        key = ".".join(str(p) for p in item["loc"]) or "(top)"
+        lines.append(f"{key}: {item['msg']}")
+    return ConfigError(f"invalid settings ({origin}): " + "; ".join(lines))
+
+
+def load_settings(
+    config_file: Path | None = None, overrides: dict[str, Any] | None = None
+) -> JobSettings:
+    """Build the job settings: flags (``overrides``) > ``SLUICE_`` env > TOML file > defaults."""
+    file_data: dict[str, Any] = {}
+    origin = "defaults"
+    if config_file is not None:
+        origin = str(config_file)
+        try:
+            file_data = tomllib.loads(Path(config_file).read_text(encoding="utf-8"))
+        except FileNotFoundError as exc:
+            raise ConfigError(f"{config_file}: no such job file") from exc
+        except tomllib.TOMLDecodeError as exc:
+            raise ConfigError(f"{config_file}: not valid TOML: {exc}") from exc
+    try:
+        env_only = JobSettings()  # reads SLUICE_ variables over defaults
+        env_set = env_only.model_dump(exclude_unset=True)
+    except ValidationError as exc:
+        raise _explain(exc, "environment") from exc
+    data = _merge(_merge(file_data, env_set), overrides or {})
+    try:
+        return JobSettings.model_validate(data)
+    except ValidationError as exc:
+        raise _explain(exc, origin) from exc
+
+
+def settings_from_dict(data: dict[str, Any]) -> JobSettings:
+    """Rebuild settings stored with a job (no environment read)."""
+    try:
+        return JobSettings.model_validate(data)
+    except ValidationError as exc:
+        raise _explain(exc, "stored job") from exc

@@ -1,0 +1,355 @@
+"""The Redis frontier: admit, lease, complete, reap, host controls and counts.
+
+All state changes happen inside the Lua scripts of ``frontier/scripts``, one partition
+per call, with ``now`` passed in. This module groups work by partition, hands every key
+to the scripts, and translates Redis errors into sluice errors.
+"""
+
+from __future__ import annotations
+
+import asyncio
+import contextlib
+import logging
+import math
+import time
+from collections.abc import AsyncIterator, Callable, Iterable, Sequence
+from dataclasses import dataclass, field
+from typing import Any
+
+from redis import exceptions as redis_errors
+
+from frontier.exceptions import LeaseNotHeld, StoreError, StoreUnavailable
+from frontier.keys import Keys, PartitionKeys
+from frontier.model import AdmitResult, Completion, Counts, Lease, Outcome, STATES
+from frontier.scripts import Scripts
+from frontier.settings import JobSettings
+
+log = logging.getLogger(__name__)
+
+HOST_ACTIONS = ("boost", "pause", "resume", "block", "unblock", "delay")
+PROMOTE_LIMIT = 1000  # due hosts moved to ready per lease_pick call
+REAP_BATCH = 500  # expired leases handled per reap call and partition
+CLAIM_TTL_MS = 10_000  # a picked host returns to due if not leased within this time
+
+
+def now_ms(clock: Callable[[], float] = time.time) -> int:
+    return int(clock() * 1000)
+
+
+@contextlib.asynccontextmanager
+async def redis_boundary(what: str) -> AsyncIterator[None]:
+    """Translate redis-py errors into sluice errors."""
+    try:
+        yield
+    except (redis_errors.ConnectionError, redis_errors.TimeoutError, OSError) as exc:
+        raise StoreUnavailable(f"Redis unavailable during {what}: {exc}") from exc
+    except redis_errors.RedisError as exc:
+        raise StoreError(f"Redis error during {what}: {exc}") from exc
+
+
+@dataclass(frozen=True, slots=True)
+class QueuedUrl:
+    """A canonical URL ready for the admit script."""
+
+    url: str
+    fingerprint: int
+    score: int
+    credit: int = 0
+
+
+@dataclass
+class PartitionBatch:
+    """Admissions for one partition: queued URLs by host, and refusals."""
+
+    hosts: dict[str, list[QueuedUrl]] = field(default_factory=dict)
+    budgets: dict[str, int] = field(default_factory=dict)
+    refused: list[tuple[int, str]] = field(default_factory=list)  # (fingerprint, reason)
+
+    def add(self, host: str, item: QueuedUrl) -> None:
+        self.hosts.setdefault(host, []).append(item)
+
+    def __len__(self) -> int:
+        return sum(len(v) for v in self.hosts.values()) + len(self.refused)
+
+
+def seen_buckets(settings: JobSettings) -> int:
+    """URL-seen buckets per partition, sized so each stays a compact intset (3/4 full)."""
+    s = settings.store
+    per_partition = s.expected_urls / s.partitions
+    return max(1, math.ceil(per_partition / (s.seen_bucket_entries * 0.75)))
+
+
+def redis_tuning(settings: JobSettings) -> dict[str, str]:
+    """Server settings that keep the frontier compact (listpack hot windows, intset buckets)."""
+    return {
+        "zset-max-listpack-entries": str(settings.store.hot_capacity),
+        "zset-max-listpack-value": str(settings.scope.max_url_length + 16),
+        "set-max-intset-entries": str(settings.store.seen_bucket_entries),
+    }
+
+
+class FrontierStore:
+    """One job's frontier in Redis (a single server or a Cluster)."""
+
+    def __init__(
+        self,
+        redis: Any,
+        settings: JobSettings,
+        *,
+        clock: Callable[[], float] = time.time,
+    ) -> None:
+        self.redis = redis
+        self.settings = settings
+        self.keys = Keys(settings.name, settings.store.partitions)
+        self.clock = clock
+        self.buckets = seen_buckets(settings)
+        self.scripts = Scripts.register(redis)
+        self._next_partition = 0
+
+    # -- setup ---------------------------------------------------------------------------
+
+    async def tune_server(self) -> bool:
+        """Apply :func:`redis_tuning` with CONFIG SET; False if the server refuses."""
+        try:
+            for name, value in redis_tuning(self.settings).items():
+                await self.redis.config_set(name, value)
+        except redis_errors.RedisError as exc:
+            log.warning("could not tune Redis (%s): memory per URL will be higher", exc)
+            return False
+        return True
+
+    def _now(self, now: int | None) -> int:
+        return now_ms(self.clock) if now is None else now
+
+    def bucket_of(self, fingerprint: int) -> int:
+        return fingerprint % self.buckets
+
+    # -- admit ---------------------------------------------------------------------------
+
+    async def admit_batches(
+        self, batches: dict[int, PartitionBatch], now: int | None = None
+    ) -> AdmitResult:
+        """Run the admit script once per partition, concurrently."""
+        t = self._now(now)
+        calls = [self._admit_one(p, b, t) for p, b in batches.items() if len(b)]
+        total = AdmitResult()
+        async with redis_boundary("admit"):
+            for res in await asyncio.gather(*calls):
+                total.add(res)
+        return total
+
+    async def _admit_one(self, partition: int, batch: PartitionBatch, now: int) -> AdmitResult:
+        pk = self.keys.part(partition)
+        keys: list[str] = [pk.counts, pk.reasons, pk.due, pk.ready, pk.prio, pk.claims, pk.hosts]
+        args: list[Any] = [now, self.settings.store.hot_capacity, len(batch.hosts), len(batch.refused)]
+        slots: dict[int, int] = {}
+        seen_keys: list[str] = []
+
+        def slot(fp: int) -> int:
+            b = fp % self.buckets
+            s = slots.get(b)
+            if s is None:
+                seen_keys.append(pk.seen(b))
+                s = slots[b] = len(seen_keys)
+            return s
+
+        default_budget = self.settings.budget.max_pages_per_host or 0
+        for host, items in batch.hosts.items():
+            keys += (pk.host(host), pk.hot(host), pk.cold(host))
+            args += (host, batch.budgets.get(host, default_budget), len(items))
+            for it in items:
+                args += (slot(it.fingerprint), it.fingerprint, it.score, it.credit, it.url)
+        for fp, reason in batch.refused:
+            args += (slot(fp), fp, reason)
+        new, credited, excluded, dups = await self.scripts.admit(keys + seen_keys, args)
+        return AdmitResult(new, credited, excluded, dups)
+
+    # -- lease ---------------------------------------------------------------------------
+
+    async def lease(self, n: int, now: int | None = None) -> list[Lease]:
+        """Lease up to ``n`` URLs, at most one per politeness key, best hosts first.
+
+        Partitions are asked in turn, starting at a rotating offset, so workers on many
+        machines spread over them.
+        """
+        t = self._now(now)
+        parts = self.settings.store.partitions
+        start = self._next_partition
+        self._next_partition = (start + 1) % parts
+        order = [(start + i) % parts for i in range(parts)]
+        share = max(1, math.ceil(n / parts))
+        leases: list[Lease] = []
+        async with redis_boundary("lease"):
+            picked = await asyncio.gather(*(self._pick(p, share, t) for p in order))
+            got = await asyncio.gather(
+                *(self._take(p, hosts, t) for p, hosts in zip(order, picked) if hosts)
+            )
+            for batch in got:
+                leases += batch
+            # partitions that filled their share may have more: ask them for the rest
+            for p, hosts in zip(order, picked):
+                if len(leases) >= n:
+                    break
+                if len(hosts) == share:
+                    more = await self._pick(p, n - len(leases), t)
+                    if more:
+                        leases += await self._take(p, more, t)
+        return leases
+
+    async def _pick(self, partition: int, n: int, now: int) -> list[str]:
+        pk = self.keys.part(partition)
+        hosts = await self.scripts.lease_pick(
+            [pk.due, pk.ready, pk.prio, pk.claims], [now, n, now + CLAIM_TTL_MS, PROMOTE_LIMIT]
+        )
+        return [h.decode() if isinstance(h, bytes) else h for h in hosts]
+
+    async def _take(self, partition: int, hosts: Sequence[str], now: int) -> list[Lease]:
+        pk = self.keys.part(partition)
+        expires = now + int(self.settings.lease.ttl_s * 1000)
+        keys = [pk.counts, pk.claims, pk.leases, pk.lease_data, pk.attempts, pk.prio]
+        for h in hosts:
+            keys += (pk.host(h), pk.hot(h), pk.cold(h))
+        flat = await self.scripts.lease_take(keys, [expires, partition, len(hosts), *hosts])
+        out = []
+        for i in range(0, len(flat), 5):
+            lid, host, url, score, attempts = (
+                x.decode() if isinstance(x, bytes) else x for x in flat[i : i + 5]
+            )
+            out.append(Lease(lid, host, url, int(float(score)), int(attempts), expires))
+        return out
+
+    # -- complete and reap ---------------------------------------------------------------
+
+    def _outcome_keys(self, pk: PartitionKeys) -> list[str]:
+        return [pk.counts, pk.reasons, pk.leases, pk.lease_data, pk.attempts, pk.dead,
+                pk.due, pk.ready, pk.prio, pk.claims]
+
+    async def complete_many(
+        self, completions: Iterable[Completion], now: int | None = None
+    ) -> list[str]:
+        """End leases; one status per completion, in order: 'ok', 'not_held' or 'expired'."""
+        t = self._now(now)
+        items = list(completions)
+        by_part: dict[int, list[int]] = {}
+        for i, c in enumerate(items):
+            by_part.setdefault(c.lease.partition, []).append(i)
+        statuses = [""] * len(items)
+        async with redis_boundary("complete"):
+            results = await asyncio.gather(
+                *(self._complete_one(p, [items[i] for i in idx], t) for p, idx in by_part.items())
+            )
+        for idx, res in zip(by_part.values(), results):
+            for i, status in zip(idx, res):
+                statuses[i] = status.decode() if isinstance(status, bytes) else status
+        return statuses
+
+    async def complete(self, completion: Completion, now: int | None = None) -> None:
+        """End one lease; raises LeaseNotHeld if it expired or is unknown."""
+        (status,) = await self.complete_many([completion], now)
+        if status != "ok":
+            raise LeaseNotHeld(f"lease {completion.lease.id} for {completion.lease.url}: {status}")
+
+    async def _complete_one(self, partition: int, items: list[Completion], now: int) -> list[Any]:
+        pk = self.keys.part(partition)
+        pol = self.settings.politeness
+        keys = self._outcome_keys(pk)
+        args: list[Any] = [
+            now, self.settings.store.hot_capacity, self.settings.lease.max_attempts,
+            int(pol.min_delay_s * 1000), pol.response_time_factor, int(pol.max_delay_s * 1000),
+            len(items),
+        ]
+        for c in items:
+            h = c.lease.host
+            keys += (pk.host(h), pk.hot(h), pk.cold(h))
+            crawl = "" if c.crawl_delay_s is None else int(
+                min(c.crawl_delay_s, pol.crawl_delay_cap_s) * 1000)
+            args += (c.lease.id, c.outcome.value, c.reason or "none", int(c.response_s * 1000),
+                     int(c.extra_delay_s * 1000), crawl)
+        result: list[Any] = await self.scripts.complete(keys, args)
+        return result
+
+    async def reap(self, now: int | None = None) -> dict[str, int]:
+        """Return expired leases to their hosts; counts of 'requeued', 'dead', 'excluded'."""
+        t = self._now(now)
+        totals: dict[str, int] = {}
+        async with redis_boundary("reap"):
+            for pk in self.keys.parts:
+                ids = await self.redis.zrangebyscore(pk.leases, "-inf", f"({t}", 0, REAP_BATCH)
+                if not ids:
+                    continue
+                data = await self.redis.hmget(pk.lease_data, ids)
+                keys = self._outcome_keys(pk)
+                live: list[Any] = []
+                for lid, d in zip(ids, data):
+                    if d is None:
+                        continue
+                    host = (d.decode() if isinstance(d, bytes) else d).split("\n", 1)[0]
+                    keys += (pk.host(host), pk.hot(host), pk.cold(host))
+                    live.append(lid)
+                s = self.settings
+                flat = await self.scripts.reap(
+                    keys, [t, s.store.hot_capacity, s.lease.max_attempts, len(live), *live])
+                for result in flat[1::2]:
+                    r = result.decode() if isinstance(result, bytes) else result
+                    totals[r] = totals.get(r, 0) + 1
+        return totals
+
+    # -- operator controls -----------------------------------------------------------------
+
+    async def control(self, host: str, action: str, value: float | None = None,
+                      now: int | None = None) -> str:
+        """Apply an operator's action to one politeness key; returns its state."""
+        if action not in HOST_ACTIONS:
+            raise StoreError(f"unknown host action {action!r}; expected one of {HOST_ACTIONS}")
+        if action in ("boost", "delay") and (value is None or value < 0):
+            raise StoreError(f"{action} needs a value >= 0")
+        arg = "" if value is None else (str(int(value * 1000)) if action == "delay" else repr(value))
+        pk = self.keys.part_for(host)
+        keys = [pk.counts, pk.reasons, pk.due, pk.ready, pk.prio, pk.claims, pk.hosts,
+                pk.host(host), pk.hot(host), pk.cold(host)]
+        async with redis_boundary("control"):
+            state = await self.scripts.control(keys, [self._now(now), host, action, arg])
+        return state.decode() if isinstance(state, bytes) else str(state)
+
+    # -- reading ---------------------------------------------------------------------------
+
+    async def counts(self) -> Counts:
+        """URLs by state, summed over partitions."""
+        out = Counts()
+        async with redis_boundary("counts"):
+            rows = await asyncio.gather(
+                *(self.redis.hgetall(pk.counts) for pk in self.keys.parts),
+                *(self.redis.hgetall(pk.reasons) for pk in self.keys.parts),
+            )
+        parts = self.settings.store.partitions
+        for row in rows[:parts]:
+            for k, v in row.items():
+                name = k.decode() if isinstance(k, bytes) else k
+                if name == "admitted" or name in STATES:
+                    setattr(out, name, getattr(out, name) + int(v))
+        for row in rows[parts:]:
+            for k, v in row.items():
+                name = k.decode() if isinstance(k, bytes) else k
+                out.reasons[name] = out.reasons.get(name, 0) + int(v)
+        return out
+
+    async def host_info(self, host: str) -> dict[str, Any]:
+        """The stored fields of one politeness key plus its queue length and schedule."""
+        pk = self.keys.part_for(host)
+        async with redis_boundary("host info"):
+            fields = await self.redis.hgetall(pk.host(host))
+            hot = await self.redis.zcard(pk.hot(host))
+            cold = await self.redis.llen(pk.cold(host))
+            due = await self.redis.zscore(pk.due, host)
+            ready = await self.redis.zscore(pk.ready, host)
+        info: dict[str, Any] = {
+            (k.decode() if isinstance(k, bytes) else k): (v.decode() if isinstance(v, bytes) else v)
+            for k, v in fields.items()
+        }
+        info.update(queued=hot + cold, due_ms=due, ready_priority=ready)
+        return info
+
+    async def is_drained(self) -> bool:
+        """True when nothing is queued or leased."""
+        c = await self.counts()
+        return c.queued == 0 and c.leased == 0

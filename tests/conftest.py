@@ -1,0 +1,98 @@
+"""Shared fixtures: real Redis servers (one standalone, one 3-master Cluster) per session."""
+
+from __future__ import annotations
+
+from collections.abc import AsyncIterator, Callable, Iterator
+from typing import Any
+
+import pytest
+import redis.asyncio as aioredis
+from redis.asyncio.cluster import ClusterNode, RedisCluster as AsyncRedisCluster
+
+from frontier.settings import JobSettings
+from frontier.store import FrontierStore, redis_tuning
+from tests.servers import RedisCluster, RedisServer
+
+TUNING = redis_tuning(JobSettings())
+
+
+@pytest.fixture(scope="session")
+def redis_server() -> Iterator[RedisServer]:
+    server = RedisServer(config=TUNING, appendonly=False).start()
+    yield server
+    server.close()
+
+
+@pytest.fixture(scope="session")
+def redis_cluster() -> Iterator[RedisCluster]:
+    cluster = RedisCluster(config=TUNING, appendonly=False).start()
+    yield cluster
+    cluster.close()
+
+
+async def flushed_client(kind: str, request: pytest.FixtureRequest) -> Any:
+    if kind == "single":
+        server: RedisServer = request.getfixturevalue("redis_server")
+        client: Any = aioredis.Redis.from_url(server.url)
+        await client.flushall()
+        return client
+    cluster: RedisCluster = request.getfixturevalue("redis_cluster")
+    client = AsyncRedisCluster(startup_nodes=[ClusterNode(h, p) for h, p in cluster.startup_nodes])
+    await client.flushall(target_nodes=AsyncRedisCluster.PRIMARIES)
+    return client
+
+
+@pytest.fixture(params=["single", "cluster"])
+async def redis_client(request: pytest.FixtureRequest) -> AsyncIterator[Any]:
+    """A flushed client, once on the standalone server and once on the Cluster."""
+    client = await flushed_client(request.param, request)
+    yield client
+    await client.aclose()
+
+
+@pytest.fixture
+async def single_client(request: pytest.FixtureRequest) -> AsyncIterator[Any]:
+    client = await flushed_client("single", request)
+    yield client
+    await client.aclose()
+
+
+class Clock:
+    """A clock the tests move by hand (seconds)."""
+
+    def __init__(self, start: float = 1_000_000.0) -> None:
+        self.t = start
+
+    def __call__(self) -> float:
+        return self.t
+
+    def advance(self, seconds: float) -> None:
+        self.t += seconds
+
+    @property
+    def ms(self) -> int:
+        return int(self.t * 1000)
+
+
+@pytest.fixture
+def clock() -> Clock:
+    return Clock()
+
+
+StoreFactory = Callable[..., FrontierStore]
+
+
+@pytest.fixture
+def make_store(redis_client: Any, clock: Clock) -> StoreFactory:
+    """Build a FrontierStore on the parametrised backend with settings overrides."""
+
+    def build(**overrides: Any) -> FrontierStore:
+        data: dict[str, Any] = {"name": "t", "store": {"partitions": 4}}
+        for key, value in overrides.items():
+            if isinstance(value, dict):
+                data.setdefault(key, {}).update(value)
+            else:
+                data[key] = value
+        return FrontierStore(redis_client, JobSettings.model_validate(data), clock=clock)
+
+    return build

@@ -1,0 +1,195 @@
+"""The Redis frontier against a real redis-server and a real 3-master Cluster.
+
+Time is injected (tests move the clock), so nothing sleeps for politeness.
+"""
+
+from __future__ import annotations
+
+from typing import Any
+
+import pytest
+
+from frontier.admission import Admission
+from frontier.exceptions import LeaseNotHeld, StoreError
+from frontier.model import Candidate, Completion, Outcome
+from frontier.store import FrontierStore
+from frontier.urls import Scope
+from tests.conftest import Clock, StoreFactory
+
+
+def admission(store: FrontierStore) -> Admission:
+    return Admission(store, Scope(allow=[], include=[], exclude=[], max_depth=None))
+
+
+async def admit(store: FrontierStore, *urls: str, cash: float = 1.0, depth: int = 0) -> Any:
+    return await admission(store).admit([Candidate(u, depth=depth, cash=cash) for u in urls])
+
+
+async def lease_all(store: FrontierStore, n: int = 100) -> list[Any]:
+    return await store.lease(n)
+
+
+def done(lease: Any, outcome: Outcome = Outcome.FETCHED, **kw: Any) -> Completion:
+    return Completion(lease, outcome, **kw)
+
+
+async def test_one_lease_per_host_and_next_fetch_time(make_store: StoreFactory, clock: Clock) -> None:
+    store = make_store(politeness={"min_delay_s": 2.0, "response_time_factor": 10.0})
+    await admit(store, *(f"http://a.test/{i}" for i in range(5)), *(f"http://b.test/{i}" for i in range(5)))
+    first = await store.lease(10)
+    assert sorted(lease.host for lease in first) == ["a.test", "b.test"]  # one per host
+    assert await store.lease(10) == []  # both hosts are held
+    await store.complete_many([done(x, response_s=0.5) for x in first])
+    # next fetch = now + max(min delay 2 s, 10 x 0.5 s) = now + 5 s (Najork & Heydon 2001 factor)
+    clock.advance(4.9)
+    assert await store.lease(10) == []
+    clock.advance(0.2)
+    again = await store.lease(10)
+    assert sorted(lease.host for lease in again) == ["a.test", "b.test"]
+
+
+async def test_best_url_first_and_best_host_first(make_store: StoreFactory, clock: Clock) -> None:
+    store = make_store(politeness={"min_delay_s": 0.0, "response_time_factor": 0.0})
+    await admit(store, "http://a.test/low", cash=1.0)
+    await admit(store, "http://a.test/high", cash=5.0)
+    await admit(store, "http://b.test/mid", cash=3.0)
+    (first,) = await store.lease(1)
+    assert (first.host, first.url) == ("a.test", "http://a.test/high")
+    (second,) = await store.lease(1)
+    assert second.url == "http://b.test/mid"
+    await store.complete_many([done(first), done(second)])
+    (third,) = await store.lease(1)
+    assert third.url == "http://a.test/low"
+
+
+async def test_boost_reorders_hosts_at_once(make_store: StoreFactory, clock: Clock) -> None:
+    store = make_store(store={"partitions": 1})
+    await admit(store, "http://a.test/x", cash=2.0)
+    await admit(store, "http://b.test/x", cash=1.0)
+    await store.control("b.test", "boost", 10.0)
+    (first,) = await store.lease(1)
+    assert first.host == "b.test"
+
+
+async def test_canonical_equal_urls_admitted_once(make_store: StoreFactory) -> None:
+    store = make_store()
+    # RFC 3986 section 6.2.2: case, percent-encoding and dot-segment normalisation;
+    # section 6.2.3: default port and empty path.
+    variants = [
+        "http://a.test/b/c/%7Efoo",
+        "HTTP://A.TEST/b/c/%7efoo",
+        "http://a.test/b/./c/../c/~foo",
+        "http://a.test:80/b/c/~foo",
+        "http://a.test/b/c/~foo#frag",  # fragment dropped: common practice, no source
+    ]
+    res = await admit(store, *variants)
+    assert (res.new, res.duplicates) == (1, 4)
+    res = await admit(store, "http://a.test", "http://a.test:80/", "http://a.test/?")
+    # "http://a.test/?" is not equivalent to "http://a.test/" (RFC 3986 section 6.2.3)
+    assert (res.new, res.duplicates) == (2, 1)
+
+
+async def test_known_queued_url_gains_priority(make_store: StoreFactory) -> None:
+    store = make_store(store={"partitions": 1})
+    await admit(store, "http://a.test/x", "http://a.test/y", cash=1.0)
+    res = await admission(store).admit([Candidate("http://a.test/x", credit=3.0)])
+    assert res.credited == 1
+    (lease,) = await store.lease(1)
+    assert lease.url == "http://a.test/x" and lease.cash == pytest.approx(4.0)
+
+
+async def test_bad_urls_end_excluded_with_reason(make_store: StoreFactory) -> None:
+    store = make_store()
+    res = await admit(store, "http://", "ftp://a.test/file", "http://a.test/" + "x" * 3000,
+                      "javascript:alert(1)", "http://a.test/ok")
+    assert res.new == 1 and res.excluded == 4
+    counts = await store.counts()
+    assert counts.balanced and counts.excluded == 4
+    assert counts.reasons["excluded:url_too_long"] == 1
+    assert counts.reasons["excluded:url_scheme"] == 2
+    assert counts.reasons["excluded:url_malformed"] == 1
+
+
+async def test_lease_expiry_attempts_dead_letter(make_store: StoreFactory, clock: Clock) -> None:
+    store = make_store(lease={"ttl_s": 10.0, "max_attempts": 2},
+                       politeness={"min_delay_s": 0.0, "response_time_factor": 0.0})
+    await admit(store, "http://a.test/x")
+    (lease,) = await store.lease(1)
+    clock.advance(11)
+    with pytest.raises(LeaseNotHeld):  # expired, not yet reaped: refused
+        await store.complete(done(lease))
+    assert await store.reap() == {"requeued": 1}
+    with pytest.raises(LeaseNotHeld):  # reaped: unknown
+        await store.complete(done(lease))
+    (again,) = await store.lease(1)
+    assert again.url == lease.url and again.attempts == 1
+    clock.advance(11)
+    assert await store.reap() == {"dead": 1}
+    counts = await store.counts()
+    assert (counts.dead, counts.queued, counts.leased) == (1, 0, 0) and counts.balanced
+    assert counts.reasons["dead:lease_expired"] == 1
+
+
+async def test_retry_outcome_and_final_failure(make_store: StoreFactory, clock: Clock) -> None:
+    store = make_store(lease={"max_attempts": 3},
+                       politeness={"min_delay_s": 0.0, "response_time_factor": 0.0})
+    await admit(store, "http://a.test/x", "http://b.test/y")
+    leases = await store.lease(2)
+    by_host = {x.host: x for x in leases}
+    await store.complete_many([
+        done(by_host["a.test"], Outcome.RETRY, reason="http_503", extra_delay_s=30.0),
+        done(by_host["b.test"], Outcome.FAILED, reason="http_404"),
+    ])
+    clock.advance(29)
+    assert await store.lease(2) == []  # Retry-After holds the host back
+    clock.advance(2)
+    (retry,) = await store.lease(2)
+    assert retry.url == "http://a.test/x" and retry.attempts == 1
+    counts = await store.counts()
+    assert counts.failed == 1 and counts.reasons["failed:http_404"] == 1 and counts.balanced
+
+
+async def test_pause_resume_block_delay(make_store: StoreFactory, clock: Clock) -> None:
+    store = make_store(politeness={"min_delay_s": 0.0, "response_time_factor": 0.0})
+    await admit(store, "http://a.test/1", "http://a.test/2", "http://b.test/1")
+    assert await store.control("a.test", "pause") == "paused"
+    assert [x.host for x in await store.lease(5)] == ["b.test"]
+    assert await store.control("a.test", "resume") == "active"
+    (a1,) = await store.lease(5)
+    assert a1.host == "a.test"
+    await store.control("a.test", "delay", 60.0)
+    await store.complete(done(a1))
+    clock.advance(59)
+    assert [x.host for x in await store.lease(5)] == []
+    clock.advance(2)
+    (a2,) = await store.lease(5)
+    await store.complete(done(a2, Outcome.RETRY, reason="timeout"))
+    assert await store.control("a.test", "block") == "blocked"
+    clock.advance(120)
+    assert await store.lease(5) == []
+    res = await admit(store, "http://a.test/new")
+    assert res.excluded == 1
+    counts = await store.counts()
+    assert counts.balanced and counts.reasons["excluded:host_blocked"] == 2
+    with pytest.raises(StoreError):
+        await store.control("a.test", "explode")
+
+
+async def test_script_cache_flush_changes_nothing(make_store: StoreFactory, redis_client: Any) -> None:
+    store = make_store()
+    await admit(store, "http://a.test/1", "http://b.test/1")
+    await redis_client.script_flush()  # on a Cluster, redis-py sends it to every primary
+    assert not any(await redis_client.script_exists(store.scripts.lease_pick.sha))
+    leases = await store.lease(5)
+    assert len(leases) == 2
+    await store.complete_many([done(x) for x in leases])
+    counts = await store.counts()
+    assert counts.fetched == 2 and counts.balanced
+
+
+async def test_host_budget_excludes_beyond(make_store: StoreFactory) -> None:
+    store = make_store(budget={"max_pages_per_host": 3})
+    res = await admit(store, *(f"http://a.test/{i}" for i in range(5)))
+    assert (res.new, res.excluded) == (3, 2)
+    counts = await store.counts()
+    assert counts.reasons["excluded:host_budget"] == 2 and counts.balanced
