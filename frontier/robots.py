@@ -1,0 +1,409 @@
+"""robots.txt policy (RFC 9309), parsed by protego and shared by all workers through Redis.
+
+One fetch per host per TTL for the whole crawl: :class:`RobotsCache` reads the host's
+entry from Redis, and only on a miss fetches ``/robots.txt`` under a short Redis lock
+(``SET NX PX``) while other workers poll for the entry the lock holder writes. Parsed
+rules are kept in a small in-process LRU until the entry expires.
+
+Outcome of a fetch (RFC 9309 s.2.3.1):
+
+* 2xx: the body's rules (``state == "rules"``), at most ``max_bytes`` parsed (s.2.5).
+* 3xx left over after the fetcher followed its redirects (s.2.3.1.2), and 4xx:
+  "unavailable", everything allowed (s.2.3.1.3). 429 is the exception, see below.
+* 5xx, 429 or unreachable: "unreachable", everything disallowed (s.2.3.1.4); such
+  entries expire after ``error_ttl_s`` so the host is tried again sooner.
+
+Matching deviates from protego in two places, so that the RFC wins:
+
+* a group applies only if its name equals the product token, case-insensitively
+  (s.2.2.1); protego would also apply a group named ``foo`` to ``foobot``;
+* in the query, ``%2F`` and ``/`` are the same octet for matching (s.2.2.2 table:
+  ``/foo/bar?baz=https://foo.bar`` matches ``...?baz=https%3A%2F%2Ffoo.bar``); protego
+  keeps them apart, so both rule values and URLs get ``%2F`` decoded after the ``?``.
+"""
+
+from __future__ import annotations
+
+import asyncio
+import logging
+import re
+import secrets
+import time
+import zlib
+from collections import OrderedDict
+from collections.abc import Awaitable, Callable
+from dataclasses import dataclass
+from typing import Any
+from urllib.parse import urlsplit
+
+from protego import Protego
+from redis.exceptions import ConnectionError as RedisConnectionError
+from redis.exceptions import RedisError
+from redis.exceptions import TimeoutError as RedisTimeoutError
+
+from frontier.exceptions import ConfigError, SluiceError, StoreError, StoreUnavailable
+
+log = logging.getLogger(__name__)
+
+STATE_RULES = "rules"
+STATE_ALLOW_ALL = "allow_all"
+STATE_DISALLOW_ALL = "disallow_all"
+
+ROBOTS_PATH = "/robots.txt"
+MAX_TTL_S = 86400.0  # RFC 9309 s.2.4: SHOULD NOT use a cached copy for more than 24 hours
+DEFAULT_TTL_S = MAX_TTL_S
+DEFAULT_ERROR_TTL_S = 600.0  # common practice, no source: retry an unreachable host sooner
+DEFAULT_CRAWL_DELAY_CAP_S = 30.0
+MIN_PARSE_BYTES = 500 * 1024  # RFC 9309 s.2.5: parse at least 500 KiB
+DEFAULT_MAX_BYTES = 512 * 1024
+DEFAULT_LRU_ENTRIES = 10_000
+COMPRESS_MIN_BYTES = 2048  # bodies at least this long are stored zlib-compressed
+ZLIB_LEVEL = 6
+LOCK_TTL_S = 90.0  # longer than a whole robots fetch with its redirects
+LOCK_WAIT_S = 30.0  # then fetch anyway rather than stall behind a dead lock holder
+POLL_FIRST_S = 0.02
+POLL_MAX_S = 0.5
+MS_PER_S = 1000
+
+HTTP_OK_MIN, HTTP_REDIRECT_MIN, HTTP_CLIENT_ERROR_MIN, HTTP_SERVER_ERROR_MIN = 200, 300, 400, 500
+HTTP_STATUS_END = 600
+HTTP_TOO_MANY_REQUESTS = 429  # common practice, no source: a rate limit is not "unavailable"
+
+ENCODING_ZLIB = "zlib"
+ENCODING_IDENTITY = "identity"
+ENTRY_VERSION = "1"
+
+_PRODUCT_TOKEN = re.compile(r"[A-Za-z_-]+")  # RFC 9309 s.2.2.1: product-token characters
+_USER_AGENT_LINE = re.compile(r"^\s*user[-\s]?agent\s*(?::|\s)(?P<value>[^#]*)", re.IGNORECASE)
+_ENCODED_SLASH = re.compile("%2F", re.IGNORECASE)
+
+# KEYS[1] lock key, ARGV[1] our token: delete the lock only if we still hold it.
+_RELEASE_LOCK = """
+if redis.call('GET', KEYS[1]) == ARGV[1] then return redis.call('DEL', KEYS[1]) end
+return 0
+"""
+
+
+def product_token(user_agent: str) -> str:
+    """The first product token of a User-Agent: ``"sluice/0.1 (+...)"`` -> ``"sluice"``."""
+    match = _PRODUCT_TOKEN.match(user_agent.strip())
+    if match is None:
+        raise ConfigError(f"user_agent {user_agent!r}: does not start with a product token")
+    return match.group(0)
+
+
+def robots_url(scheme_host_port: str) -> str:
+    """``http://site.test:8401`` -> ``http://site.test:8401/robots.txt``."""
+    return scheme_host_port.rstrip("/") + ROBOTS_PATH
+
+
+def state_for_status(status: int | None) -> str:
+    """RFC 9309 s.2.3.1: which policy a robots.txt fetch outcome stands for."""
+    if status is None or status == HTTP_TOO_MANY_REQUESTS:
+        return STATE_DISALLOW_ALL
+    if HTTP_OK_MIN <= status < HTTP_REDIRECT_MIN:
+        return STATE_RULES
+    if HTTP_REDIRECT_MIN <= status < HTTP_SERVER_ERROR_MIN:
+        return STATE_ALLOW_ALL
+    return STATE_DISALLOW_ALL  # 5xx, and anything outside 2xx-5xx
+
+
+def truncate_body(body: bytes, max_bytes: int) -> bytes:
+    """At most ``max_bytes``, cut after the last whole line so no rule is half read."""
+    if len(body) <= max_bytes:
+        return body
+    head = body[:max_bytes]
+    cut = max(head.rfind(b"\n"), head.rfind(b"\r"))
+    return head[: cut + 1] if cut >= 0 else b""
+
+
+def _decode_query_slashes(text: str) -> str:
+    """``%2F`` -> ``/`` after the first ``?`` (RFC 9309 s.2.2.2 table, query rows)."""
+    head, sep, query = text.partition("?")
+    return head + sep + _ENCODED_SLASH.sub("/", query) if sep else text
+
+
+def _group_names(text: str) -> set[str]:
+    """Lower-cased user-agent values of every group, as protego records them."""
+    names: set[str] = set()
+    for line in text.splitlines():
+        match = _USER_AGENT_LINE.match(line)
+        if match:
+            value = match.group("value").strip().lower()
+            names.update(name for name in (value, value.replace("*", "")) if name)
+    return names
+
+
+@dataclass(frozen=True)
+class RobotsFetchResult:
+    """What the fetcher got for ``/robots.txt`` after redirects; ``status=None``: unreachable."""
+
+    status: int | None
+    body: bytes = b""
+    error: str | None = None
+
+
+class RobotsRules:
+    """The robots.txt policy of one host for one product token."""
+
+    def __init__(
+        self,
+        state: str,
+        *,
+        parser: Protego | None = None,
+        agent: str = "*",
+        crawl_delay_s: float | None = None,
+    ) -> None:
+        if state not in (STATE_RULES, STATE_ALLOW_ALL, STATE_DISALLOW_ALL):
+            raise ValueError(f"unknown robots state {state!r}")
+        self.state = state
+        self._parser = parser
+        self._agent = agent
+        self._crawl_delay_s = crawl_delay_s
+
+    @classmethod
+    def from_entry(
+        cls,
+        status: int | None,
+        body: bytes,
+        *,
+        user_agent: str,
+        crawl_delay_cap_s: float = DEFAULT_CRAWL_DELAY_CAP_S,
+        max_bytes: int = DEFAULT_MAX_BYTES,
+    ) -> RobotsRules:
+        """Parse a fetch outcome; never raises on the body's content."""
+        state = state_for_status(status)
+        if state != STATE_RULES:
+            return cls(state)
+        text = truncate_body(body, max_bytes).decode("utf-8-sig", errors="replace")
+        lines = [_decode_query_slashes(line) if "?" in line else line for line in text.splitlines()]
+        text = "\n".join(lines)
+        try:
+            parser = Protego.parse(text)
+        except Exception:  # noqa: BLE001 - a hostile body must not stop the crawl
+            log.warning("robots.txt could not be parsed; treating it as empty", exc_info=True)
+            parser = Protego.parse("")
+        token = product_token(user_agent)
+        agent = token if token.lower() in _group_names(text) else "*"
+        delay = parser.crawl_delay(agent)
+        capped = None if delay is None else min(delay, crawl_delay_cap_s)
+        return cls(STATE_RULES, parser=parser, agent=agent, crawl_delay_s=capped)
+
+    def allowed(self, url: str) -> bool:
+        """May ``url`` (absolute, on this host) be fetched? ``/robots.txt`` always may."""
+        if urlsplit(url).path == ROBOTS_PATH:  # RFC 9309 s.2.2.2: implicitly allowed
+            return True
+        if self.state == STATE_ALLOW_ALL:
+            return True
+        if self.state == STATE_DISALLOW_ALL or self._parser is None:
+            return False
+        return self._parser.can_fetch(_decode_query_slashes(url.partition("#")[0]), self._agent)
+
+    def crawl_delay(self) -> float | None:
+        """Seconds between fetches asked by Crawl-delay (not in RFC 9309), capped; or None."""
+        return self._crawl_delay_s
+
+
+@dataclass(frozen=True)
+class _Entry:
+    status: int | None
+    body: bytes
+    error: str
+    fetched_at: float
+    expires_at: float
+
+
+def _as_text(value: Any) -> str:
+    return value.decode() if isinstance(value, bytes) else str(value)
+
+
+def _translate(exc: RedisError) -> SluiceError:
+    if isinstance(exc, (RedisConnectionError, RedisTimeoutError)):
+        return StoreUnavailable(f"robots cache: {exc}")
+    return StoreError(f"robots cache: {exc}")
+
+
+class RobotsCache:
+    """robots.txt rules per ``scheme://host:port``, fetched once per TTL for all workers.
+
+    ``redis`` is a ``redis.asyncio`` client (standalone or Cluster) returning bytes
+    (``decode_responses=False``). ``fetch(robots_url)`` follows up to 5 redirects
+    (RFC 9309 s.2.3.1.2) and returns a :class:`RobotsFetchResult`; a ``SluiceError`` it
+    raises counts as unreachable.
+    """
+
+    def __init__(
+        self,
+        redis: Any,
+        key_for_host: Callable[[str], str],
+        fetch: Callable[[str], Awaitable[RobotsFetchResult]],
+        *,
+        user_agent: str,
+        ttl_s: float = DEFAULT_TTL_S,
+        error_ttl_s: float = DEFAULT_ERROR_TTL_S,
+        crawl_delay_cap_s: float = DEFAULT_CRAWL_DELAY_CAP_S,
+        max_bytes: int = DEFAULT_MAX_BYTES,
+        clock: Callable[[], float] = time.time,
+        lock_key_for_host: Callable[[str], str] | None = None,
+        lru_entries: int = DEFAULT_LRU_ENTRIES,
+        lock_ttl_s: float = LOCK_TTL_S,
+        lock_wait_s: float = LOCK_WAIT_S,
+        sleep: Callable[[float], Awaitable[None]] = asyncio.sleep,
+    ) -> None:
+        if not 0 < ttl_s <= MAX_TTL_S:
+            raise ConfigError(f"ttl_s {ttl_s}: must be in (0, {MAX_TTL_S}] (RFC 9309 s.2.4)")
+        if error_ttl_s <= 0:
+            raise ConfigError(f"error_ttl_s {error_ttl_s}: must be positive")
+        if max_bytes < MIN_PARSE_BYTES:
+            raise ConfigError(
+                f"max_bytes {max_bytes}: RFC 9309 s.2.5 asks for >= {MIN_PARSE_BYTES}"
+            )
+        encoder = getattr(redis, "get_encoder", None)
+        if encoder is not None and getattr(encoder(), "decode_responses", False):
+            raise ConfigError("robots cache: the Redis client must use decode_responses=False")
+        self._redis = redis
+        self._key = key_for_host
+        self._lock_key = lock_key_for_host or (lambda host: key_for_host(host) + ":lock")
+        self._fetch = fetch
+        self._user_agent = user_agent
+        product_token(user_agent)  # fail early on a User-Agent without a product token
+        self._ttl_s = ttl_s
+        self._error_ttl_s = error_ttl_s
+        self._delay_cap_s = crawl_delay_cap_s
+        self._max_bytes = max_bytes
+        self._clock = clock
+        self._lru_entries = lru_entries
+        self._lock_ttl_ms = int(lock_ttl_s * MS_PER_S)
+        self._lock_wait_s = lock_wait_s
+        self._sleep = sleep
+        self._lru: OrderedDict[str, tuple[RobotsRules, float]] = OrderedDict()
+        self._inflight: dict[str, asyncio.Future[RobotsRules]] = {}
+
+    async def rules_for(self, scheme_host_port: str) -> RobotsRules:
+        """The rules of ``scheme://host[:port]``; fetches only if no live entry exists."""
+        origin = scheme_host_port.rstrip("/")
+        cached = self._lru.get(origin)
+        if cached is not None and cached[1] > self._clock():
+            self._lru.move_to_end(origin)
+            return cached[0]
+        pending = self._inflight.get(origin)
+        if pending is None:
+            pending = asyncio.ensure_future(self._load(origin))
+            self._inflight[origin] = pending
+            pending.add_done_callback(lambda done: self._forget(origin, done))
+        return await asyncio.shield(pending)
+
+    def _forget(self, origin: str, done: asyncio.Future[RobotsRules]) -> None:
+        if self._inflight.get(origin) is done:
+            del self._inflight[origin]
+        if not done.cancelled():
+            done.exception()  # mark retrieved; the awaiting callers re-raise it
+
+    async def _load(self, origin: str) -> RobotsRules:
+        key = self._key(origin)
+        entry = await self._read(key)
+        if entry is None:
+            entry = await self._fetch_shared(origin, key)
+        rules = RobotsRules.from_entry(
+            entry.status,
+            entry.body,
+            user_agent=self._user_agent,
+            crawl_delay_cap_s=self._delay_cap_s,
+            max_bytes=self._max_bytes,
+        )
+        self._lru[origin] = (rules, entry.expires_at)
+        self._lru.move_to_end(origin)
+        while len(self._lru) > self._lru_entries:
+            self._lru.popitem(last=False)
+        return rules
+
+    async def _fetch_shared(self, origin: str, key: str) -> _Entry:
+        """Fetch under the host's lock, or wait for the worker that holds it."""
+        lock_key = self._lock_key(origin)
+        token = secrets.token_hex(16)
+        deadline = time.monotonic() + self._lock_wait_s
+        pause = POLL_FIRST_S
+        while True:
+            try:
+                acquired = await self._redis.set(lock_key, token, nx=True, px=self._lock_ttl_ms)
+            except RedisError as exc:
+                raise _translate(exc) from exc
+            if acquired:
+                try:
+                    entry = await self._read(key)  # written between our miss and the lock?
+                    return entry if entry is not None else await self._fetch_and_store(origin, key)
+                finally:
+                    await self._release(lock_key, token)
+            await self._sleep(pause)
+            entry = await self._read(key)
+            if entry is not None:
+                return entry
+            if time.monotonic() >= deadline:
+                log.warning("robots lock for %s held too long; fetching without it", origin)
+                return await self._fetch_and_store(origin, key)
+            pause = min(pause * 2, POLL_MAX_S)
+
+    async def _fetch_and_store(self, origin: str, key: str) -> _Entry:
+        try:
+            result = await self._fetch(robots_url(origin))
+        except SluiceError as exc:
+            result = RobotsFetchResult(status=None, error=f"{type(exc).__name__}: {exc}")
+        state = state_for_status(result.status)
+        now = self._clock()
+        ttl = self._error_ttl_s if state == STATE_DISALLOW_ALL else self._ttl_s
+        body = truncate_body(result.body, self._max_bytes) if state == STATE_RULES else b""
+        entry = _Entry(result.status, body, result.error or "", now, now + ttl)
+        await self._write(key, entry, ttl)
+        return entry
+
+    async def _write(self, key: str, entry: _Entry, ttl_s: float) -> None:
+        compress = len(entry.body) >= COMPRESS_MIN_BYTES
+        mapping = {
+            "v": ENTRY_VERSION,
+            "status": "" if entry.status is None else str(entry.status),
+            "fetched_at": repr(entry.fetched_at),
+            "expires_at": repr(entry.expires_at),
+            "error": entry.error,
+            "encoding": ENCODING_ZLIB if compress else ENCODING_IDENTITY,
+            "body": zlib.compress(entry.body, ZLIB_LEVEL) if compress else entry.body,
+        }
+        try:
+            pipe = self._redis.pipeline(transaction=False)
+            pipe.hset(key, mapping=mapping)
+            pipe.pexpire(key, int(ttl_s * MS_PER_S))
+            await pipe.execute()
+        except RedisError as exc:
+            raise _translate(exc) from exc
+
+    async def _read(self, key: str) -> _Entry | None:
+        try:
+            raw = await self._redis.hgetall(key)
+        except RedisError as exc:
+            raise _translate(exc) from exc
+        fields = {_as_text(k): v for k, v in raw.items()}
+        if not fields or _as_text(fields.get("v", b"")) != ENTRY_VERSION:
+            return None
+        try:
+            expires_at = float(_as_text(fields["expires_at"]))
+            if expires_at <= self._clock():
+                return None
+            status_text = _as_text(fields["status"])
+            body = fields.get("body", b"")
+            if _as_text(fields.get("encoding", b"")) == ENCODING_ZLIB:
+                body = zlib.decompress(body)
+            return _Entry(
+                status=int(status_text) if status_text else None,
+                body=body,
+                error=_as_text(fields.get("error", b"")),
+                fetched_at=float(_as_text(fields["fetched_at"])),
+                expires_at=expires_at,
+            )
+        except (KeyError, ValueError, zlib.error):
+            log.warning("robots cache entry %s is malformed; refetching", key)
+            return None
+
+    async def _release(self, lock_key: str, token: str) -> None:
+        try:
+            await self._redis.eval(_RELEASE_LOCK, 1, lock_key, token)
+        except RedisError:
+            log.warning("could not release robots lock %s; it expires by itself", lock_key)
