@@ -15,6 +15,8 @@ from frontier.settings import JobSettings
 from frontier.store import FrontierStore, PartitionBatch, QueuedUrl
 from frontier.urls import Scope, canonicalize, fingerprint, host_of, politeness_key
 
+HOST_CACHE_SIZE = 100_000  # hosts whose politeness key and partition are remembered
+
 
 def scope_from_settings(settings: JobSettings, seeds: Iterable[str] = ()) -> Scope:
     """The job's scope; with no host patterns, the seeds' hosts (and their subdomains)."""
@@ -40,32 +42,42 @@ class Admission:
         self.max_length = s.scope.max_url_length
         self.schemes = frozenset(s.scope.schemes)
         self.key_mode = s.politeness.key
+        self._places: dict[str, tuple[str, int]] = {}  # host -> (politeness key, partition)
 
     def prepare(self, candidates: Iterable[Candidate]) -> dict[int, PartitionBatch]:
         """Group candidates by partition and host; refusals keep their reason."""
         batches: dict[int, PartitionBatch] = {}
-        parts = self.partitions
+        parts, max_length, schemes = self.partitions, self.max_length, self.schemes
+        places = self._places
+        check = self.scope.check
         for c in candidates:
             try:
-                url = canonicalize(c.url, max_length=self.max_length, schemes=self.schemes)
+                url = canonicalize(c.url, max_length=max_length, schemes=schemes)
             except UrlError as exc:
-                raw = c.url[: self.max_length * 2]
+                raw = c.url[: max_length * 2]
                 p = partition_of(raw, parts)
                 batches.setdefault(p, PartitionBatch()).refused.append(
                     (fingerprint(raw), f"url_{exc.reason}"))
                 continue
             host = host_of(url)
-            key = politeness_key(host, self.key_mode)
-            p = partition_of(key, parts)
-            batch = batches.get(p)
+            place = places.get(host)
+            if place is None:
+                if len(places) > HOST_CACHE_SIZE:
+                    places.clear()
+                key = politeness_key(host, self.key_mode)
+                place = places[host] = (key, partition_of(key, parts))
+            batch = batches.get(place[1])
             if batch is None:
-                batch = batches[p] = PartitionBatch()
-            reason = self.scope.check(url, host, c.depth)
+                batch = batches[place[1]] = PartitionBatch()
+            reason = check(url, host, c.depth)
             if reason is not None:
                 batch.refused.append((fingerprint(url), reason))
                 continue
-            batch.add(key, QueuedUrl(url, fingerprint(url), encode_score(c.cash, c.depth),
-                                     encode_credit(c.credit)))
+            queue = batch.hosts.get(place[0])
+            if queue is None:
+                queue = batch.hosts[place[0]] = []
+            queue.append(QueuedUrl(url, fingerprint(url), encode_score(c.cash, c.depth),
+                                   encode_credit(c.credit)))
         return batches
 
     async def admit(self, candidates: Iterable[Candidate], now: int | None = None) -> AdmitResult:

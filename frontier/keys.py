@@ -20,16 +20,15 @@ def partition_of(politeness_key: str, partitions: int) -> int:
     return mmh3.hash(politeness_key, signed=False) % partitions
 
 
-@dataclass(frozen=True, slots=True)
 class PartitionKeys:
     """Keys of one partition; per-host keys are methods taking the politeness key."""
 
-    job: str
-    index: int
+    __slots__ = ("job", "index", "tag")
 
-    @property
-    def tag(self) -> str:
-        return f"{PREFIX}:{{{self.job}.{self.index}}}"
+    def __init__(self, job: str, index: int) -> None:
+        self.job = job
+        self.index = index
+        self.tag = f"{PREFIX}:{{{job}.{index}}}"
 
     # fixed keys, one each per partition
     @property
@@ -64,13 +63,8 @@ class PartitionKeys:
 
     @property
     def leases(self) -> str:
-        """ZSET lease id -> expiry (ms)."""
+        """ZSET 'id\\nhost\\nscore\\nattempts\\nurl' -> expiry (ms): the leases held."""
         return f"{self.tag}:leases"
-
-    @property
-    def lease_data(self) -> str:
-        """HASH lease id -> 'host\\nscore\\nattempts\\nurl'."""
-        return f"{self.tag}:lease-data"
 
     @property
     def attempts(self) -> str:

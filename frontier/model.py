@@ -62,6 +62,12 @@ class Lease:
     score: int
     attempts: int
     expires_ms: int
+    member: str  # the lease as stored: 'id\nhost\nscore\nattempts\nurl'
+
+    @classmethod
+    def from_member(cls, member: str, expires_ms: int) -> Lease:
+        lid, host, score, attempts, url = member.split("\n", 4)
+        return cls(lid, host, url, int(score), int(attempts), expires_ms, member)
 
     @property
     def partition(self) -> int:

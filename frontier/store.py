@@ -14,7 +14,7 @@ import math
 import time
 from collections.abc import AsyncIterator, Callable, Iterable, Sequence
 from dataclasses import dataclass, field
-from typing import Any
+from typing import Any, NamedTuple
 
 from redis import exceptions as redis_errors
 
@@ -47,8 +47,7 @@ async def redis_boundary(what: str) -> AsyncIterator[None]:
         raise StoreError(f"Redis error during {what}: {exc}") from exc
 
 
-@dataclass(frozen=True, slots=True)
-class QueuedUrl:
+class QueuedUrl(NamedTuple):
     """A canonical URL ready for the admit script."""
 
     url: str
@@ -72,11 +71,19 @@ class PartitionBatch:
         return sum(len(v) for v in self.hosts.values()) + len(self.refused)
 
 
+PARTITION_SKEW = 4.0  # room for partitions that hold big hosts (Zipf-sized sites)
+BUCKET_FILL = 0.75  # target fill of a seen bucket at the expected crawl size
+
+
 def seen_buckets(settings: JobSettings) -> int:
-    """URL-seen buckets per partition, sized so each stays a compact intset (3/4 full)."""
+    """URL-seen buckets per partition, sized so each stays a compact intset.
+
+    A bucket past ``seen_bucket_entries`` members turns into a hash table: still exact,
+    only bigger (about 50 bytes a URL instead of 8).
+    """
     s = settings.store
-    per_partition = s.expected_urls / s.partitions
-    return max(1, math.ceil(per_partition / (s.seen_bucket_entries * 0.75)))
+    per_partition = min(s.expected_urls, s.expected_urls / s.partitions * PARTITION_SKEW)
+    return max(1, math.ceil(per_partition / (s.seen_bucket_entries * BUCKET_FILL)))
 
 
 def redis_tuning(settings: JobSettings) -> dict[str, str]:
@@ -142,26 +149,27 @@ class FrontierStore:
         pk = self.keys.part(partition)
         keys: list[str] = [pk.counts, pk.reasons, pk.due, pk.ready, pk.prio, pk.claims, pk.hosts]
         args: list[Any] = [now, self.settings.store.hot_capacity, len(batch.hosts), len(batch.refused)]
-        slots: dict[int, int] = {}
-        seen_keys: list[str] = []
+        slots: dict[int, int] = {}  # seen bucket -> its 1-based place among the seen keys
+        buckets = self.buckets
 
         def slot(fp: int) -> int:
-            b = fp % self.buckets
+            b = fp % buckets
             s = slots.get(b)
             if s is None:
-                seen_keys.append(pk.seen(b))
-                s = slots[b] = len(seen_keys)
+                s = slots[b] = len(slots) + 1
             return s
 
         default_budget = self.settings.budget.max_pages_per_host or 0
         for host, items in batch.hosts.items():
             keys += (pk.host(host), pk.hot(host), pk.cold(host))
             args += (host, batch.budgets.get(host, default_budget), len(items))
-            for it in items:
-                args += (slot(it.fingerprint), it.fingerprint, it.score, it.credit, it.url)
+            for url, fp, score, credit in items:
+                b = fp % buckets
+                args += (slots.get(b) or slot(fp), fp, score, credit, url)
         for fp, reason in batch.refused:
             args += (slot(fp), fp, reason)
-        new, credited, excluded, dups = await self.scripts.admit(keys + seen_keys, args)
+        keys += [pk.seen(b) for b in slots]  # dicts keep insertion order: slot i is key i
+        new, credited, excluded, dups = await self.scripts.admit(keys, args)
         return AdmitResult(new, credited, excluded, dups)
 
     # -- lease ---------------------------------------------------------------------------
@@ -206,22 +214,16 @@ class FrontierStore:
     async def _take(self, partition: int, hosts: Sequence[str], now: int) -> list[Lease]:
         pk = self.keys.part(partition)
         expires = now + int(self.settings.lease.ttl_s * 1000)
-        keys = [pk.counts, pk.claims, pk.leases, pk.lease_data, pk.attempts, pk.prio]
+        keys = [pk.counts, pk.claims, pk.leases, pk.attempts, pk.prio]
         for h in hosts:
             keys += (pk.host(h), pk.hot(h), pk.cold(h))
-        flat = await self.scripts.lease_take(keys, [expires, partition, len(hosts), *hosts])
-        out = []
-        for i in range(0, len(flat), 5):
-            lid, host, url, score, attempts = (
-                x.decode() if isinstance(x, bytes) else x for x in flat[i : i + 5]
-            )
-            out.append(Lease(lid, host, url, int(float(score)), int(attempts), expires))
-        return out
+        members = await self.scripts.lease_take(keys, [expires, partition, len(hosts), *hosts])
+        return [Lease.from_member(m.decode(), expires) for m in members]
 
     # -- complete and reap ---------------------------------------------------------------
 
     def _outcome_keys(self, pk: PartitionKeys) -> list[str]:
-        return [pk.counts, pk.reasons, pk.leases, pk.lease_data, pk.attempts, pk.dead,
+        return [pk.counts, pk.reasons, pk.leases, pk.attempts, pk.dead,
                 pk.due, pk.ready, pk.prio, pk.claims]
 
     async def complete_many(
@@ -263,7 +265,7 @@ class FrontierStore:
             keys += (pk.host(h), pk.hot(h), pk.cold(h))
             crawl = "" if c.crawl_delay_s is None else int(
                 min(c.crawl_delay_s, pol.crawl_delay_cap_s) * 1000)
-            args += (c.lease.id, c.outcome.value, c.reason or "none", int(c.response_s * 1000),
+            args += (c.lease.member, c.outcome.value, c.reason or "none", int(c.response_s * 1000),
                      int(c.extra_delay_s * 1000), crawl)
         result: list[Any] = await self.scripts.complete(keys, args)
         return result
@@ -274,21 +276,17 @@ class FrontierStore:
         totals: dict[str, int] = {}
         async with redis_boundary("reap"):
             for pk in self.keys.parts:
-                ids = await self.redis.zrangebyscore(pk.leases, "-inf", f"({t}", 0, REAP_BATCH)
-                if not ids:
+                members = await self.redis.zrangebyscore(
+                    pk.leases, "-inf", f"({t}", 0, REAP_BATCH)
+                if not members:
                     continue
-                data = await self.redis.hmget(pk.lease_data, ids)
                 keys = self._outcome_keys(pk)
-                live: list[Any] = []
-                for lid, d in zip(ids, data):
-                    if d is None:
-                        continue
-                    host = (d.decode() if isinstance(d, bytes) else d).split("\n", 1)[0]
+                for m in members:
+                    host = m.decode().split("\n", 2)[1]
                     keys += (pk.host(host), pk.hot(host), pk.cold(host))
-                    live.append(lid)
                 s = self.settings
                 flat = await self.scripts.reap(
-                    keys, [t, s.store.hot_capacity, s.lease.max_attempts, len(live), *live])
+                    keys, [t, s.store.hot_capacity, s.lease.max_attempts, len(members), *members])
                 for result in flat[1::2]:
                     r = result.decode() if isinstance(result, bytes) else result
                     totals[r] = totals.get(r, 0) + 1

@@ -6,9 +6,9 @@ from collections.abc import AsyncIterator, Callable, Iterator
 from typing import Any
 
 import pytest
-import redis.asyncio as aioredis
-from redis.asyncio.cluster import ClusterNode, RedisCluster as AsyncRedisCluster
+from redis.asyncio.cluster import RedisCluster as AsyncRedisCluster
 
+from frontier.redis_client import connect
 from frontier.settings import JobSettings
 from frontier.store import FrontierStore, redis_tuning
 from tests.servers import RedisCluster, RedisServer
@@ -33,11 +33,11 @@ def redis_cluster() -> Iterator[RedisCluster]:
 async def flushed_client(kind: str, request: pytest.FixtureRequest) -> Any:
     if kind == "single":
         server: RedisServer = request.getfixturevalue("redis_server")
-        client: Any = aioredis.Redis.from_url(server.url)
+        client: Any = connect(server.url)
         await client.flushall()
         return client
     cluster: RedisCluster = request.getfixturevalue("redis_cluster")
-    client = AsyncRedisCluster(startup_nodes=[ClusterNode(h, p) for h, p in cluster.startup_nodes])
+    client = connect(cluster.url.replace("redis://", "redis+cluster://"))
     await client.flushall(target_nodes=AsyncRedisCluster.PRIMARIES)
     return client
 

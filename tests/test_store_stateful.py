@@ -117,8 +117,8 @@ class FrontierMachine(RuleBasedStateMachine):
     async def _leased_urls(self) -> set[str]:
         urls: set[str] = set()
         for pk in self.store.keys.parts:
-            for data in (await self.client.hgetall(pk.lease_data)).values():
-                urls.add(_text(data).split("\n", 3)[3])
+            for member in await self.client.zrange(pk.leases, 0, -1):
+                urls.add(_text(member).split("\n", 4)[4])
         return urls
 
     async def _places(self) -> dict[str, list[str]]:
@@ -129,8 +129,8 @@ class FrontierMachine(RuleBasedStateMachine):
                     places.setdefault(_text(url), []).append("hot")
                 for item in await self.client.lrange(pk.cold(host), 0, -1):
                     places.setdefault(_text(item).split(" ", 1)[1], []).append("cold")
-            for data in (await self.client.hgetall(pk.lease_data)).values():
-                places.setdefault(_text(data).split("\n", 3)[3], []).append("leased")
+            for member in await self.client.zrange(pk.leases, 0, -1):
+                places.setdefault(_text(member).split("\n", 4)[4], []).append("leased")
             for url in await self.client.hkeys(pk.dead):
                 places.setdefault(_text(url), []).append("dead")
         return places
@@ -153,8 +153,8 @@ class FrontierMachine(RuleBasedStateMachine):
     def one_lease_per_host(self) -> None:
         hosts: list[str] = []
         for pk in self.store.keys.parts:
-            for data in self.run(self.client.hgetall(pk.lease_data)).values():
-                hosts.append(_text(data).split("\n", 1)[0])
+            for member in self.run(self.client.zrange(pk.leases, 0, -1)):
+                hosts.append(_text(member).split("\n", 2)[1])
         assert len(hosts) == len(set(hosts))
 
 

@@ -4,21 +4,48 @@
 
 local DEPTH_SCALE = 256
 
--- Queue one URL on its host: the best `cap` URLs stay sorted in `hot` (a listpack ZSET),
--- the rest wait in `cold` (a LIST of 'score url', arrival order).
-local function push_url(hot, cold, url, score, cap)
-  if redis.call('ZCARD', hot) < cap then
-    redis.call('ZADD', hot, score, url)
-    return
+-- A host's queue: the best `cap` URLs stay sorted in `hot` (a listpack ZSET), the rest
+-- wait in `cold` (a LIST of 'score url', arrival order). Open it, push URLs, close it:
+-- the hot size and lowest hot score are tracked locally, and cold entries are written
+-- in one RPUSH per batch, so a URL that goes cold costs no call of its own.
+local function queue_open(hot, cold, cap)
+  return {hot = hot, cold = cold, cap = cap, size = redis.call('ZCARD', hot), low = nil, spill = {}}
+end
+
+local function queue_low(q)
+  if q.low == nil then
+    local low = redis.call('ZRANGE', q.hot, 0, 0, 'WITHSCORES')
+    q.low = tonumber(low[2])
   end
-  local low = redis.call('ZRANGE', hot, 0, 0, 'WITHSCORES')
-  if tonumber(score) > tonumber(low[2]) then
-    redis.call('ZPOPMIN', hot)
-    redis.call('RPUSH', cold, low[2] .. ' ' .. low[1])
-    redis.call('ZADD', hot, score, url)
+  return q.low
+end
+
+local function queue_push(q, url, score)
+  if q.size < q.cap then
+    redis.call('ZADD', q.hot, score, url)
+    q.size = q.size + 1
+    q.low = nil
+  elseif tonumber(score) > queue_low(q) then
+    local low = redis.call('ZPOPMIN', q.hot)
+    q.spill[#q.spill + 1] = low[2] .. ' ' .. low[1]
+    redis.call('ZADD', q.hot, score, url)
+    q.low = nil
   else
-    redis.call('RPUSH', cold, score .. ' ' .. url)
+    q.spill[#q.spill + 1] = score .. ' ' .. url
   end
+end
+
+local function queue_close(q)
+  local spill = q.spill
+  for i = 1, #spill, 1000 do
+    redis.call('RPUSH', q.cold, unpack(spill, i, math.min(i + 999, #spill)))
+  end
+end
+
+local function push_url(hot, cold, url, score, cap)
+  local q = queue_open(hot, cold, cap)
+  queue_push(q, url, score)
+  queue_close(q)
 end
 
 -- Pop the host's best URL; refill the hot window with one cold URL.
@@ -67,6 +94,18 @@ local function schedule(S, host, hk, hot, now)
   end
 end
 
+-- Schedule a host whose lease just ended: it is in none of due, ready and claims, so
+-- only its next time and priority are needed. `boost` comes from the caller's HMGET.
+local function schedule_released(S, host, hot, boost, next_ms)
+  local best = redis.call('ZREVRANGE', hot, 0, 0, 'WITHSCORES')
+  if #best == 0 then
+    redis.call('HDEL', S.prio, host)
+    return
+  end
+  redis.call('HSET', S.prio, host, tonumber(best[2]) * tonumber(boost or '1'))
+  redis.call('ZADD', S.due, next_ms, host)
+end
+
 -- A failed attempt: queue the URL again, or past the limit, move it to the dead letters.
 -- Returns 'requeued', 'dead' or 'excluded' (the host was blocked meanwhile).
 -- C = {counts=, reasons=, attempts=, dead=}
@@ -90,11 +129,13 @@ local function retry_or_bury(C, hk, hot, cold, url, score, reason, cap, max_atte
   return 'requeued'
 end
 
--- Lease details are stored as 'host\nscore\nattempts\nurl'.
-local function parse_lease(data)
-  local a = string.find(data, '\n', 1, true)
-  local b = string.find(data, '\n', a + 1, true)
-  local c = string.find(data, '\n', b + 1, true)
-  return string.sub(data, 1, a - 1), string.sub(data, a + 1, b - 1),
-         string.sub(data, b + 1, c - 1), string.sub(data, c + 1)
+-- A lease is one member of the leases ZSET (score: expiry), 'id\nhost\nscore\nattempts\nurl';
+-- the worker holds the same string, so completing needs no second lookup.
+local function parse_lease(member)
+  local a = string.find(member, '\n', 1, true)
+  local b = string.find(member, '\n', a + 1, true)
+  local c = string.find(member, '\n', b + 1, true)
+  local d = string.find(member, '\n', c + 1, true)
+  return string.sub(member, a + 1, b - 1), string.sub(member, b + 1, c - 1),
+         string.sub(member, c + 1, d - 1), string.sub(member, d + 1)
 end

@@ -37,6 +37,7 @@ for g = 0, ngroups - 1 do
     redis.call('SADD', KEYS[7], host)
   end
   local changed = false
+  local q = nil
   for _ = 1, n do
     local slot, fp, score, credit, url = ARGV[a], ARGV[a + 1], ARGV[a + 2], ARGV[a + 3], ARGV[a + 4]
     a = a + 5
@@ -46,7 +47,8 @@ for g = 0, ngroups - 1 do
       elseif budget > 0 and admitted >= budget then
         exclude('host_budget')
       else
-        push_url(hot, cold, url, score, cap)
+        q = q or queue_open(hot, cold, cap)
+        queue_push(q, url, score)
         admitted = admitted + 1
         new = new + 1
         changed = true
@@ -55,10 +57,16 @@ for g = 0, ngroups - 1 do
       dups = dups + 1
       if credit ~= '0' and redis.call('ZSCORE', hot, url) then
         redis.call('ZINCRBY', hot, credit, url)
+        if q then
+          q.low = nil
+        end
         credited = credited + 1
         changed = true
       end
     end
+  end
+  if q then
+    queue_close(q)
   end
   if changed then
     redis.call('HSET', hk, 'admitted', admitted)

@@ -1,11 +1,11 @@
 -- complete: end a batch of leases of one partition with their outcomes.
--- KEYS[1] counts  KEYS[2] reasons  KEYS[3] leases  KEYS[4] lease data  KEYS[5] attempts
--- KEYS[6] dead    KEYS[7] due      KEYS[8] ready   KEYS[9] prio         KEYS[10] claims
--- KEYS[11 ..] per lease i (0-based): host hash, hot ZSET, cold LIST of the lease's host
+-- KEYS[1] counts  KEYS[2] reasons  KEYS[3] leases  KEYS[4] attempts  KEYS[5] dead
+-- KEYS[6] due     KEYS[7] ready    KEYS[8] prio    KEYS[9] claims
+-- KEYS[10 ..] per lease i (0-based): host hash, hot ZSET, cold LIST of the lease's host
 -- ARGV[1] now (ms)  ARGV[2] hot capacity  ARGV[3] max attempts  ARGV[4] min delay (ms)
 -- ARGV[5] response-time factor  ARGV[6] cap on factor x response time (ms)  ARGV[7] n
--- then per lease: id, outcome (fetched|failed|excluded|retry), reason, response ms,
---                 extra delay ms (Retry-After, backoff), crawl-delay ms ('' = unchanged)
+-- then per lease: lease member, outcome (fetched|failed|excluded|retry), reason,
+--                 response ms, extra delay ms (Retry-After, backoff), crawl-delay ms ('' = unchanged)
 -- The host's next fetch: now + max(min delay, crawl-delay, operator delay, extra,
 -- min(factor x response time, cap)).
 -- Returns one status per lease: 'ok', 'not_held' (unknown or reaped) or 'expired'.
@@ -14,48 +14,63 @@ local cap = tonumber(ARGV[2])
 local max_attempts = tonumber(ARGV[3])
 local min_delay, factor, rt_cap = tonumber(ARGV[4]), tonumber(ARGV[5]), tonumber(ARGV[6])
 local n = tonumber(ARGV[7])
-local C = {counts = KEYS[1], reasons = KEYS[2], attempts = KEYS[5], dead = KEYS[6]}
-local S = {due = KEYS[7], ready = KEYS[8], prio = KEYS[9], claims = KEYS[10]}
+local C = {counts = KEYS[1], reasons = KEYS[2], attempts = KEYS[4], dead = KEYS[5]}
+local S = {due = KEYS[6], ready = KEYS[7], prio = KEYS[8], claims = KEYS[9]}
 local out = {}
+local tally = {}
+local ended = 0
 local a = 8
 for i = 0, n - 1 do
-  local id, outcome, reason = ARGV[a], ARGV[a + 1], ARGV[a + 2]
+  local member, outcome, reason = ARGV[a], ARGV[a + 1], ARGV[a + 2]
   local rt, extra, crawl = tonumber(ARGV[a + 3]), tonumber(ARGV[a + 4]), ARGV[a + 5]
   a = a + 6
-  local hk, hot, cold = KEYS[11 + 3 * i], KEYS[12 + 3 * i], KEYS[13 + 3 * i]
-  local expiry = redis.call('ZSCORE', KEYS[3], id)
+  local hk, hot, cold = KEYS[10 + 3 * i], KEYS[11 + 3 * i], KEYS[12 + 3 * i]
+  local expiry = redis.call('ZSCORE', KEYS[3], member)
   if not expiry then
     out[#out + 1] = 'not_held'
   elseif tonumber(expiry) < now then
     out[#out + 1] = 'expired'
   else
-    local host, score, attempts, url = parse_lease(redis.call('HGET', KEYS[4], id))
-    redis.call('ZREM', KEYS[3], id)
-    redis.call('HDEL', KEYS[4], id)
-    redis.call('HDEL', hk, 'lease')
-    redis.call('HINCRBY', KEYS[1], 'leased', -1)
+    local host, score, attempts, url = parse_lease(member)
+    redis.call('ZREM', KEYS[3], member)
+    ended = ended + 1
+    local f = redis.call('HMGET', hk, 'delay_ms', 'crawl_ms', 'boost', 'state', 'fetched')
+    local fetched = tonumber(f[5] or '0')
     if outcome == 'retry' then
       retry_or_bury(C, hk, hot, cold, url, score, reason, cap, max_attempts)
     else
       if attempts ~= '0' then
-        redis.call('HDEL', KEYS[5], url)
+        redis.call('HDEL', KEYS[4], url)
       end
-      redis.call('HINCRBY', KEYS[1], outcome, 1)
       if outcome == 'fetched' then
-        redis.call('HINCRBY', hk, 'fetched', 1)
-      else
-        redis.call('HINCRBY', KEYS[2], outcome .. ':' .. reason, 1)
+        fetched = fetched + 1
       end
+      local key = outcome == 'fetched' and outcome or (outcome .. ':' .. reason)
+      tally[key] = (tally[key] or 0) + 1
     end
     if crawl ~= '' then
-      redis.call('HSET', hk, 'crawl_ms', crawl)
+      f[2] = crawl
     end
-    local f = redis.call('HMGET', hk, 'delay_ms', 'crawl_ms')
     local gap = math.max(min_delay, math.min(factor * rt, rt_cap), extra,
                          tonumber(f[1] or '0'), tonumber(f[2] or '0'))
-    redis.call('HSET', hk, 'next', math.floor(now + gap), 'rt_ms', rt)
-    schedule(S, host, hk, hot, now)
+    local next_ms = math.floor(now + gap)
+    redis.call('HSET', hk, 'next', next_ms, 'rt_ms', rt, 'crawl_ms', f[2] or '0', 'fetched', fetched)
+    redis.call('HDEL', hk, 'lease')
+    if f[4] == 'active' then
+      schedule_released(S, host, hot, f[3], next_ms)
+    end
     out[#out + 1] = 'ok'
+  end
+end
+if ended > 0 then
+  redis.call('HINCRBY', KEYS[1], 'leased', -ended)
+end
+for key, count in pairs(tally) do
+  if key == 'fetched' then
+    redis.call('HINCRBY', KEYS[1], 'fetched', count)
+  else
+    redis.call('HINCRBY', KEYS[1], string.match(key, '^[a-z]+'), count)
+    redis.call('HINCRBY', KEYS[2], key, count)
   end
 end
 return out

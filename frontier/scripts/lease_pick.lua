@@ -13,17 +13,28 @@ for _, host in ipairs(stale) do
   end
 end
 local due = redis.call('ZRANGEBYSCORE', KEYS[1], '-inf', now, 'LIMIT', 0, tonumber(ARGV[4]))
-for _, host in ipairs(due) do
-  redis.call('ZREM', KEYS[1], host)
-  local p = redis.call('HGET', KEYS[3], host)
-  if p then
-    redis.call('ZADD', KEYS[2], p, host)
+if #due > 0 then
+  redis.call('ZREM', KEYS[1], unpack(due))
+  local prios = redis.call('HMGET', KEYS[3], unpack(due))
+  local add = {}
+  for i, host in ipairs(due) do
+    if prios[i] then
+      add[#add + 1] = prios[i]
+      add[#add + 1] = host
+    end
+  end
+  if #add > 0 then
+    redis.call('ZADD', KEYS[2], unpack(add))
   end
 end
 local top = redis.call('ZPOPMAX', KEYS[2], tonumber(ARGV[2]))
-local out = {}
+local out, add = {}, {}
 for i = 1, #top, 2 do
-  redis.call('ZADD', KEYS[4], ARGV[3], top[i])
   out[#out + 1] = top[i]
+  add[#add + 1] = ARGV[3]
+  add[#add + 1] = top[i]
+end
+if #add > 0 then
+  redis.call('ZADD', KEYS[4], unpack(add))
 end
 return out

@@ -1,33 +1,34 @@
 -- reap: return expired leases of one partition to their hosts.
--- KEYS[1] counts  KEYS[2] reasons  KEYS[3] leases  KEYS[4] lease data  KEYS[5] attempts
--- KEYS[6] dead    KEYS[7] due      KEYS[8] ready   KEYS[9] prio         KEYS[10] claims
--- KEYS[11 ..] per lease i (0-based): host hash, hot ZSET, cold LIST of the lease's host
--- ARGV[1] now (ms)  ARGV[2] hot capacity  ARGV[3] max attempts  ARGV[4] n  ARGV[5 ..] lease ids
+-- KEYS[1] counts  KEYS[2] reasons  KEYS[3] leases  KEYS[4] attempts  KEYS[5] dead
+-- KEYS[6] due     KEYS[7] ready    KEYS[8] prio    KEYS[9] claims
+-- KEYS[10 ..] per lease i (0-based): host hash, hot ZSET, cold LIST of the lease's host
+-- ARGV[1] now (ms)  ARGV[2] hot capacity  ARGV[3] max attempts  ARGV[4] n
+-- ARGV[5 ..] lease members
 -- A lease still valid at `now`, or already gone, is left alone. An expired one counts as a
 -- failed attempt ('lease_expired'): the URL is queued again, or dead past the limit.
--- Returns a flat list of {lease id, 'requeued' | 'dead' | 'excluded'}.
+-- Returns a flat list of {lease member, 'requeued' | 'dead' | 'excluded'}.
 local now = tonumber(ARGV[1])
 local cap = tonumber(ARGV[2])
 local max_attempts = tonumber(ARGV[3])
 local n = tonumber(ARGV[4])
-local C = {counts = KEYS[1], reasons = KEYS[2], attempts = KEYS[5], dead = KEYS[6]}
-local S = {due = KEYS[7], ready = KEYS[8], prio = KEYS[9], claims = KEYS[10]}
+local C = {counts = KEYS[1], reasons = KEYS[2], attempts = KEYS[4], dead = KEYS[5]}
+local S = {due = KEYS[6], ready = KEYS[7], prio = KEYS[8], claims = KEYS[9]}
 local out = {}
 for i = 0, n - 1 do
-  local id = ARGV[5 + i]
-  local hk, hot, cold = KEYS[11 + 3 * i], KEYS[12 + 3 * i], KEYS[13 + 3 * i]
-  local expiry = redis.call('ZSCORE', KEYS[3], id)
+  local member = ARGV[5 + i]
+  local hk, hot, cold = KEYS[10 + 3 * i], KEYS[11 + 3 * i], KEYS[12 + 3 * i]
+  local expiry = redis.call('ZSCORE', KEYS[3], member)
   if expiry and tonumber(expiry) < now then
-    local host, score, _, url = parse_lease(redis.call('HGET', KEYS[4], id))
-    redis.call('ZREM', KEYS[3], id)
-    redis.call('HDEL', KEYS[4], id)
+    local host, score, _, url = parse_lease(member)
+    local id = string.sub(member, 1, string.find(member, '\n', 1, true) - 1)
+    redis.call('ZREM', KEYS[3], member)
     if redis.call('HGET', hk, 'lease') == id then
       redis.call('HDEL', hk, 'lease')
     end
     redis.call('HINCRBY', KEYS[1], 'leased', -1)
     local result = retry_or_bury(C, hk, hot, cold, url, score, 'lease_expired', cap, max_attempts)
     schedule(S, host, hk, hot, now)
-    out[#out + 1] = id
+    out[#out + 1] = member
     out[#out + 1] = result
   end
 end

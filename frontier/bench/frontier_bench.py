@@ -1,0 +1,193 @@
+"""``sluice bench frontier``: admit, lease and complete a million URLs on the embedded Redis.
+
+Prints one JSON object. Rates are medians over equal slices of each phase; the client
+limit (pipelined EVALSHA of a trivial script from this same process) is measured in the
+same run so the ratios mean something on a noisy machine.
+"""
+
+from __future__ import annotations
+
+import asyncio
+import json
+import random
+import statistics
+import tempfile
+import time
+from collections.abc import Iterator
+from pathlib import Path
+from typing import Any
+
+
+from frontier.admission import Admission
+from frontier.embedded import EmbeddedRedis
+from frontier.redis_client import connect
+from frontier.model import Candidate, Completion, Outcome
+from frontier.settings import JobSettings
+from frontier.store import FrontierStore, redis_tuning
+from frontier.urls import Scope
+
+WORDS = ("news", "item", "page", "story", "archive", "doc", "view", "topic", "post", "entry")
+
+
+def zipf_host_sizes(urls: int, hosts: int, exponent: float) -> list[int]:
+    """Host sizes proportional to 1 / rank**exponent, summing to ``urls``, each >= 1."""
+    weights = [1.0 / (rank**exponent) for rank in range(1, hosts + 1)]
+    scale = (urls - hosts) / sum(weights)
+    sizes = [1 + int(w * scale) for w in weights]
+    sizes[0] += urls - sum(sizes)
+    return sizes
+
+
+def synthetic_urls(urls: int, hosts: int, exponent: float, seed: int) -> Iterator[Candidate]:
+    """Deterministic URLs over invented ``.test`` hosts, shuffled across hosts."""
+    rng = random.Random(seed)
+    sizes = zipf_host_sizes(urls, hosts, exponent)
+    order = [h for h, n in enumerate(sizes) for _ in range(n)]
+    rng.shuffle(order)
+    counters = [0] * hosts
+    for h in order:
+        i = counters[h]
+        counters[h] += 1
+        word = WORDS[i % len(WORDS)]
+        url = f"http://www.site-{h:05d}.test/{word}/{i // 100}/{word}-{i}.html?ref={i % 7}"
+        yield Candidate(url, depth=1, cash=rng.random() + 0.01)
+
+
+async def client_limit(client: Any, seconds: float = 2.0, batch: int = 500) -> float:
+    """Pipelined EVALSHA calls of a trivial script per second from this process."""
+    script = client.register_script("return 1")
+    await script(keys=["sluice:bench:{x}"], args=[])
+    calls, start = 0, time.perf_counter()
+    while time.perf_counter() - start < seconds:
+        pipe = client.pipeline(transaction=False)
+        for _ in range(batch):
+            pipe.evalsha(script.sha, 1, "sluice:bench:{x}")
+        await pipe.execute()
+        calls += batch
+    return calls / (time.perf_counter() - start)
+
+
+async def memory_by_kind(client: Any, job: str) -> dict[str, int]:
+    """MEMORY USAGE summed per key kind (seen buckets vs queue structures)."""
+    totals: dict[str, int] = {}
+    batch: list[tuple[str, str]] = []
+
+    async def flush() -> None:
+        pipe = client.pipeline(transaction=False)
+        for key, _ in batch:
+            pipe.memory_usage(key, samples=0)
+        for (_, kind), used in zip(batch, await pipe.execute()):
+            totals[kind] = totals.get(kind, 0) + int(used or 0)
+        batch.clear()
+
+    async for raw in client.scan_iter(match=f"sluice:{{{job}.*", count=5000):
+        key = raw.decode()
+        kind = key.split(":")[2]
+        batch.append((key, "seen" if kind == "seen" else "queue"))
+        if len(batch) >= 2000:
+            await flush()
+    if batch:
+        await flush()
+    return totals
+
+
+SEGMENTS = 5  # admission is timed in equal segments; the median segment rate is reported
+ADMIT_CHUNK = 4000  # candidates per admit call
+ADMIT_IN_FLIGHT = 3  # admit calls Redis works on while Python prepares the next
+LEASE_BATCH = 512
+LEASERS = 4  # concurrent lease+complete loops, like workers sharing one process
+
+
+async def admit_pipelined(admission: Admission, candidates: list[Candidate]) -> None:
+    """Prepare chunk i+1 in Python while Redis runs chunk i."""
+    pending: set[asyncio.Task[Any]] = set()
+    for start in range(0, len(candidates), ADMIT_CHUNK):
+        batches = admission.prepare(candidates[start:start + ADMIT_CHUNK])
+        pending.add(asyncio.create_task(admission.store.admit_batches(batches)))
+        await asyncio.sleep(0)  # let the new task send its calls
+        if len(pending) >= ADMIT_IN_FLIGHT:
+            finished, pending = await asyncio.wait(pending, return_when=asyncio.FIRST_COMPLETED)
+            for task in finished:
+                task.result()
+    if pending:
+        for task in await asyncio.gather(*pending):
+            pass
+
+
+async def run(urls: int, hosts: int, exponent: float, seed: int, state: Path) -> dict[str, Any]:
+    settings = JobSettings.model_validate({
+        "name": "bench", "state_dir": str(state),
+        "store": {"partitions": 16, "expected_urls": urls},
+        "budget": {"max_pages_per_host": None},
+        "politeness": {"min_delay_s": 0.0, "response_time_factor": 0.0},
+        "lease": {"ttl_s": 3600},
+    })
+    server = EmbeddedRedis(state, config=redis_tuning(settings))
+    server.start()
+    client = connect(server.url)
+    try:
+        limit = await client_limit(client)
+        store = FrontierStore(client, settings)
+        admission = Admission(store, Scope(allow=[], include=[], exclude=[], max_depth=None))
+        base_mem = int((await client.info("memory"))["used_memory"])
+
+        candidates = list(synthetic_urls(urls, hosts, exponent, seed))
+        mean_len = statistics.fmean(len(c.url) for c in candidates)
+        segment_rates: list[float] = []
+        t0 = time.perf_counter()
+        segment = max(1, len(candidates) // SEGMENTS)
+        for start in range(0, len(candidates), segment):
+            s = time.perf_counter()
+            await admit_pipelined(admission, candidates[start:start + segment])
+            segment_rates.append(min(segment, len(candidates) - start) / (time.perf_counter() - s))
+        admit_total_s = time.perf_counter() - t0
+        del candidates
+        counts = await store.counts()
+        mem = await memory_by_kind(client, settings.name)
+        used_mem = int((await client.info("memory"))["used_memory"]) - base_mem
+
+        full_rates: list[float] = []
+        done = 0
+        t1 = time.perf_counter()
+        while True:
+            s = time.perf_counter()
+            got = await asyncio.gather(*(store.lease(LEASE_BATCH) for _ in range(LEASERS)))
+            leases = [x for g in got for x in g]
+            if not leases:
+                if (await store.counts()).queued == 0:
+                    break
+                continue
+            await store.complete_many([Completion(x, Outcome.FETCHED) for x in leases])
+            done += len(leases)
+            if len(leases) == LEASE_BATCH * LEASERS:
+                full_rates.append(len(leases) / (time.perf_counter() - s))
+        lease_total_s = time.perf_counter() - t1
+        final = await store.counts()
+        return {
+            "urls": urls, "hosts": hosts, "zipf_exponent": exponent, "partitions": 16,
+            "admit_urls_per_s": round(statistics.median(segment_rates)),
+            "admit_urls_per_s_overall": round(urls / admit_total_s),
+            "lease_complete_urls_per_s": round(statistics.median(full_rates)) if full_rates else 0,
+            "lease_complete_rounds_with_full_batch": len(full_rates),
+            "lease_complete_urls_per_s_overall_drain": round(done / lease_total_s),
+            "client_limit_ops_per_s": round(limit),
+            "admit_ratio_to_client_limit": round(statistics.median(segment_rates) / limit, 2),
+            "lease_complete_ratio_to_client_limit": round(
+                (statistics.median(full_rates) if full_rates else 0) / limit, 2),
+            "mean_url_length": round(mean_len, 1),
+            "bytes_per_queued_url": round(mem.get("queue", 0) / counts.queued, 1),
+            "bytes_per_seen_url": round(mem.get("seen", 0) / counts.admitted, 2),
+            "bytes_per_url_used_memory": round(used_mem / counts.admitted, 1),
+            "queued": counts.queued, "fetched": final.fetched,
+            "balanced": final.balanced and final.fetched == counts.queued,
+        }
+    finally:
+        await client.aclose()
+        server.stop()
+
+
+def main(urls: int = 1_000_000, hosts: int = 10_000, exponent: float = 1.0, seed: int = 7) -> int:
+    with tempfile.TemporaryDirectory(prefix="sluice-bench-") as tmp:
+        result = asyncio.run(run(urls, hosts, exponent, seed, Path(tmp)))
+    print(json.dumps(result, indent=2))
+    return 0
