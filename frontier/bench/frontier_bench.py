@@ -67,6 +67,14 @@ async def client_limit(client: Any, seconds: float = 2.0, batch: int = 500) -> f
     return calls / (time.perf_counter() - start)
 
 
+async def hosts_with_queue(client: Any, store: FrontierStore) -> int:
+    """Politeness keys that still have queued URLs."""
+    total = 0
+    for pk in store.keys.parts:
+        total += int(await client.hlen(pk.prio))
+    return total
+
+
 async def memory_by_kind(client: Any, job: str) -> dict[str, int]:
     """MEMORY USAGE summed per key kind (seen buckets vs queue structures)."""
     totals: dict[str, int] = {}
@@ -96,6 +104,7 @@ ADMIT_CHUNK = 4000  # candidates per admit call
 ADMIT_IN_FLIGHT = 3  # admit calls Redis works on while Python prepares the next
 LEASE_BATCH = 512
 LEASERS = 4  # concurrent lease+complete loops, like workers sharing one process
+TAIL_ROUNDS = 50  # stop the drain after this many rounds below a quarter of a full batch
 
 
 async def admit_pipelined(admission: Admission, candidates: list[Candidate]) -> None:
@@ -148,19 +157,23 @@ async def run(urls: int, hosts: int, exponent: float, seed: int, state: Path) ->
 
         full_rates: list[float] = []
         done = 0
+        thin_rounds = 0
         t1 = time.perf_counter()
-        while True:
+        while thin_rounds < TAIL_ROUNDS:
             s = time.perf_counter()
             got = await asyncio.gather(*(store.lease(LEASE_BATCH) for _ in range(LEASERS)))
             leases = [x for g in got for x in g]
             if not leases:
                 if (await store.counts()).queued == 0:
                     break
+                thin_rounds += 1
                 continue
             await store.complete_many([Completion(x, Outcome.FETCHED) for x in leases])
             done += len(leases)
             if len(leases) == LEASE_BATCH * LEASERS:
                 full_rates.append(len(leases) / (time.perf_counter() - s))
+            # the tail: few hosts left, one lease per host at a time (politeness, by design)
+            thin_rounds = thin_rounds + 1 if len(leases) < LEASE_BATCH * LEASERS // 4 else 0
         lease_total_s = time.perf_counter() - t1
         final = await store.counts()
         return {
@@ -179,7 +192,9 @@ async def run(urls: int, hosts: int, exponent: float, seed: int, state: Path) ->
             "bytes_per_seen_url": round(mem.get("seen", 0) / counts.admitted, 2),
             "bytes_per_url_used_memory": round(used_mem / counts.admitted, 1),
             "queued": counts.queued, "fetched": final.fetched,
-            "balanced": final.balanced and final.fetched == counts.queued,
+            "drained_share": round(final.fetched / counts.queued, 3),
+            "hosts_left_at_stop": await hosts_with_queue(client, store),
+            "balanced": final.balanced,
         }
     finally:
         await client.aclose()

@@ -1,0 +1,131 @@
+"""``sluice bench crawl``: one worker crawls >= 10,000 synthetic pages; the bare limit beside it.
+
+The synthetic web runs in a child process (its own core); the crawl and the bare loop
+run in this process, one after the other, over the same pages. The bare loop is the
+limit of this machine for "fetch with aiohttp and extract links": no frontier, no
+robots, no archive. Politeness delays are zero here: this measures throughput, and
+the web is ours.
+"""
+
+from __future__ import annotations
+
+import asyncio
+import cProfile
+import io
+import json
+import pstats
+import subprocess
+import sys
+import tempfile
+import time
+from pathlib import Path
+from typing import Any
+
+import aiohttp
+
+from frontier.settings import load_settings
+from workers.parser import parse_html
+
+BENCH_UA = "sluice-bench/0.1 (+http://operator.test/contact)"
+CONCURRENCY = 64
+PAGES_PER_HOST = 25
+
+
+def start_web(pages: int, seed: int) -> tuple[subprocess.Popen[str], int, list[str]]:
+    """Serve a plain synthetic web (no traps, farms or bad inputs) in a child process."""
+    hosts = max(1, pages // PAGES_PER_HOST)
+    proc = subprocess.Popen(
+        [sys.executable, "-m", "workers.synthweb", "--plain", "--seed", str(seed),
+         "--hosts", str(hosts), "--pages", str(pages)],
+        stdout=subprocess.PIPE, text=True)
+    assert proc.stdout is not None
+    port = int(proc.stdout.readline().split()[1])
+    seeds = []
+    for _ in range(5):
+        seeds.append(proc.stdout.readline().strip())
+    return proc, port, seeds
+
+
+async def bare_loop(urls: list[str], port: int) -> float:
+    """Pages/s of a plain aiohttp fetch + link extraction over ``urls``."""
+    connector = aiohttp.TCPConnector(limit=CONCURRENCY * 2)
+    queue: asyncio.Queue[str] = asyncio.Queue()
+    for u in urls:
+        queue.put_nowait(u)
+
+    async def one(session: aiohttp.ClientSession) -> None:
+        while not queue.empty():
+            url = queue.get_nowait()
+            host_path = url.split("://", 1)[1]
+            host, _, path = host_path.partition("/")
+            async with session.get(f"http://127.0.0.1:{port}/{path}",
+                                   headers={"Host": host, "User-Agent": BENCH_UA}) as r:
+                body = await r.read()
+            parse_html(body, url, content_type=r.headers.get("Content-Type"))
+
+    started = time.perf_counter()
+    async with aiohttp.ClientSession(connector=connector) as session:
+        await asyncio.gather(*(one(session) for _ in range(CONCURRENCY)))
+    return len(urls) / (time.perf_counter() - started)
+
+
+async def crawl(pages: int, port: int, seeds: list[str], out: Path, redis_url: str,
+                profile: bool) -> tuple[float, list[str], str]:
+    from frontier.cli import _crawl
+
+    settings = load_settings(None, {
+        "name": "crawlbench", "seeds": seeds, "redis": {"url": redis_url},
+        "scope": {"allow_hosts": ["*.test"]},
+        "budget": {"max_pages": pages, "max_pages_per_host": None},
+        "politeness": {"min_delay_s": 0.0, "response_time_factor": 0.0},
+        "fetch": {"user_agent": BENCH_UA, "map_hosts": [f"*.test=127.0.0.1:{port}"],
+                  "concurrency": CONCURRENCY},
+        "lease": {"batch": 64},
+    })
+    prof = cProfile.Profile() if profile else None
+    started = time.perf_counter()
+    if prof:
+        prof.enable()
+    summary = await _crawl(settings, out, 1, quiet=True)
+    if prof:
+        prof.disable()
+    elapsed = time.perf_counter() - started
+    fetched_urls = [json.loads(line)["url"] for line in (out / "fetches.jsonl").open()
+                    if '"outcome": "fetched"' in line]
+    top = ""
+    if prof:
+        buf = io.StringIO()
+        pstats.Stats(prof, stream=buf).sort_stats("tottime").print_stats(15)
+        top = buf.getvalue()
+    return summary["fetched"] / elapsed, fetched_urls, top
+
+
+def main(pages: int = 10_000, seed: int = 5, profile: bool = True) -> int:
+    from frontier.embedded import RedisProcess
+    from frontier.settings import JobSettings
+    from frontier.store import redis_tuning
+
+    proc, port, seeds = start_web(int(pages * 1.2), seed)
+    try:
+        with tempfile.TemporaryDirectory(prefix="sluice-crawlbench-") as tmp:
+            server = RedisProcess(Path(tmp) / "redis", extra_config=redis_tuning(JobSettings()))
+            server.start()
+            try:
+                rate, urls, top = asyncio.run(
+                    crawl(pages, port, seeds, Path(tmp) / "out", server.url, profile))
+            finally:
+                server.stop()
+        bare_rates = [asyncio.run(bare_loop(urls, port)) for _ in range(3)]
+    finally:
+        proc.terminate()
+        proc.wait()
+    bare = sorted(bare_rates)[1]
+    result: dict[str, Any] = {
+        "pages": len(urls), "crawl_pages_per_s": round(rate, 1),
+        "bare_pages_per_s": round(bare, 1), "bare_runs": [round(r, 1) for r in bare_rates],
+        "ratio": round(rate / bare, 3), "concurrency": CONCURRENCY,
+    }
+    print(json.dumps(result, indent=2))
+    if top:
+        print("\nwhere the crawl's time goes (cProfile, by own time):\n" + top, file=sys.stderr)
+    return 0

@@ -1,0 +1,335 @@
+"""The ``sluice`` command: crawl, daemon, worker, demo, host, status, explain, bench."""
+
+from __future__ import annotations
+
+import argparse
+import asyncio
+import contextlib
+import json
+import logging
+import signal
+import sys
+import time
+from pathlib import Path
+from typing import Any
+
+from prometheus_client import CollectorRegistry
+
+from frontier.exceptions import SluiceError
+from frontier.settings import JobSettings, load_settings
+
+log = logging.getLogger("sluice")
+
+
+# -- flags shared by crawl and daemon --------------------------------------------------------
+
+def _job_flags(p: argparse.ArgumentParser) -> None:
+    p.add_argument("--config", type=Path, help="job file (TOML)")
+    p.add_argument("--job", help="job name")
+    p.add_argument("--redis", help="redis:// URL (a Cluster: redis+cluster://); none: embedded")
+    p.add_argument("--seeds", type=Path, help="file of seed URLs, one a line")
+    p.add_argument("--max-pages", type=int)
+    p.add_argument("--max-pages-per-host", type=int)
+    p.add_argument("--max-depth", type=int)
+    p.add_argument("--concurrency", type=int)
+    p.add_argument("--min-delay", type=float, help="seconds between fetches of one host")
+    p.add_argument("--user-agent", help="an honest User-Agent with a contact URL")
+    p.add_argument("--map-hosts", action="append", default=[], metavar="PATTERN=ADDR",
+                   help="send PATTERN's hosts to ADDR[:PORT] (e.g. '*.test=127.0.0.1:8080')")
+    p.add_argument("--allow-host", action="append", default=[], help="extra in-scope host pattern")
+    p.add_argument("--state", type=Path, help="state folder of the embedded Redis")
+
+
+def _overrides(a: argparse.Namespace) -> dict[str, Any]:
+    o: dict[str, Any] = {}
+
+    def put(path: str, value: Any) -> None:
+        if value is None or value == []:
+            return
+        node = o
+        *parents, leaf = path.split(".")
+        for part in parents:
+            node = node.setdefault(part, {})
+        node[leaf] = value
+
+    put("name", a.job)
+    put("redis.url", a.redis)
+    put("budget.max_pages", a.max_pages)
+    put("budget.max_pages_per_host", a.max_pages_per_host)
+    put("scope.max_depth", a.max_depth)
+    put("scope.allow_hosts", a.allow_host)
+    put("fetch.concurrency", getattr(a, "concurrency", None))
+    put("politeness.min_delay_s", a.min_delay)
+    put("fetch.user_agent", a.user_agent)
+    put("fetch.map_hosts", a.map_hosts)
+    put("state_dir", str(a.state) if a.state else None)
+    if a.seeds:
+        from frontier.job import read_seeds
+        put("seeds", read_seeds(a.seeds))
+    return o
+
+
+def _settings(a: argparse.Namespace, **extra: Any) -> JobSettings:
+    o = _overrides(a)
+    for k, v in extra.items():
+        o.setdefault(k, v)
+    return load_settings(a.config, o)
+
+
+# -- commands -----------------------------------------------------------------------------
+
+async def _crawl(settings: JobSettings, out: Path, workers: int, *, quiet: bool = False,
+                 admin: str | None = None) -> dict[str, Any]:
+    from frontier.daemon import Daemon, serve
+    from frontier.job import admit_seeds, open_job
+    from frontier.progress import Progress
+    from workers.loop import Worker
+
+    if not settings.seeds:
+        raise SluiceError("no seeds: pass --seeds FILE or set seeds in the job file")
+    registry = CollectorRegistry()
+    async with open_job(settings) as job:
+        if job.server is not None:  # a private server: leases of an earlier run are orphans
+            await job.store.reap(now=2**62)
+        await admit_seeds(job, settings.seeds)
+        daemon = Daemon(job, registry)
+        stop = asyncio.Event()
+        crew = [Worker(job.store, job.admission, out, registry=registry if i == 0 else None,
+                       drain=True) for i in range(workers)]
+        loop = asyncio.get_running_loop()
+
+        def interrupt() -> None:
+            stop.set()
+            for w in crew:
+                w.stop()
+
+        with contextlib.suppress(NotImplementedError):
+            loop.add_signal_handler(signal.SIGINT, interrupt)
+            loop.add_signal_handler(signal.SIGTERM, interrupt)
+        runner = await serve(daemon.app(), admin) if admin else None
+        background = asyncio.create_task(daemon.run(stop))
+        started = time.monotonic()
+        progress = Progress(daemon, quiet=quiet)
+        try:
+            async with progress:
+                await asyncio.gather(*(w.run() for w in crew))
+        finally:
+            stop.set()
+            await background
+            if runner is not None:
+                await runner.cleanup()
+        summary = await daemon.stats_once()
+        summary["elapsed_s"] = round(time.monotonic() - started, 2)
+        summary["interrupted"] = any(w._stop.is_set() for w in crew) and stop.is_set()
+        summary["out"] = str(out)
+        return summary
+
+
+def cmd_crawl(a: argparse.Namespace) -> int:
+    out = Path(a.out)
+    settings = _settings(a, state_dir=str(out / "state"))
+    summary = asyncio.run(_crawl(settings, out, a.workers, quiet=a.quiet, admin=a.admin))
+    print(json.dumps(summary, indent=2))
+    return 0
+
+
+def cmd_daemon(a: argparse.Namespace) -> int:
+    from frontier.daemon import Daemon, serve
+    from frontier.job import admit_seeds, open_job
+
+    settings = _settings(a)
+
+    async def run() -> None:
+        async with open_job(settings) as job:
+            if settings.seeds:
+                res = await admit_seeds(job, settings.seeds)
+                log.info("seeds: %s", res)
+            daemon = Daemon(job, CollectorRegistry())
+            stop = asyncio.Event()
+            loop = asyncio.get_running_loop()
+            loop.add_signal_handler(signal.SIGINT, stop.set)
+            loop.add_signal_handler(signal.SIGTERM, stop.set)
+            runner = await serve(daemon.app(), a.admin) if a.admin else None
+            print(f"sluice daemon: job {settings.name} on {settings.redis.url or 'embedded Redis'}"
+                  + (f", admin http://{a.admin}/" if a.admin else ""), flush=True)
+            try:
+                await daemon.run(stop)
+            finally:
+                if runner is not None:
+                    await runner.cleanup()
+
+    asyncio.run(run())
+    return 0
+
+
+def cmd_worker(a: argparse.Namespace) -> int:
+    from frontier.daemon import metrics_app, serve
+    from frontier.job import open_job
+    from workers.loop import Worker
+
+    base = load_settings(None, {"name": a.job, "redis": {"url": a.redis}})
+
+    async def run() -> int:
+        async with open_job(base, stored=True) as job:
+            if a.concurrency:
+                fetch = job.settings.fetch.model_copy(update={"concurrency": a.concurrency})
+                job.store.settings = job.settings.model_copy(update={"fetch": fetch})
+            registry = CollectorRegistry()
+            worker = Worker(job.store, job.admission, Path(a.out), registry=registry,
+                            drain=a.drain)
+            loop = asyncio.get_running_loop()
+            loop.add_signal_handler(signal.SIGINT, worker.stop)
+            loop.add_signal_handler(signal.SIGTERM, worker.stop)
+            runner = await serve(metrics_app(registry), a.metrics) if a.metrics else None
+            try:
+                await worker.run()
+            finally:
+                if runner is not None:
+                    await runner.cleanup()
+            print(json.dumps({"pages": worker.pages}))
+            return 0
+
+    return asyncio.run(run())
+
+
+def cmd_host(a: argparse.Namespace) -> int:
+    from frontier.job import open_job
+
+    base = load_settings(None, {"name": a.job, "redis": {"url": a.redis}})
+
+    async def run() -> None:
+        async with open_job(base, stored=True) as job:
+            state = await job.store.control(a.host, a.action, a.value)
+            info = await job.store.host_info(a.host)
+            print(json.dumps({"host": a.host, "state": state, **info}, indent=2, default=str))
+
+    asyncio.run(run())
+    return 0
+
+
+def cmd_status(a: argparse.Namespace) -> int:
+    from frontier.job import open_job
+
+    base = load_settings(None, {"name": a.job, "redis": {"url": a.redis}})
+
+    async def run() -> None:
+        async with open_job(base, stored=True) as job:
+            counts = await job.store.counts()
+            data = counts.as_dict()
+            data["balanced"] = counts.balanced
+            print(json.dumps(data, indent=2))
+
+    asyncio.run(run())
+    return 0
+
+
+def cmd_explain(a: argparse.Namespace) -> int:
+    from frontier.explain import explain, format_explain
+    from frontier.job import open_job
+
+    base = load_settings(None, {"name": a.job, "redis": {"url": a.redis},
+                                "state_dir": str(a.state) if a.state else ".sluice"})
+
+    async def run() -> None:
+        async with open_job(base, stored=True) as job:
+            data = await explain(job.store, a.url)
+            print(json.dumps(data, indent=2, default=str) if a.json else format_explain(data))
+
+    asyncio.run(run())
+    return 0
+
+
+def cmd_demo(a: argparse.Namespace) -> int:
+    from frontier.demo import run_demo
+    return run_demo(Path(a.out), hosts=a.hosts, pages=a.pages, max_pages=a.max_pages,
+                    quiet=a.quiet)
+
+
+def cmd_bench(a: argparse.Namespace) -> int:
+    if a.what == "frontier":
+        from frontier.bench.frontier_bench import main as frontier_main
+        return frontier_main(urls=a.urls or 1_000_000, hosts=a.hosts or 10_000)
+    if a.what == "crawl":
+        from frontier.bench.crawl_bench import main as crawl_main
+        return crawl_main(pages=a.urls or 10_000)
+    from frontier.bench.ordering_bench import main as ordering_main
+    return ordering_main()
+
+
+def parser() -> argparse.ArgumentParser:
+    p = argparse.ArgumentParser(prog="sluice", description="A polite, prioritised crawl frontier on Redis.")
+    p.add_argument("-v", "--verbose", action="store_true")
+    sub = p.add_subparsers(dest="command", required=True)
+
+    c = sub.add_parser("crawl", help="scheduler and workers in one process")
+    _job_flags(c)
+    c.add_argument("--out", required=True, help="output folder (WARC files, fetch log, state)")
+    c.add_argument("--workers", type=int, default=1)
+    c.add_argument("--admin", help="HOST:PORT for the admin API and /metrics")
+    c.add_argument("--quiet", action="store_true", help="no live progress")
+    c.set_defaults(func=cmd_crawl)
+
+    d = sub.add_parser("daemon", help="the scheduler of a job shared by many workers")
+    _job_flags(d)
+    d.add_argument("--admin", help="HOST:PORT for the admin API, status page and /metrics")
+    d.set_defaults(func=cmd_daemon)
+
+    w = sub.add_parser("worker", help="a fetch worker for a job started by a daemon")
+    w.add_argument("--redis", required=True)
+    w.add_argument("--job", required=True)
+    w.add_argument("--out", required=True)
+    w.add_argument("--concurrency", type=int)
+    w.add_argument("--metrics", help="HOST:PORT for /metrics")
+    w.add_argument("--drain", action="store_true", help="exit once nothing is queued or leased")
+    w.set_defaults(func=cmd_worker)
+
+    h = sub.add_parser("host", help="boost, pause, resume, block, unblock or delay a host")
+    h.add_argument("--redis", required=True)
+    h.add_argument("--job", required=True)
+    h.add_argument("host")
+    h.add_argument("action", choices=["boost", "pause", "resume", "block", "unblock", "delay"])
+    h.add_argument("value", nargs="?", type=float, help="boost multiplier or delay seconds")
+    h.set_defaults(func=cmd_host)
+
+    s = sub.add_parser("status", help="URL counts by state")
+    s.add_argument("--redis", required=True)
+    s.add_argument("--job", required=True)
+    s.set_defaults(func=cmd_status)
+
+    e = sub.add_parser("explain", help="why a URL has its priority")
+    e.add_argument("url")
+    e.add_argument("--redis", required=True)
+    e.add_argument("--job", required=True)
+    e.add_argument("--state", type=Path)
+    e.add_argument("--json", action="store_true")
+    e.set_defaults(func=cmd_explain)
+
+    m = sub.add_parser("demo", help="crawl the synthetic .test web on the embedded Redis")
+    m.add_argument("--out", default="demo-out")
+    m.add_argument("--hosts", type=int, default=60)
+    m.add_argument("--pages", type=int, default=3000)
+    m.add_argument("--max-pages", type=int, default=2000)
+    m.add_argument("--quiet", action="store_true")
+    m.set_defaults(func=cmd_demo)
+
+    b = sub.add_parser("bench", help="benchmarks that print JSON")
+    b.add_argument("what", choices=["frontier", "crawl", "ordering"])
+    b.add_argument("--urls", type=int, help="URLs (frontier) or pages (crawl)")
+    b.add_argument("--hosts", type=int)
+    b.set_defaults(func=cmd_bench)
+    return p
+
+
+def main(argv: list[str] | None = None) -> int:
+    a = parser().parse_args(argv)
+    logging.basicConfig(level=logging.INFO if a.verbose else logging.WARNING,
+                        format="%(asctime)s %(levelname)s %(name)s: %(message)s")
+    try:
+        return int(a.func(a))
+    except SluiceError as exc:
+        print(f"sluice: {exc}", file=sys.stderr)
+        return 2
+
+
+if __name__ == "__main__":
+    sys.exit(main())

@@ -1,0 +1,161 @@
+"""One HTTP fetch, bounded in every direction, through the address guard.
+
+Redirects are not followed here: a redirect is a response whose Location becomes a new
+frontier URL (scope, robots and address checks again). Bodies are capped before and
+after decompression; a compressed bomb stops at the cap.
+"""
+
+from __future__ import annotations
+
+import asyncio
+import time
+import zlib
+from dataclasses import dataclass, field
+
+import aiohttp
+
+from frontier.exceptions import AddressRefused, FetchError
+from frontier.settings import FetchSettings
+from workers.guard import GuardedConnector, GuardedResolver, parse_host_map
+
+READ_CHUNK = 64 * 1024
+ACCEPT = "text/html,application/xhtml+xml;q=0.9,*/*;q=0.5"
+
+
+@dataclass
+class Response:
+    """What came back: status, headers, the decoded body, and how it went."""
+
+    url: str
+    status: int
+    reason: str
+    headers: list[tuple[str, str]]
+    body: bytes
+    elapsed_s: float
+    remote_ip: str | None = None
+    truncated: str | None = None  # WARC-Truncated reason when the body was cut
+    request_headers: list[tuple[str, str]] = field(default_factory=list)
+
+    def header(self, name: str) -> str | None:
+        lower = name.lower()
+        for k, v in self.headers:
+            if k.lower() == lower:
+                return v
+        return None
+
+    @property
+    def content_type(self) -> str:
+        return (self.header("Content-Type") or "").split(";", 1)[0].strip().lower()
+
+
+class Decoder:
+    """Content-Encoding decoding with a hard cap on the decoded size."""
+
+    def __init__(self, encoding: str | None, limit: int) -> None:
+        enc = (encoding or "identity").strip().lower()
+        if enc in ("gzip", "x-gzip"):
+            self._z: zlib._Decompress | None = zlib.decompressobj(16 + zlib.MAX_WBITS)
+        elif enc == "deflate":
+            self._z = zlib.decompressobj()
+        elif enc in ("identity", ""):
+            self._z = None
+        else:
+            raise FetchError("unsupported_encoding", enc)
+        self.limit = limit
+        self.parts: list[bytes] = []
+        self.size = 0
+
+    def feed(self, chunk: bytes) -> bool:
+        """Add a raw chunk; False once the decoded size reached the cap."""
+        if self._z is None:
+            data = chunk
+        else:
+            try:
+                data = self._z.decompress(chunk, self.limit - self.size + 1)
+            except zlib.error as exc:
+                raise FetchError("bad_encoding", str(exc)) from exc
+        self.parts.append(data)
+        self.size += len(data)
+        return self.size <= self.limit
+
+    def body(self) -> bytes:
+        return b"".join(self.parts)[: self.limit]
+
+
+class Fetcher:
+    """An aiohttp session behind the address guard, with the job's limits."""
+
+    def __init__(self, settings: FetchSettings, user_agent: str) -> None:
+        self.settings = settings
+        self.user_agent = user_agent
+        self.resolver = GuardedResolver(
+            parse_host_map(settings.map_hosts), allow_private=settings.allow_private)
+        self._session: aiohttp.ClientSession | None = None
+
+    async def __aenter__(self) -> Fetcher:
+        s = self.settings
+        connector = GuardedConnector(
+            self.resolver, limit=s.concurrency * 2, limit_per_host=4, ttl_dns_cache=300,
+            enable_cleanup_closed=True)
+        self._session = aiohttp.ClientSession(
+            connector=connector, trust_env=False, auto_decompress=False,
+            timeout=aiohttp.ClientTimeout(
+                total=s.total_timeout_s, sock_connect=s.connect_timeout_s,
+                sock_read=s.read_timeout_s),
+            headers={"User-Agent": self.user_agent, "Accept": ACCEPT,
+                     "Accept-Encoding": "gzip, deflate"},
+            max_line_size=s.max_header_bytes, max_field_size=s.max_header_bytes,
+        )
+        return self
+
+    async def __aexit__(self, *exc: object) -> None:
+        if self._session is not None:
+            await self._session.close()
+            self._session = None
+
+    async def get(self, url: str, *, max_body: int | None = None) -> Response:
+        """GET ``url`` without following redirects. Raises FetchError or AddressRefused."""
+        assert self._session is not None, "use 'async with Fetcher(...)'"
+        s = self.settings
+        limit = max_body or s.max_body_bytes
+        started = time.monotonic()
+        try:
+            async with self._session.get(url, allow_redirects=False) as resp:
+                decoder = Decoder(resp.headers.get("Content-Encoding"), s.max_decompressed_bytes)
+                declared = resp.content_length
+                truncated = None
+                if declared is not None and declared > limit:
+                    truncated = "length"
+                else:
+                    raw = 0
+                    async for chunk in resp.content.iter_chunked(READ_CHUNK):
+                        raw += len(chunk)
+                        if raw > limit or not decoder.feed(chunk):
+                            truncated = "length"
+                            break
+                peer = resp.connection.transport.get_extra_info("peername") if (
+                    resp.connection and resp.connection.transport) else None
+                return Response(
+                    url=url, status=resp.status, reason=resp.reason or "",
+                    headers=list(resp.raw_headers and [
+                        (k.decode("latin-1"), v.decode("latin-1")) for k, v in resp.raw_headers]),
+                    body=decoder.body(), elapsed_s=time.monotonic() - started,
+                    remote_ip=peer[0] if peer else None, truncated=truncated,
+                    request_headers=[(k, v) for k, v in resp.request_info.headers.items()],
+                )
+        except AddressRefused:
+            raise
+        except FetchError:
+            raise
+        except asyncio.TimeoutError as exc:
+            raise FetchError("timeout", url, retryable=True) from exc
+        except aiohttp.ClientResponseError as exc:  # bad status line, headers too large
+            raise FetchError("bad_response", f"{exc.status} {exc.message}") from exc
+        except aiohttp.ClientConnectorError as exc:
+            raise FetchError("connect_error", str(exc), retryable=True) from exc
+        except aiohttp.ClientPayloadError as exc:
+            raise FetchError("bad_payload", str(exc), retryable=True) from exc
+        except aiohttp.ClientError as exc:
+            raise FetchError("client_error", f"{type(exc).__name__}: {exc}", retryable=True) from exc
+        except (ValueError, UnicodeError) as exc:  # invalid URL for aiohttp/yarl
+            raise FetchError("bad_url", str(exc)) from exc

@@ -1,0 +1,374 @@
+"""The fetch worker: lease, check robots, fetch, parse, archive, admit links, complete.
+
+Every lease ends in a completion. Discovered links are admitted *before* the lease is
+completed, so a worker that dies in between loses nothing: the lease expires, the URL is
+fetched again, and URL-seen dedupe absorbs the repeated links (at-least-once).
+"""
+
+from __future__ import annotations
+
+import asyncio
+import email.utils
+import logging
+import time
+from collections.abc import Callable
+from dataclasses import dataclass, field
+from datetime import UTC, datetime
+from pathlib import Path
+from typing import Any
+
+from prometheus_client import CollectorRegistry
+
+from frontier.admission import Admission
+from frontier.budget import PageBudget
+from frontier.exceptions import AddressRefused, FetchError, SluiceError, StoreUnavailable
+from frontier.metrics import WorkerMetrics
+from frontier.model import Candidate, Completion, Lease, Outcome
+from frontier.priority import distribute
+from frontier.robots import RobotsCache, RobotsFetchResult, RobotsRules, robots_url
+from frontier.settings import JobSettings
+from frontier.simhash import NearDuplicateIndex, simhash64
+from frontier.store import FrontierStore
+from frontier.urls import canonicalize
+from workers.archive import FetchEntry, FetchLog, WarcArchive
+from workers.fetcher import Fetcher, Response
+from workers.parser import looks_binary, parse_html
+
+log = logging.getLogger(__name__)
+
+HTML_TYPES = ("text/html", "application/xhtml+xml")
+ROBOTS_REDIRECTS = 5  # RFC 9309 s.2.3.1.2: follow at least five redirects
+ROBOTS_MAX_BYTES = 512 * 1024  # RFC 9309 s.2.5: parse at least 500 KiB
+FLUSH_EVERY_S = 0.02
+FLUSH_SIZE = 64
+IDLE_SLEEP_MAX_S = 0.25
+STORE_RETRY_S = 0.5
+
+
+@dataclass
+class Finished:
+    """A lease's end, waiting to be written to the frontier."""
+
+    completion: Completion
+    links: list[Candidate] = field(default_factory=list)
+
+
+def retry_after_s(value: str | None, now: float) -> float | None:
+    """Seconds from a Retry-After header (delta-seconds or HTTP-date, RFC 9110 s.10.2.3)."""
+    if not value:
+        return None
+    value = value.strip()
+    if value.isdigit():
+        return float(value)
+    try:
+        moment = email.utils.parsedate_to_datetime(value)
+    except (TypeError, ValueError):
+        return None
+    return max(0.0, moment.timestamp() - now)
+
+
+def origin_of(url: str) -> str:
+    """scheme://host[:port] of a canonical URL."""
+    end = url.find("/", url.find("://") + 3)
+    return url if end < 0 else url[:end]
+
+
+class Worker:
+    """One asyncio fetch worker; run several per machine and on many machines."""
+
+    def __init__(
+        self,
+        store: FrontierStore,
+        admission: Admission,
+        out_dir: Path,
+        *,
+        registry: CollectorRegistry | None = None,
+        drain: bool = False,
+        clock: Callable[[], float] = time.time,
+    ) -> None:
+        self.store = store
+        self.settings: JobSettings = store.settings
+        ua = self.settings.fetch.user_agent
+        if not ua:
+            raise SluiceError(
+                "fetch.user_agent is required: an honest User-Agent with a contact URL, "
+                "e.g. --user-agent 'mycrawl/1.0 (+https://example.test/contact)'")
+        self.user_agent = ua
+        self.admission = admission
+        self.out_dir = Path(out_dir)
+        self.drain = drain
+        self.clock = clock
+        self.metrics = WorkerMetrics(registry or CollectorRegistry())
+        self.budget = PageBudget(store.redis, store.keys, self.settings.budget.max_pages)
+        self.near_dups = NearDuplicateIndex(store.redis, store.keys.near_dup)
+        self._fetcher = Fetcher(self.settings.fetch, ua)
+        self._robots = RobotsCache(
+            store.redis, lambda h: store.keys.part_for(h).robots(h), self._fetch_robots,
+            user_agent=ua, ttl_s=self.settings.politeness.robots_ttl_s,
+            error_ttl_s=self.settings.politeness.robots_error_ttl_s,
+            crawl_delay_cap_s=self.settings.politeness.crawl_delay_cap_s,
+            lock_key_for_host=lambda h: store.keys.part_for(h).robots_lock(h))
+        self._finished: list[Finished] = []
+        self._tasks: set[asyncio.Task[None]] = set()
+        self._stop = asyncio.Event()
+        self.pages = 0
+        self.archive: WarcArchive | None = None
+        self.fetch_log: FetchLog | None = None
+
+    def stop(self) -> None:
+        """Ask the worker to finish what it holds and return."""
+        self._stop.set()
+
+    # -- the main loop -------------------------------------------------------------------
+
+    async def run(self) -> None:
+        s = self.settings
+        self.archive = WarcArchive(
+            self.out_dir, prefix=s.output.warc_prefix, max_file_bytes=s.output.warc_max_bytes,
+            software="sluice/0.1", operator=self.user_agent, job=s.name)
+        self.fetch_log = FetchLog(self.out_dir)
+        flusher = asyncio.create_task(self._flush_loop())
+        try:
+            async with self._fetcher:
+                await self._lease_loop()
+                if self._tasks:
+                    await asyncio.gather(*self._tasks, return_exceptions=True)
+        finally:
+            self._stop.set()
+            await flusher
+            await self._flush()
+            self.archive.close()
+            self.fetch_log.close()
+
+    async def _lease_loop(self) -> None:
+        s = self.settings
+        idle = 0.01
+        while not self._stop.is_set():
+            free = s.fetch.concurrency - len(self._tasks)
+            leases: list[Lease] = []
+            if free > 0:
+                try:
+                    leases = await self._lease(min(free, s.lease.batch))
+                except StoreUnavailable as exc:
+                    self.metrics.store_errors.inc()
+                    log.warning("lease failed, retrying: %s", exc)
+            for lease in leases:
+                task = asyncio.create_task(self._handle(lease))
+                self._tasks.add(task)
+                task.add_done_callback(self._tasks.discard)
+            self.metrics.in_flight.set(len(self._tasks))
+            if leases:
+                idle = 0.01
+                await asyncio.sleep(0)
+                continue
+            if self.drain and not self._tasks and not self._finished:
+                if await self._frontier_done():
+                    return
+            await asyncio.wait(
+                [asyncio.create_task(self._stop.wait())] + list(self._tasks),
+                timeout=idle, return_when=asyncio.FIRST_COMPLETED)
+            for t in [t for t in self._tasks if t.done()]:
+                self._tasks.discard(t)
+            idle = min(IDLE_SLEEP_MAX_S, idle * 2)
+
+    async def _lease(self, wanted: int) -> list[Lease]:
+        granted = await self.budget.reserve(wanted)
+        if granted <= 0:
+            return []
+        leases = await self.store.lease(granted)
+        await self.budget.release(granted - len(leases))
+        return leases
+
+    async def _frontier_done(self) -> bool:
+        try:
+            counts = await self.store.counts()
+        except StoreUnavailable:
+            return False
+        if counts.leased == 0 and (counts.queued == 0 or await self.budget.spent(counts.fetched)):
+            return True
+        return False
+
+    # -- one lease ----------------------------------------------------------------------
+
+    async def _handle(self, lease: Lease) -> None:
+        started = time.monotonic()
+        try:
+            finished, entry = await self._process(lease)
+        except Exception as exc:  # a bug must not lose the lease: end it as a retry
+            log.exception("unexpected error on %s", lease.url)
+            finished = Finished(Completion(lease, Outcome.RETRY, reason=f"internal_{type(exc).__name__}"))
+            entry = None
+        c = finished.completion
+        self.metrics.fetches.labels(outcome=c.outcome.value).inc()
+        self.metrics.duration.observe(time.monotonic() - started)
+        if entry is not None and self.fetch_log is not None and c.outcome is not Outcome.RETRY:
+            self.fetch_log.write(entry)
+        if c.outcome is Outcome.FETCHED:
+            self.pages += 1
+        self._finished.append(finished)
+        if len(self._finished) >= FLUSH_SIZE:
+            await self._flush()
+
+    def _entry(self, lease: Lease, outcome: Outcome, reason: str | None,
+               resp: Response | None = None, **kw: Any) -> FetchEntry:
+        return FetchEntry(
+            url=lease.url, outcome=outcome.value, reason=reason,
+            fetched_at=datetime.now(UTC), status=resp.status if resp else None,
+            bytes=len(resp.body) if resp else 0, duration_s=resp.elapsed_s if resp else 0.0,
+            depth=lease.depth, host=lease.host,
+            content_type=resp.content_type if resp else None, **kw)
+
+    async def _process(self, lease: Lease) -> tuple[Finished, FetchEntry | None]:
+        pol = self.settings.politeness
+        crawl_delay: float | None = None
+        if pol.obey_robots:
+            rules = await self._rules(lease.url)
+            crawl_delay = rules.crawl_delay()
+            if not rules.allowed(lease.url):
+                c = Completion(lease, Outcome.EXCLUDED, "robots", crawl_delay_s=crawl_delay)
+                return Finished(c), self._entry(lease, Outcome.EXCLUDED, "robots")
+        try:
+            resp = await self._fetcher.get(lease.url)
+        except AddressRefused as exc:
+            c = Completion(lease, Outcome.EXCLUDED, f"address_{exc.reason}")
+            return Finished(c), self._entry(lease, Outcome.EXCLUDED, c.reason)
+        except FetchError as exc:
+            outcome = Outcome.RETRY if exc.retryable else Outcome.FAILED
+            backoff = pol.retry_backoff_s * (2 ** lease.attempts) if exc.retryable else 0.0
+            c = Completion(lease, outcome, exc.reason, extra_delay_s=min(backoff, pol.max_delay_s),
+                           crawl_delay_s=crawl_delay)
+            return Finished(c), self._entry(lease, outcome, exc.reason)
+        self.metrics.responses.labels(status_class=f"{resp.status // 100}xx").inc()
+        self.metrics.bytes.inc(len(resp.body))
+        base = Completion(lease, Outcome.FETCHED, f"http_{resp.status}",
+                          response_s=resp.elapsed_s, crawl_delay_s=crawl_delay)
+        if resp.status in (429, 503) or resp.status >= 500:
+            wait = retry_after_s(resp.header("Retry-After"), self.clock())
+            if wait is None:
+                wait = pol.retry_backoff_s * (2 ** lease.attempts)
+            c = Completion(lease, Outcome.RETRY, f"http_{resp.status}", response_s=resp.elapsed_s,
+                           extra_delay_s=min(wait, pol.max_delay_s), crawl_delay_s=crawl_delay)
+            return Finished(c), self._entry(lease, Outcome.RETRY, c.reason, resp)
+        if 300 <= resp.status < 400:
+            return self._redirect(lease, resp, base)
+        if resp.status >= 400:
+            c = Completion(lease, Outcome.FAILED, f"http_{resp.status}", response_s=resp.elapsed_s,
+                           crawl_delay_s=crawl_delay)
+            return Finished(c), self._entry(lease, Outcome.FAILED, c.reason, resp)
+        return await self._page(lease, resp, base)
+
+    def _redirect(self, lease: Lease, resp: Response, base: Completion) -> tuple[Finished, FetchEntry]:
+        location = resp.header("Location")
+        links: list[Candidate] = []
+        if location:
+            links.append(Candidate(canonical_or_raw(location, lease.url), depth=lease.depth,
+                                   cash=lease.cash, credit=lease.cash, source_host=lease.host))
+        ref = self._archive(lease, resp, [(c.url, "redirect") for c in links])
+        return Finished(base, links), self._entry(
+            lease, Outcome.FETCHED, f"redirect_{resp.status}", resp, **ref)
+
+    async def _page(self, lease: Lease, resp: Response, base: Completion) -> tuple[Finished, FetchEntry]:
+        fetch = self.settings.fetch
+        ctype = resp.content_type
+        reason = "truncated" if resp.truncated else None
+        if ctype and ctype not in HTML_TYPES or looks_binary(resp.body[:1024]):
+            if not fetch.archive_other_types:
+                c = Completion(lease, Outcome.EXCLUDED, "content_type", response_s=resp.elapsed_s,
+                               crawl_delay_s=base.crawl_delay_s)
+                return Finished(c), self._entry(lease, Outcome.EXCLUDED, "content_type", resp)
+            ref = self._archive(lease, resp, None)
+            kind = "binary" if looks_binary(resp.body[:1024]) else "not_html"
+            return Finished(base), self._entry(lease, Outcome.FETCHED, reason or kind, resp, **ref)
+        page = parse_html(resp.body, lease.url, content_type=resp.header("Content-Type"))
+        fingerprint = simhash64(page.text) if page.text else None
+        duplicate = None
+        if fingerprint is not None:
+            try:
+                duplicate = await self.near_dups.check_and_add(fingerprint)
+            except StoreUnavailable:
+                duplicate = None
+        follow = [(ln.url, ln.anchor) for ln in page.links
+                  if fetch.follow_nofollow or not (ln.nofollow or page.meta_nofollow)]
+        ref = self._archive(lease, resp, [(ln.url, ln.anchor) for ln in page.links])
+        links: list[Candidate] = []
+        if duplicate is not None:
+            self.metrics.near_duplicates.inc()
+            reason = "near_duplicate"
+        else:
+            links = distribute(lease.url, lease.cash, lease.depth, follow, self.settings.priority)
+        self.metrics.links.inc(len(links))
+        return Finished(base, links), self._entry(
+            lease, Outcome.FETCHED, reason, resp, simhash=fingerprint, **ref)
+
+    def _archive(self, lease: Lease, resp: Response,
+                 outlinks: list[tuple[str, str]] | None) -> dict[str, Any]:
+        assert self.archive is not None
+        path = "/" + lease.url.split("/", 3)[3] if lease.url.count("/") >= 3 else "/"
+        ref = self.archive.write_exchange(
+            lease.url, ("GET", path, resp.request_headers), resp.status, resp.reason,
+            resp.headers, resp.body, datetime.now(UTC), remote_ip=resp.remote_ip,
+            outlinks=outlinks, truncated=resp.truncated)
+        return {"warc_file": ref.file, "warc_offset": ref.offset}
+
+    # -- robots -------------------------------------------------------------------------
+
+    async def _rules(self, url: str) -> RobotsRules:
+        return await self._robots.rules_for(origin_of(url))
+
+    async def _fetch_robots(self, url: str) -> RobotsFetchResult:
+        """GET robots.txt, following up to five redirects (RFC 9309 s.2.3.1.2)."""
+        target = url
+        for _ in range(ROBOTS_REDIRECTS + 1):
+            try:
+                resp = await self._fetcher.get(target, max_body=ROBOTS_MAX_BYTES)
+            except (FetchError, AddressRefused) as exc:
+                return RobotsFetchResult(None, b"", str(exc))
+            if 300 <= resp.status < 400 and resp.header("Location"):
+                target = canonical_or_raw(resp.header("Location") or "", target)
+                continue
+            return RobotsFetchResult(resp.status, resp.body, None)
+        return RobotsFetchResult(None, b"", "too_many_redirects")
+
+    # -- writing back -------------------------------------------------------------------
+
+    async def _flush_loop(self) -> None:
+        while not self._stop.is_set():
+            try:
+                await asyncio.wait_for(self._stop.wait(), FLUSH_EVERY_S)
+            except TimeoutError:
+                pass
+            await self._flush()
+
+    async def _flush(self) -> None:
+        """Admit the links of finished leases, then complete the leases."""
+        while self._finished:
+            batch, self._finished = self._finished, []
+            try:
+                links = [c for f in batch for c in f.links]
+                if links:
+                    await self.admission.admit(links)
+                statuses = await self.store.complete_many([f.completion for f in batch])
+            except StoreUnavailable as exc:
+                self.metrics.store_errors.inc()
+                log.warning("frontier unavailable, will retry %d completions: %s", len(batch), exc)
+                self._finished = batch + self._finished
+                if self._stop.is_set() and not self._tasks:
+                    raise
+                await asyncio.sleep(STORE_RETRY_S)
+                continue
+            released = 0
+            for f, status in zip(batch, statuses):
+                if status != "ok":
+                    log.info("lease %s for %s was %s", f.completion.lease.id,
+                             f.completion.lease.url, status)
+                if status != "ok" or f.completion.outcome is not Outcome.FETCHED:
+                    released += 1
+            await self.budget.release(released)
+
+
+def canonical_or_raw(href: str, base: str) -> str:
+    """An absolute URL for ``href``; the raw text if it cannot be resolved (admission reports it)."""
+    try:
+        return canonicalize(href, base)
+    except SluiceError:
+        return href
