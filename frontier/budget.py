@@ -46,12 +46,19 @@ class PageBudget:
         async with redis_boundary("budget"):
             await self.redis.hincrby(self.key, "used", -slots)
 
-    async def reconcile(self, fetched: int, leased: int) -> None:
-        """Set the counter to what the partitions say is fetched or in flight."""
+    async def used(self) -> int | None:
+        """Slots taken now (None when unlimited)."""
+        if self.max_pages is None:
+            return None
+        async with redis_boundary("budget"):
+            return int(await self.redis.hget(self.key, "used") or 0)
+
+    async def reconcile(self, used: int) -> None:
+        """Set the counter (the daemon passes fetched + leased)."""
         if self.max_pages is None:
             return
         async with redis_boundary("budget"):
-            await self.redis.hset(self.key, "used", fetched + leased)
+            await self.redis.hset(self.key, "used", used)
 
     async def spent(self, fetched: int) -> bool:
         return self.max_pages is not None and fetched >= self.max_pages

@@ -98,7 +98,11 @@ async def _crawl(settings: JobSettings, out: Path, workers: int, *, quiet: bool 
                        drain=True) for i in range(workers)]
         loop = asyncio.get_running_loop()
 
+        interrupted = False
+
         def interrupt() -> None:
+            nonlocal interrupted
+            interrupted = True
             stop.set()
             for w in crew:
                 w.stop()
@@ -120,7 +124,7 @@ async def _crawl(settings: JobSettings, out: Path, workers: int, *, quiet: bool 
                 await runner.cleanup()
         summary = await daemon.stats_once()
         summary["elapsed_s"] = round(time.monotonic() - started, 2)
-        summary["interrupted"] = any(w._stop.is_set() for w in crew) and stop.is_set()
+        summary["interrupted"] = interrupted
         summary["out"] = str(out)
         return summary
 

@@ -35,6 +35,7 @@ class Daemon:
         self.metrics = FrontierMetrics(registry)
         self.budget = PageBudget(job.redis, job.store.keys, job.settings.budget.max_pages)
         self.last_counts: dict[str, Any] = {}
+        self._budget_seen: tuple[int, int] | None = None
 
     async def reap_once(self) -> None:
         for result, n in (await self.job.store.reap()).items():
@@ -45,9 +46,25 @@ class Daemon:
         data = counts.as_dict()
         data["balanced"] = counts.balanced
         self.metrics.update({k: v for k, v in data.items() if isinstance(v, int)})
-        await self.budget.reconcile(counts.fetched, counts.leased)
+        await self._reconcile_budget(counts.fetched + counts.leased)
         self.last_counts = data
         return data
+
+    async def _reconcile_budget(self, expected: int) -> None:
+        """Fix the page-budget counter: up at once; down only when it sat still twice.
+
+        Workers reserve slots just before leasing, so a counter above fetched + leased
+        is normal for a moment; one that stays put while nothing moves was leaked by a
+        worker that died holding slots.
+        """
+        used = await self.budget.used()
+        if used is None:
+            return
+        if used < expected:
+            await self.budget.reconcile(expected)
+        elif used > expected and self._budget_seen == (used, expected):
+            await self.budget.reconcile(expected)
+        self._budget_seen = (used, expected)
 
     async def _every(self, seconds: float, step: Any) -> None:
         while True:

@@ -122,17 +122,17 @@ class Fetcher:
         try:
             async with self._session.get(url, allow_redirects=False) as resp:
                 decoder = Decoder(resp.headers.get("Content-Encoding"), s.max_decompressed_bytes)
-                declared = resp.content_length
                 truncated = None
-                if declared is not None and declared > limit:
-                    truncated = "length"
-                else:
-                    raw = 0
+                raw = 0
+                try:
                     async for chunk in resp.content.iter_chunked(READ_CHUNK):
+                        room = limit - raw
                         raw += len(chunk)
-                        if raw > limit or not decoder.feed(chunk):
-                            truncated = "length"
+                        if not decoder.feed(chunk[:room]) or raw > limit:
+                            truncated = "length"  # keep the first `limit` bytes, say so
                             break
+                except asyncio.TimeoutError:  # a slow drip: keep what came, say so
+                    truncated = "time"
                 peer = resp.connection.transport.get_extra_info("peername") if (
                     resp.connection and resp.connection.transport) else None
                 return Response(

@@ -270,7 +270,7 @@ class Worker:
     async def _page(self, lease: Lease, resp: Response, base: Completion) -> tuple[Finished, FetchEntry]:
         fetch = self.settings.fetch
         ctype = resp.content_type
-        reason = "truncated" if resp.truncated else None
+        reason = f"truncated_{resp.truncated}" if resp.truncated else None
         if ctype and ctype not in HTML_TYPES or looks_binary(resp.body[:1024]):
             if not fetch.archive_other_types:
                 c = Completion(lease, Outcome.EXCLUDED, "content_type", response_s=resp.elapsed_s,

@@ -90,7 +90,7 @@ async def crawl(pages: int, port: int, seeds: list[str], out: Path, redis_url: s
     if prof:
         prof.disable()
     elapsed = time.perf_counter() - started
-    fetched_urls = [json.loads(line)["url"] for line in (out / "fetches.jsonl").open()
+    fetched_urls = [json.loads(line)["url"] for line in (out / "fetches.jsonl").read_text().splitlines()
                     if '"outcome": "fetched"' in line]
     top = ""
     if prof:
