@@ -17,6 +17,9 @@ from redis.asyncio.connection import Connection
 from frontier.exceptions import ConfigError
 
 
+CLUSTER_POOL_FACTOR = 4  # cluster node pools cannot block, so they get more room
+
+
 class FastConnection(Connection):
     """An asyncio connection that packs commands with hiredis."""
 
@@ -39,15 +42,17 @@ def connect(url: str, *, max_connections: int = 64, timeout_s: float = 10.0) -> 
         return _cluster(url.replace("redis+cluster://", "redis://", 1), max_connections, timeout_s)
     if not url.startswith(("redis://", "rediss://", "unix://")):
         raise ConfigError(f"redis.url: {url!r} is not a redis:// URL")
-    return aioredis.Redis.from_url(
-        url, max_connections=max_connections, socket_timeout=timeout_s,
+    # a blocking pool: a burst of concurrent calls waits for a connection instead of failing
+    pool = aioredis.BlockingConnectionPool.from_url(
+        url, max_connections=max_connections, timeout=timeout_s, socket_timeout=timeout_s,
         socket_connect_timeout=timeout_s, connection_class=FastConnection,
     )
+    return aioredis.Redis.from_pool(pool)  # the client owns the pool: aclose() closes it
 
 
 def _cluster(url: str, max_connections: int, timeout_s: float) -> Any:
     client = RedisCluster.from_url(
-        url, max_connections=max_connections, socket_timeout=timeout_s,
+        url, max_connections=max_connections * CLUSTER_POOL_FACTOR, socket_timeout=timeout_s,
         socket_connect_timeout=timeout_s,
     )
     client.nodes_manager.connection_kwargs["connection_class"] = FastConnection

@@ -30,6 +30,16 @@ HOST_ACTIONS = ("boost", "pause", "resume", "block", "unblock", "delay")
 PROMOTE_LIMIT = 1000  # due hosts moved to ready per lease_pick call
 REAP_BATCH = 500  # expired leases handled per reap call and partition
 CLAIM_TTL_MS = 10_000  # a picked host returns to due if not leased within this time
+COLD_SCAN_CHUNK = 1000  # cold-list entries read per call when looking for one URL
+COLD_SCAN_LIMIT = 200_000  # entries of one cold list searched before giving up
+
+
+def _text(value: Any) -> str:
+    return value.decode() if isinstance(value, bytes) else str(value)
+
+
+async def _none() -> list[Lease]:
+    return []
 
 
 def now_ms(clock: Callable[[], float] = time.time) -> int:
@@ -63,9 +73,19 @@ class PartitionBatch:
     hosts: dict[str, list[QueuedUrl]] = field(default_factory=dict)
     budgets: dict[str, int] = field(default_factory=dict)
     refused: list[tuple[int, str]] = field(default_factory=list)  # (fingerprint, reason)
+    # host -> distinct other politeness keys whose pages link to it in this batch
+    sources: dict[str, set[str]] = field(default_factory=dict)
 
     def add(self, host: str, item: QueuedUrl) -> None:
         self.hosts.setdefault(host, []).append(item)
+
+    def add_source(self, host: str, source: str) -> None:
+        """Record that a page of ``source`` links to ``host`` (budget growth)."""
+        found = self.sources.get(host)
+        if found is None:
+            self.sources[host] = {source}
+        else:
+            found.add(source)
 
     def __len__(self) -> int:
         return sum(len(v) for v in self.hosts.values()) + len(self.refused)
@@ -148,7 +168,9 @@ class FrontierStore:
     async def _admit_one(self, partition: int, batch: PartitionBatch, now: int) -> AdmitResult:
         pk = self.keys.part(partition)
         keys: list[str] = [pk.counts, pk.reasons, pk.due, pk.ready, pk.prio, pk.claims, pk.hosts]
-        args: list[Any] = [now, self.settings.store.hot_capacity, len(batch.hosts), len(batch.refused)]
+        prio = self.settings.priority
+        args: list[Any] = [now, self.settings.store.hot_capacity, len(batch.hosts), len(batch.refused),
+                           prio.host_budget_base, prio.host_budget_per_linking_host]
         slots: dict[int, int] = {}  # seen bucket -> its 1-based place among the seen keys
         buckets = self.buckets
 
@@ -160,9 +182,11 @@ class FrontierStore:
             return s
 
         default_budget = self.settings.budget.max_pages_per_host or 0
+        sources = batch.sources
         for host, items in batch.hosts.items():
-            keys += (pk.host(host), pk.hot(host), pk.cold(host))
-            args += (host, batch.budgets.get(host, default_budget), len(items))
+            keys += (pk.host(host), pk.hot(host), pk.cold(host), pk.linking_hosts(host))
+            linking = sources.get(host, ())
+            args += (host, batch.budgets.get(host, default_budget), len(linking), *linking, len(items))
             for url, fp, score, credit in items:
                 b = fp % buckets
                 args += (slots.get(b) or slot(fp), fp, score, credit, url)
@@ -177,31 +201,32 @@ class FrontierStore:
     async def lease(self, n: int, now: int | None = None) -> list[Lease]:
         """Lease up to ``n`` URLs, at most one per politeness key, best hosts first.
 
-        Partitions are asked in turn, starting at a rotating offset, so workers on many
-        machines spread over them.
+        Each partition is a best-first queue of its ready hosts. ``n`` is spread over the
+        partitions in turn, from a rotating offset, so workers on many machines spread
+        over them; partitions that come up short are dropped and the rest asked again.
         """
         t = self._now(now)
         parts = self.settings.store.partitions
         start = self._next_partition
         self._next_partition = (start + 1) % parts
-        order = [(start + i) % parts for i in range(parts)]
-        share = max(1, math.ceil(n / parts))
+        open_parts = [(start + i) % parts for i in range(parts)]
         leases: list[Lease] = []
         async with redis_boundary("lease"):
-            picked = await asyncio.gather(*(self._pick(p, share, t) for p in order))
-            got = await asyncio.gather(
-                *(self._take(p, hosts, t) for p, hosts in zip(order, picked) if hosts)
-            )
-            for batch in got:
-                leases += batch
-            # partitions that filled their share may have more: ask them for the rest
-            for p, hosts in zip(order, picked):
-                if len(leases) >= n:
-                    break
-                if len(hosts) == share:
-                    more = await self._pick(p, n - len(leases), t)
-                    if more:
-                        leases += await self._take(p, more, t)
+            while len(leases) < n and open_parts:
+                want = n - len(leases)
+                # spread what is still wanted over partitions not yet found short, in turn
+                shares = [want // len(open_parts) + (1 if i < want % len(open_parts) else 0)
+                          for i in range(len(open_parts))]
+                asked = [(p, k) for p, k in zip(open_parts, shares) if k]
+                picked = await asyncio.gather(*(self._pick(p, k, t) for p, k in asked))
+                got = await asyncio.gather(*(self._take(p, hosts, t) if hosts else _none()
+                                             for (p, _), hosts in zip(asked, picked)))
+                short = set()
+                for (p, k), batch in zip(asked, got):
+                    leases += batch
+                    if len(batch) < k:
+                        short.add(p)
+                open_parts = [p for p in open_parts if p not in short]
         return leases
 
     async def _pick(self, partition: int, n: int, now: int) -> list[str]:
@@ -346,6 +371,58 @@ class FrontierStore:
         }
         info.update(queued=hot + cold, due_ms=due, ready_priority=ready)
         return info
+
+    async def url_facts(self, url: str, fingerprint: int, host: str) -> dict[str, Any]:
+        """Everything stored about one canonical URL and its politeness key (for explain).
+
+        Reads only: URL-seen bucket, hot window (score and rank), cold list (position),
+        leases, attempts, dead letters, the host hash, its linking-hosts count and the
+        partition's schedule sets. Per-URL ended states are not stored.
+        """
+        pk = self.keys.part_for(host)
+        r = self.redis
+        out: dict[str, Any] = {"partition": pk.index}
+        async with redis_boundary("explain"):
+            out["seen"] = bool(await r.sismember(pk.seen(self.bucket_of(fingerprint)), fingerprint))
+            out["hot_score"] = await r.zscore(pk.hot(host), url)
+            out["hot_rank"] = await r.zrevrank(pk.hot(host), url)
+            out["hot_size"] = await r.zcard(pk.hot(host))
+            out["cold_size"] = await r.llen(pk.cold(host))
+            out["cold_position"], out["cold_score"] = await self._find_cold(pk.cold(host), url)
+            out["lease"] = None
+            for member, expiry in await r.zrange(pk.leases, 0, -1, withscores=True):
+                text = member.decode() if isinstance(member, bytes) else member
+                if text.split("\n", 4)[-1] == url:
+                    out["lease"] = Lease.from_member(text, int(expiry))
+            attempts = await r.hget(pk.attempts, url)
+            out["attempts"] = int(attempts) if attempts is not None else 0
+            dead = await r.hget(pk.dead, url)
+            out["dead_reason"] = dead.decode() if isinstance(dead, bytes) else dead
+            fields = await r.hgetall(pk.host(host))
+            out["host"] = {_text(k): _text(v) for k, v in fields.items()}
+            out["linking_hosts"] = int(await r.pfcount(pk.linking_hosts(host)))
+            out["due_ms"] = await r.zscore(pk.due, host)
+            out["ready_priority"] = await r.zscore(pk.ready, host)
+            out["ready_rank"] = await r.zrevrank(pk.ready, host)
+            out["ready_size"] = await r.zcard(pk.ready)
+            out["due_size"] = await r.zcard(pk.due)
+            out["claimed_until_ms"] = await r.zscore(pk.claims, host)
+            prio = await r.hget(pk.prio, host)
+            out["priority"] = float(prio) if prio is not None else None
+        return out
+
+    async def _find_cold(self, key: str, url: str) -> tuple[int | None, int | None]:
+        """(0-based position, score) of ``url`` in a cold list, or (None, None)."""
+        suffix = " " + url
+        for start in range(0, COLD_SCAN_LIMIT, COLD_SCAN_CHUNK):
+            chunk = await self.redis.lrange(key, start, start + COLD_SCAN_CHUNK - 1)
+            for i, raw in enumerate(chunk):
+                entry = _text(raw)
+                if entry.endswith(suffix) and " " not in entry[: len(entry) - len(suffix)]:
+                    return start + i, int(float(entry[: len(entry) - len(suffix)]))
+            if len(chunk) < COLD_SCAN_CHUNK:
+                break
+        return None, None
 
     async def is_drained(self) -> bool:
         """True when nothing is queued or leased."""

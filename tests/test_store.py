@@ -33,6 +33,14 @@ def done(lease: Any, outcome: Outcome = Outcome.FETCHED, **kw: Any) -> Completio
     return Completion(lease, outcome, **kw)
 
 
+async def test_lease_never_returns_more_than_asked(make_store: StoreFactory) -> None:
+    store = make_store(store={"partitions": 4})
+    await admit(store, *(f"http://h{i}.test/x" for i in range(12)))
+    assert len(await store.lease(1)) == 1
+    assert len(await store.lease(3)) == 3
+    assert len(await store.lease(100)) == 8
+
+
 async def test_one_lease_per_host_and_next_fetch_time(make_store: StoreFactory, clock: Clock) -> None:
     store = make_store(politeness={"min_delay_s": 2.0, "response_time_factor": 10.0})
     await admit(store, *(f"http://a.test/{i}" for i in range(5)), *(f"http://b.test/{i}" for i in range(5)))
@@ -49,7 +57,9 @@ async def test_one_lease_per_host_and_next_fetch_time(make_store: StoreFactory, 
 
 
 async def test_best_url_first_and_best_host_first(make_store: StoreFactory, clock: Clock) -> None:
-    store = make_store(politeness={"min_delay_s": 0.0, "response_time_factor": 0.0})
+    # best-first holds within a partition (each is its own queue of ready hosts)
+    store = make_store(store={"partitions": 1},
+                       politeness={"min_delay_s": 0.0, "response_time_factor": 0.0})
     await admit(store, "http://a.test/low", cash=1.0)
     await admit(store, "http://a.test/high", cash=5.0)
     await admit(store, "http://b.test/mid", cash=3.0)
