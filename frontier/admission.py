@@ -16,6 +16,9 @@ from frontier.store import FrontierStore, PartitionBatch, QueuedUrl
 from frontier.urls import Scope, canonicalize, fingerprint, host_of, politeness_key
 
 HOST_CACHE_SIZE = 100_000  # hosts whose politeness key and partition are remembered
+# A seed's host counts one linking host (the operator vouches for it), so its earned
+# budget is base + one step. A space keeps the marker apart from every host name.
+SEED_SOURCE = " seed"
 
 
 def scope_from_settings(settings: JobSettings, seeds: Iterable[str] = ()) -> Scope:
@@ -50,6 +53,7 @@ class Admission:
         parts, max_length, schemes = self.partitions, self.max_length, self.schemes
         places = self._places
         check = self.scope.check
+        key_mode = self.key_mode
         for c in candidates:
             try:
                 url = canonicalize(c.url, max_length=max_length, schemes=schemes)
@@ -78,6 +82,14 @@ class Admission:
                 queue = batch.hosts[place[0]] = []
             queue.append(QueuedUrl(url, fingerprint(url), encode_score(c.cash, c.depth),
                                    encode_credit(c.credit)))
+            source = c.source_host
+            if source is None:
+                if c.depth == 0:
+                    batch.add_source(place[0], SEED_SOURCE)
+            elif source != host:
+                source_key = politeness_key(source, key_mode) if key_mode != "host" else source
+                if source_key != place[0]:
+                    batch.add_source(place[0], source_key)
         return batches
 
     async def admit(self, candidates: Iterable[Candidate], now: int | None = None) -> AdmitResult:

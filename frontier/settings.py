@@ -112,16 +112,30 @@ class FetchSettings(_Part):
 
 
 class PrioritySettings(_Part):
-    """Importance estimation (OPIC, Abiteboul, Preda & Cobena, WWW 2003) and its defences."""
+    """Importance estimation (OPIC, Abiteboul, Preda & Cobena, WWW 2003) and its defences.
 
-    seed_cash: float = Field(default=1.0, gt=0)
+    Per-host budgets grow with the number of other hosts linking in (Lee, Leonard, Wang
+    & Loguinov, "IRLbot", WWW 2008). docs/priority.md describes every knob.
+    """
+
+    seed_cash: float = Field(default=1.0, gt=0, description="cash of each seed")
+    # PageRank's damping (Page, Brin et al. 1998: alpha = 0.85, so 0.15 jumps)
     jump_share: float = Field(default=0.15, ge=0, lt=1, description="cash to the random-jump pool")
-    cross_host_weight: float = Field(default=4.0, ge=1, description="a link to another host counts this much more")
-    host_budget_base: int = Field(default=50, ge=1, description="pages a host may get with no in-links from other hosts")
-    host_budget_per_linking_host: int = Field(default=200, ge=0)
+    jump_floor: float = Field(
+        default=0.001, ge=0, description="cash each new URL gets from the random-jump pool"
+    )
+    cross_host_weight: float = Field(
+        default=4.0, ge=1, description="a link to another host counts this much more"
+    )
+    host_budget_base: int = Field(
+        default=20, ge=0, description="URLs a host may get with no other host linking in (0: no earned budget)"
+    )
+    host_budget_per_linking_host: int = Field(
+        default=25, ge=0, description="more URLs per distinct other host linking in"
+    )
     trap_depth: int = Field(default=8, ge=1, description="path segments beyond which a URL is penalised")
     trap_length: int = Field(default=200, ge=16, description="URL length beyond which a URL is penalised")
-    trap_penalty: float = Field(default=0.05, gt=0, le=1)
+    trap_penalty: float = Field(default=0.05, gt=0, le=1, description="cash factor per trap sign")
 
 
 class OutputSettings(_Part):

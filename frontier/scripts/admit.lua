@@ -1,20 +1,29 @@
 -- admit: add a batch of URLs of one partition to the frontier.
 -- KEYS[1] counts   KEYS[2] reasons   KEYS[3] due   KEYS[4] ready   KEYS[5] prio
 -- KEYS[6] claims   KEYS[7] hosts
--- KEYS[8 ..]       per host group g (0-based): host hash, hot ZSET, cold LIST (3 keys)
+-- KEYS[8 ..]       per host group g (0-based): host hash, hot ZSET, cold LIST,
+--                  linking-hosts HyperLogLog (4 keys)
 -- then             the URL-seen buckets this batch touches
 -- ARGV[1] now (ms)  ARGV[2] hot capacity  ARGV[3] number of host groups  ARGV[4] excluded count
--- then per group:  host, budget (0: none), n, and n times: seen slot, fingerprint, score, credit, url
+-- ARGV[5] budget base  ARGV[6] budget per linking host
+-- then per group:  host, absolute budget (0: none), m, m linking hosts (other hosts whose
+--                  pages link here, ' seed' for a seed), n, and n times: seen slot,
+--                  fingerprint, score, credit, url
 -- then per excluded URL: seen slot, fingerprint, reason
 -- (a seen slot is a 1-based index into the seen-bucket part of KEYS)
 -- A new URL is queued on its host (or excluded: host blocked, host budget spent); a URL
 -- seen before that still waits in its host's hot window gains `credit` (OPIC cash).
+-- Budgets (Lee, Leonard, Wang & Loguinov, WWW 2008): a host may hold
+-- base + per x (distinct linking hosts) URLs, and never more than its absolute budget.
+-- A URL beyond the earned budget is excluded ('host_link_budget') but not remembered as
+-- seen, so it may be admitted when offered again after more hosts link to its host.
 -- Returns {new, credited, excluded, duplicates}.
 local now = tonumber(ARGV[1])
 local cap = tonumber(ARGV[2])
 local ngroups = tonumber(ARGV[3])
 local nexcl = tonumber(ARGV[4])
-local seen_base = 7 + 3 * ngroups
+local base, per = tonumber(ARGV[5]), tonumber(ARGV[6])
+local seen_base = 7 + 4 * ngroups
 local S = {due = KEYS[3], ready = KEYS[4], prio = KEYS[5], claims = KEYS[6]}
 local new, credited, excluded, dups = 0, 0, 0, 0
 local reasons = {}
@@ -24,11 +33,33 @@ local function exclude(reason)
   reasons[reason] = (reasons[reason] or 0) + 1
 end
 
-local a = 5
+-- The URLs this host may hold now, and whether that limit is earned (may still grow).
+-- `wanted`: the most URLs the host can hold after this batch (no count needed below base).
+local function host_limit(budget, linking, wanted)
+  if base == 0 or wanted <= base then
+    return budget, false
+  end
+  local earned = base
+  if per > 0 then
+    earned = base + per * redis.call('PFCOUNT', linking)
+  end
+  if budget > 0 and budget <= earned then
+    return budget, false
+  end
+  return earned, true
+end
+
+local a = 7
 for g = 0, ngroups - 1 do
-  local host, budget, n = ARGV[a], tonumber(ARGV[a + 1]), tonumber(ARGV[a + 2])
+  local host, budget, m = ARGV[a], tonumber(ARGV[a + 1]), tonumber(ARGV[a + 2])
   a = a + 3
-  local hk, hot, cold = KEYS[8 + 3 * g], KEYS[9 + 3 * g], KEYS[10 + 3 * g]
+  local hk, hot, cold, linking = KEYS[8 + 4 * g], KEYS[9 + 4 * g], KEYS[10 + 4 * g], KEYS[11 + 4 * g]
+  for i = a, a + m - 1, 1000 do
+    redis.call('PFADD', linking, unpack(ARGV, i, math.min(i + 999, a + m - 1)))
+  end
+  a = a + m
+  local n = tonumber(ARGV[a])
+  a = a + 1
   local f = redis.call('HMGET', hk, 'state', 'admitted')
   local state, admitted = f[1], tonumber(f[2] or '0')
   if not state then
@@ -36,16 +67,24 @@ for g = 0, ngroups - 1 do
     redis.call('HSET', hk, 'state', state, 'boost', '1')
     redis.call('SADD', KEYS[7], host)
   end
+  local limit, earned = host_limit(budget, linking, admitted + n)
   local changed = false
   local q = nil
   for _ = 1, n do
     local slot, fp, score, credit, url = ARGV[a], ARGV[a + 1], ARGV[a + 2], ARGV[a + 3], ARGV[a + 4]
     a = a + 5
-    if redis.call('SADD', KEYS[seen_base + tonumber(slot)], fp) == 1 then
+    local full = limit > 0 and admitted >= limit
+    local fresh
+    if full and earned and state ~= 'blocked' then
+      fresh = redis.call('SISMEMBER', KEYS[seen_base + tonumber(slot)], fp) == 0
+    else
+      fresh = redis.call('SADD', KEYS[seen_base + tonumber(slot)], fp) == 1
+    end
+    if fresh then
       if state == 'blocked' then
         exclude('host_blocked')
-      elseif budget > 0 and admitted >= budget then
-        exclude('host_budget')
+      elseif full then
+        exclude(earned and 'host_link_budget' or 'host_budget')
       else
         q = q or queue_open(hot, cold, cap)
         queue_push(q, url, score)
