@@ -90,8 +90,8 @@ async def crawl(pages: int, port: int, seeds: list[str], out: Path, redis_url: s
     if prof:
         prof.disable()
     elapsed = time.perf_counter() - started
-    fetched_urls = [json.loads(line)["url"] for line in (out / "fetches.jsonl").read_text().splitlines()
-                    if '"outcome": "fetched"' in line]
+    entries = [json.loads(line) for line in (out / "fetches.jsonl").read_text().splitlines()]
+    fetched_urls = [e["url"] for e in entries if e["outcome"] == "fetched"]
     top = ""
     if prof:
         buf = io.StringIO()
