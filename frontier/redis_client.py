@@ -17,7 +17,6 @@ from redis.asyncio.connection import Connection
 from frontier.exceptions import ConfigError
 
 
-CLUSTER_POOL_FACTOR = 4  # cluster node pools cannot block, so they get more room
 
 
 class FastConnection(Connection):
@@ -32,7 +31,7 @@ class FastConnection(Connection):
         return [hiredis.pack_command(args)]
 
 
-def connect(url: str, *, max_connections: int = 64, timeout_s: float = 10.0) -> Any:
+def connect(url: str, *, max_connections: int = 512, timeout_s: float = 10.0) -> Any:
     """A client for ``redis://host:port/db`` or ``redis+cluster://host:port`` (a Cluster).
 
     A plain ``redis://`` URL that points at a cluster-enabled server also yields a
@@ -42,9 +41,10 @@ def connect(url: str, *, max_connections: int = 64, timeout_s: float = 10.0) -> 
         return _cluster(url.replace("redis+cluster://", "redis://", 1), max_connections, timeout_s)
     if not url.startswith(("redis://", "rediss://", "unix://")):
         raise ConfigError(f"redis.url: {url!r} is not a redis:// URL")
-    # a blocking pool: a burst of concurrent calls waits for a connection instead of failing
-    pool = aioredis.BlockingConnectionPool.from_url(
-        url, max_connections=max_connections, timeout=timeout_s, socket_timeout=timeout_s,
+    # room for every concurrent fetch task to hold a connection (a blocking pool would wait
+    # instead, but its lock costs ~60 us a call here)
+    pool = aioredis.ConnectionPool.from_url(
+        url, max_connections=max_connections, socket_timeout=timeout_s,
         socket_connect_timeout=timeout_s, connection_class=FastConnection,
     )
     return aioredis.Redis.from_pool(pool)  # the client owns the pool: aclose() closes it
@@ -52,7 +52,7 @@ def connect(url: str, *, max_connections: int = 64, timeout_s: float = 10.0) -> 
 
 def _cluster(url: str, max_connections: int, timeout_s: float) -> Any:
     client = RedisCluster.from_url(
-        url, max_connections=max_connections * CLUSTER_POOL_FACTOR, socket_timeout=timeout_s,
+        url, max_connections=max_connections, socket_timeout=timeout_s,
         socket_connect_timeout=timeout_s,
     )
     client.nodes_manager.connection_kwargs["connection_class"] = FastConnection
@@ -70,5 +70,5 @@ async def connect_auto(url: str, **kw: Any) -> Any:
         return client
     if info.get("cluster_enabled"):
         await client.aclose()
-        return _cluster(url, kw.get("max_connections", 64), kw.get("timeout_s", 10.0))
+        return _cluster(url, kw.get("max_connections", 512), kw.get("timeout_s", 10.0))
     return client

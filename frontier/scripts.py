@@ -14,7 +14,9 @@ from typing import Any
 
 from redis.commands.core import AsyncScript
 
-SCRIPT_NAMES = ("admit", "lease_pick", "lease_take", "complete", "reap", "control")
+SCRIPT_NAMES = (
+    "admit", "lease_pick", "lease_take", "unclaim", "complete", "reap", "control",
+)
 
 
 @cache
@@ -33,6 +35,7 @@ class Scripts:
     admit: AsyncScript
     lease_pick: AsyncScript
     lease_take: AsyncScript
+    unclaim: AsyncScript
     complete: AsyncScript
     reap: AsyncScript
     control: AsyncScript

@@ -150,7 +150,7 @@ class NearDuplicateIndex:
     async def add(self, fp: int) -> None:
         """Store ``fp`` in its k + 1 buckets (one round trip)."""
         fp = to_unsigned(fp)
-        await self._add(self.keys(fp), fp)
+        await self._add_many([self.keys(fp)], [fp])
 
     async def check_and_add(self, fp: int) -> int | None:
         """Return the closest stored fingerprint within k bits, then store ``fp``.
@@ -159,11 +159,43 @@ class NearDuplicateIndex:
         even when a near-duplicate is found, so chains of small edits stay
         detectable.
         """
-        fp = to_unsigned(fp)
-        keys = self.keys(fp)
-        match = self._closest(fp, await self._buckets(keys))
-        await self._add(keys, fp)
-        return match
+        return (await self.check_and_add_many([fp]))[0]
+
+    async def check_and_add_many(self, fps: list[int]) -> list[int | None]:
+        """:meth:`check_and_add` for a batch in two round trips.
+
+        A fingerprint is also compared with the ones before it in the batch, so two
+        near-duplicates fetched together are still caught.
+        """
+        if not fps:
+            return []
+        unsigned = [to_unsigned(fp) for fp in fps]
+        keys = [self.keys(fp) for fp in unsigned]
+        flat = await self._buckets([k for ks in keys for k in ks])
+        width = len(self.widths)
+        out: list[int | None] = []
+        for i, fp in enumerate(unsigned):
+            stored = self._closest(fp, flat[i * width:(i + 1) * width])
+            earlier = min(((hamming(fp, e), e) for e in unsigned[:i]), default=None)
+            if earlier is not None and earlier[0] <= self.k and (
+                    stored is None or earlier[0] < hamming(fp, stored)):
+                stored = earlier[1]
+            out.append(stored)
+        await self._add_many(keys, unsigned)
+        return out
+
+    async def _add_many(self, keys: list[list[str]], fps: list[int]) -> None:
+        try:
+            async with self.redis.pipeline(transaction=False) as pipe:
+                for ks, fp in zip(keys, fps):
+                    member = str(to_signed(fp))
+                    for key in ks:
+                        pipe.sadd(key, member)
+                await pipe.execute()
+        except (RedisConnectionError, RedisTimeoutError) as exc:
+            raise StoreUnavailable(f"near-duplicate add failed: {exc}") from exc
+        except RedisError as exc:
+            raise StoreError(f"near-duplicate add failed: {exc}") from exc
 
     def _closest(self, fp: int, buckets: list[set[Any]]) -> int | None:
         candidates = {to_unsigned(int(member)) for member in set().union(*buckets)}
@@ -180,15 +212,3 @@ class NearDuplicateIndex:
             raise StoreUnavailable(f"near-duplicate lookup failed: {exc}") from exc
         except RedisError as exc:
             raise StoreError(f"near-duplicate lookup failed: {exc}") from exc
-
-    async def _add(self, keys: list[str], fp: int) -> None:
-        member = str(to_signed(fp))
-        try:
-            async with self.redis.pipeline(transaction=False) as pipe:
-                for key in keys:
-                    pipe.sadd(key, member)
-                await pipe.execute()
-        except (RedisConnectionError, RedisTimeoutError) as exc:
-            raise StoreUnavailable(f"near-duplicate add failed: {exc}") from exc
-        except RedisError as exc:
-            raise StoreError(f"near-duplicate add failed: {exc}") from exc

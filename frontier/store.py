@@ -30,16 +30,14 @@ HOST_ACTIONS = ("boost", "pause", "resume", "block", "unblock", "delay")
 PROMOTE_LIMIT = 1000  # due hosts moved to ready per lease_pick call
 REAP_BATCH = 500  # expired leases handled per reap call and partition
 CLAIM_TTL_MS = 10_000  # a picked host returns to due if not leased within this time
+PICK_SPREAD = 2.0  # each partition is asked for this many times its fair share of a lease
+LEASE_ROUNDS = 2
 COLD_SCAN_CHUNK = 1000  # cold-list entries read per call when looking for one URL
 COLD_SCAN_LIMIT = 200_000  # entries of one cold list searched before giving up
 
 
 def _text(value: Any) -> str:
     return value.decode() if isinstance(value, bytes) else str(value)
-
-
-async def _none() -> list[Lease]:
-    return []
 
 
 def now_ms(clock: Callable[[], float] = time.time) -> int:
@@ -75,6 +73,7 @@ class PartitionBatch:
     refused: list[tuple[int, str]] = field(default_factory=list)  # (fingerprint, reason)
     # host -> distinct other politeness keys whose pages link to it in this batch
     sources: dict[str, set[str]] = field(default_factory=dict)
+    seeded: set[str] = field(default_factory=set)  # hosts of seeds in this batch
 
     def add(self, host: str, item: QueuedUrl) -> None:
         self.hosts.setdefault(host, []).append(item)
@@ -182,11 +181,12 @@ class FrontierStore:
             return s
 
         default_budget = self.settings.budget.max_pages_per_host or 0
-        sources = batch.sources
+        sources, seeded = batch.sources, batch.seeded
         for host, items in batch.hosts.items():
             keys += (pk.host(host), pk.hot(host), pk.cold(host), pk.linking_hosts(host))
             linking = sources.get(host, ())
-            args += (host, batch.budgets.get(host, default_budget), len(linking), *linking, len(items))
+            args += (host, batch.budgets.get(host, default_budget), 1 if host in seeded else 0,
+                     len(linking), *linking, len(items))
             for url, fp, score, credit in items:
                 b = fp % buckets
                 args += (slots.get(b) or slot(fp), fp, score, credit, url)
@@ -201,40 +201,46 @@ class FrontierStore:
     async def lease(self, n: int, now: int | None = None) -> list[Lease]:
         """Lease up to ``n`` URLs, at most one per politeness key, best hosts first.
 
-        Each partition is a best-first queue of its ready hosts. ``n`` is spread over the
-        partitions in turn, from a rotating offset, so workers on many machines spread
-        over them; partitions that come up short are dropped and the rest asked again.
+        Every partition is asked at once for a share of ``n`` (twice its fair part, so a
+        partition with many ready hosts can fill in for empty ones); the best ``n`` hosts
+        over all partitions are leased and the other claims handed back. A second round
+        asks the partitions that gave all they were asked for, if ``n`` is not reached.
         """
         t = self._now(now)
-        parts = self.settings.store.partitions
-        start = self._next_partition
-        self._next_partition = (start + 1) % parts
-        open_parts = [(start + i) % parts for i in range(parts)]
+        parts = list(range(self.settings.store.partitions))
         leases: list[Lease] = []
         async with redis_boundary("lease"):
-            while len(leases) < n and open_parts:
+            for _ in range(LEASE_ROUNDS):
                 want = n - len(leases)
-                # spread what is still wanted over partitions not yet found short, in turn
-                shares = [want // len(open_parts) + (1 if i < want % len(open_parts) else 0)
-                          for i in range(len(open_parts))]
-                asked = [(p, k) for p, k in zip(open_parts, shares) if k]
-                picked = await asyncio.gather(*(self._pick(p, k, t) for p, k in asked))
-                got = await asyncio.gather(*(self._take(p, hosts, t) if hosts else _none()
-                                             for (p, _), hosts in zip(asked, picked)))
-                short = set()
-                for (p, k), batch in zip(asked, got):
+                if want <= 0 or not parts:
+                    break
+                ask = min(want, max(1, math.ceil(PICK_SPREAD * want / len(parts))))
+                picked = await asyncio.gather(*(self._pick(p, ask, t) for p in parts))
+                ranked = sorted(((score, p, host) for p, hosts in zip(parts, picked)
+                                 for host, score in hosts), reverse=True)
+                chosen: dict[int, list[str]] = {}
+                spare: dict[int, list[str]] = {}
+                for i, (_, p, host) in enumerate(ranked):
+                    (chosen if i < want else spare).setdefault(p, []).append(host)
+                got = await asyncio.gather(
+                    *(self._take(p, hosts, t) for p, hosts in chosen.items()),
+                    *(self._unclaim(p, hosts) for p, hosts in spare.items()))
+                for batch in got[:len(chosen)]:
                     leases += batch
-                    if len(batch) < k:
-                        short.add(p)
-                open_parts = [p for p in open_parts if p not in short]
+                parts = [p for p, hosts in zip(parts, picked) if len(hosts) == ask]
         return leases
 
-    async def _pick(self, partition: int, n: int, now: int) -> list[str]:
+    async def _pick(self, partition: int, n: int, now: int) -> list[tuple[str, float]]:
         pk = self.keys.part(partition)
-        hosts = await self.scripts.lease_pick(
+        flat = await self.scripts.lease_pick(
             [pk.due, pk.ready, pk.prio, pk.claims], [now, n, now + CLAIM_TTL_MS, PROMOTE_LIMIT]
         )
-        return [h.decode() if isinstance(h, bytes) else h for h in hosts]
+        return [(flat[i].decode(), float(flat[i + 1])) for i in range(0, len(flat), 2)]
+
+    async def _unclaim(self, partition: int, hosts: list[str]) -> list[Lease]:
+        pk = self.keys.part(partition)
+        await self.scripts.unclaim([pk.ready, pk.claims, pk.prio], hosts)
+        return []
 
     async def _take(self, partition: int, hosts: Sequence[str], now: int) -> list[Lease]:
         pk = self.keys.part(partition)

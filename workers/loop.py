@@ -39,18 +39,22 @@ log = logging.getLogger(__name__)
 HTML_TYPES = ("text/html", "application/xhtml+xml")
 ROBOTS_REDIRECTS = 5  # RFC 9309 s.2.3.1.2: follow at least five redirects
 ROBOTS_MAX_BYTES = 512 * 1024  # RFC 9309 s.2.5: parse at least 500 KiB
-FLUSH_EVERY_S = 0.02
-FLUSH_SIZE = 64
-IDLE_SLEEP_MAX_S = 0.25
+FLUSH_LINGER_S = 0.002  # gather finished leases this long before writing them back
+LEASE_CHUNK_DIVISOR = 4  # lease once a quarter of a batch of slots is free
+IDLE_SLEEP_MIN_S = 0.01
+IDLE_SLEEP_MAX_S = 0.25  # a worker with nothing to lease looks again at least this often
 STORE_RETRY_S = 0.5
 
 
 @dataclass
 class Finished:
-    """A lease's end, waiting to be written to the frontier."""
+    """A lease's end, waiting to be written to the frontier (and then to the fetch log)."""
 
     completion: Completion
     links: list[Candidate] = field(default_factory=list)
+    entry: FetchEntry | None = None
+    simhash: int | None = None  # checked against the near-duplicate index at flush time
+    simhash_checked: bool = False  # a retried flush must not find the page itself
 
 
 def retry_after_s(value: str | None, now: float) -> float | None:
@@ -111,6 +115,8 @@ class Worker:
         self._finished: list[Finished] = []
         self._tasks: set[asyncio.Task[None]] = set()
         self._stop = asyncio.Event()
+        self._to_flush = asyncio.Event()  # set when a lease finished
+        self._flushed = asyncio.Event()  # set when hosts were released back to the frontier
         self.pages = 0
         self.archive: WarcArchive | None = None
         self.fetch_log: FetchLog | None = None
@@ -142,11 +148,13 @@ class Worker:
 
     async def _lease_loop(self) -> None:
         s = self.settings
-        idle = 0.01
+        idle = IDLE_SLEEP_MIN_S
         while not self._stop.is_set():
             free = s.fetch.concurrency - len(self._tasks)
             leases: list[Lease] = []
-            if free > 0:
+            # lease in chunks: a call per freed slot would cost a round trip per page
+            chunk = max(1, min(s.lease.batch, s.fetch.concurrency) // LEASE_CHUNK_DIVISOR)
+            if free >= chunk or (free > 0 and not self._tasks):
                 try:
                     leases = await self._lease(min(free, s.lease.batch))
                 except StoreUnavailable as exc:
@@ -158,18 +166,18 @@ class Worker:
                 task.add_done_callback(self._tasks.discard)
             self.metrics.in_flight.set(len(self._tasks))
             if leases:
-                idle = 0.01
+                idle = IDLE_SLEEP_MIN_S
                 await asyncio.sleep(0)
                 continue
             if self.drain and not self._tasks and not self._finished:
                 if await self._frontier_done():
                     return
-            await asyncio.wait(
-                [asyncio.create_task(self._stop.wait())] + list(self._tasks),
-                timeout=idle, return_when=asyncio.FIRST_COMPLETED)
-            for t in [t for t in self._tasks if t.done()]:
-                self._tasks.discard(t)
-            idle = min(IDLE_SLEEP_MAX_S, idle * 2)
+            # wait until completions released hosts, or a host's time may have come
+            self._flushed.clear()
+            try:
+                await asyncio.wait_for(self._flushed.wait(), idle)
+            except TimeoutError:
+                idle = min(IDLE_SLEEP_MAX_S, idle * 2)
 
     async def _lease(self, wanted: int) -> list[Lease]:
         granted = await self.budget.reserve(wanted)
@@ -201,13 +209,12 @@ class Worker:
         c = finished.completion
         self.metrics.fetches.labels(outcome=c.outcome.value).inc()
         self.metrics.duration.observe(time.monotonic() - started)
-        if entry is not None and self.fetch_log is not None and c.outcome is not Outcome.RETRY:
-            self.fetch_log.write(entry)
+        if c.outcome is not Outcome.RETRY:
+            finished.entry = entry
         if c.outcome is Outcome.FETCHED:
             self.pages += 1
         self._finished.append(finished)
-        if len(self._finished) >= FLUSH_SIZE:
-            await self._flush()
+        self._to_flush.set()
 
     def _entry(self, lease: Lease, outcome: Outcome, reason: str | None,
                resp: Response | None = None, **kw: Any) -> FetchEntry:
@@ -281,24 +288,12 @@ class Worker:
             return Finished(base), self._entry(lease, Outcome.FETCHED, reason or kind, resp, **ref)
         page = parse_html(resp.body, lease.url, content_type=resp.header("Content-Type"))
         fingerprint = simhash64(page.text) if page.text else None
-        duplicate = None
-        if fingerprint is not None:
-            try:
-                duplicate = await self.near_dups.check_and_add(fingerprint)
-            except StoreUnavailable:
-                duplicate = None
         follow = [(ln.url, ln.anchor) for ln in page.links
                   if fetch.follow_nofollow or not (ln.nofollow or page.meta_nofollow)]
         ref = self._archive(lease, resp, [(ln.url, ln.anchor) for ln in page.links])
-        links: list[Candidate] = []
-        if duplicate is not None:
-            self.metrics.near_duplicates.inc()
-            reason = "near_duplicate"
-        else:
-            links = distribute(lease.url, lease.cash, lease.depth, follow, self.settings.priority)
-        self.metrics.links.inc(len(links))
-        return Finished(base, links), self._entry(
-            lease, Outcome.FETCHED, reason, resp, simhash=fingerprint, **ref)
+        links = distribute(lease.url, lease.cash, lease.depth, follow, self.settings.priority)
+        entry = self._entry(lease, Outcome.FETCHED, reason, resp, simhash=fingerprint, **ref)
+        return Finished(base, links, simhash=fingerprint), entry
 
     def _archive(self, lease: Lease, resp: Response,
                  outlinks: list[tuple[str, str]] | None) -> dict[str, Any]:
@@ -332,21 +327,29 @@ class Worker:
     # -- writing back -------------------------------------------------------------------
 
     async def _flush_loop(self) -> None:
-        while not self._stop.is_set():
-            try:
-                await asyncio.wait_for(self._stop.wait(), FLUSH_EVERY_S)
-            except TimeoutError:
-                pass
-            await self._flush()
+        stop = asyncio.create_task(self._stop.wait())
+        try:
+            while not self._stop.is_set():
+                wanted = asyncio.create_task(self._to_flush.wait())
+                await asyncio.wait([wanted, stop], return_when=asyncio.FIRST_COMPLETED)
+                wanted.cancel()
+                await asyncio.sleep(FLUSH_LINGER_S)
+                self._to_flush.clear()
+                await self._flush()
+                self._flushed.set()
+        finally:
+            stop.cancel()
 
     async def _flush(self) -> None:
         """Admit the links of finished leases, then complete the leases."""
         while self._finished:
             batch, self._finished = self._finished, []
             try:
+                await self._drop_near_duplicates(batch)
                 links = [c for f in batch for c in f.links]
                 if links:
                     await self.admission.admit(links)
+                    self.metrics.links.inc(len(links))
                 statuses = await self.store.complete_many([f.completion for f in batch])
             except StoreUnavailable as exc:
                 self.metrics.store_errors.inc()
@@ -358,12 +361,28 @@ class Worker:
                 continue
             released = 0
             for f, status in zip(batch, statuses):
-                if status != "ok":
+                if status != "ok":  # expired: another worker will fetch it, and log it
                     log.info("lease %s for %s was %s", f.completion.lease.id,
                              f.completion.lease.url, status)
+                elif f.entry is not None and self.fetch_log is not None:
+                    self.fetch_log.write(f.entry)
                 if status != "ok" or f.completion.outcome is not Outcome.FETCHED:
                     released += 1
             await self.budget.release(released)
+
+    async def _drop_near_duplicates(self, batch: list[Finished]) -> None:
+        """A near-duplicate page stays archived, but its links are not followed."""
+        checked = [f for f in batch if f.simhash is not None and f.simhash_checked is False]
+        if not checked:
+            return
+        matches = await self.near_dups.check_and_add_many([f.simhash for f in checked])
+        for f, match in zip(checked, matches):
+            f.simhash_checked = True
+            if match is not None:
+                self.metrics.near_duplicates.inc()
+                f.links = []
+                if f.entry is not None:
+                    f.entry.reason = "near_duplicate"
 
 
 def canonical_or_raw(href: str, base: str) -> str:

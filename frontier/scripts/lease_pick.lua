@@ -3,7 +3,8 @@
 -- ARGV[1] now (ms)  ARGV[2] how many hosts  ARGV[3] claim expiry (ms)  ARGV[4] promote limit
 -- Stale claims (a picker that died before lease_take) go back to due; due hosts whose
 -- time has come move to ready at their priority; the best ready hosts are claimed.
--- Returns the claimed hosts, best first. lease_take (with the hosts' keys) leases them.
+-- Returns {host, priority, host, priority, ...}, best first. lease_take (with the hosts'
+-- keys) leases them; unclaim puts back the ones the caller does not want.
 local now = tonumber(ARGV[1])
 local stale = redis.call('ZRANGEBYSCORE', KEYS[4], '-inf', now, 'LIMIT', 0, 1000)
 for _, host in ipairs(stale) do
@@ -28,13 +29,12 @@ if #due > 0 then
   end
 end
 local top = redis.call('ZPOPMAX', KEYS[2], tonumber(ARGV[2]))
-local out, add = {}, {}
+local add = {}
 for i = 1, #top, 2 do
-  out[#out + 1] = top[i]
   add[#add + 1] = ARGV[3]
   add[#add + 1] = top[i]
 end
 if #add > 0 then
   redis.call('ZADD', KEYS[4], unpack(add))
 end
-return out
+return top
