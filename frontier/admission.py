@@ -16,9 +16,6 @@ from frontier.store import FrontierStore, PartitionBatch, QueuedUrl
 from frontier.urls import Scope, canonicalize, fingerprint, host_of, politeness_key
 
 HOST_CACHE_SIZE = 100_000  # hosts whose politeness key and partition are remembered
-# A seed's host counts one linking host (the operator vouches for it), so its earned
-# budget is base + one step. A space keeps the marker apart from every host name.
-SEED_SOURCE = " seed"
 
 
 def scope_from_settings(settings: JobSettings, seeds: Iterable[str] = ()) -> Scope:
@@ -82,11 +79,10 @@ class Admission:
                 queue = batch.hosts[place[0]] = []
             queue.append(QueuedUrl(url, fingerprint(url), encode_score(c.cash, c.depth),
                                    encode_credit(c.credit)))
+            if c.depth == 0:  # a seed, or where a seed redirects: the operator vouches
+                batch.seeded.add(place[0])
             source = c.source_host
-            if source is None:
-                if c.depth == 0:
-                    batch.add_source(place[0], SEED_SOURCE)
-            elif source != host:
+            if source is not None and source != host:
                 source_key = politeness_key(source, key_mode) if key_mode != "host" else source
                 if source_key != place[0]:
                     batch.add_source(place[0], source_key)

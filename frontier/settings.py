@@ -122,7 +122,7 @@ class PrioritySettings(_Part):
     # PageRank's damping (Page, Brin et al. 1998: alpha = 0.85, so 0.15 jumps)
     jump_share: float = Field(default=0.15, ge=0, lt=1, description="cash to the random-jump pool")
     jump_floor: float = Field(
-        default=0.001, ge=0, description="cash each new URL gets from the random-jump pool"
+        default=1e-5, ge=0, description="cash each new URL gets from the random-jump pool"
     )
     cross_host_weight: float = Field(
         default=4.0, ge=1, description="a link to another host counts this much more"

@@ -6,15 +6,16 @@
 -- then             the URL-seen buckets this batch touches
 -- ARGV[1] now (ms)  ARGV[2] hot capacity  ARGV[3] number of host groups  ARGV[4] excluded count
 -- ARGV[5] budget base  ARGV[6] budget per linking host
--- then per group:  host, absolute budget (0: none), m, m linking hosts (other hosts whose
---                  pages link here, ' seed' for a seed), n, and n times: seen slot,
---                  fingerprint, score, credit, url
+-- then per group:  host, absolute budget (0: none), seeded (1: a seed of this host is in
+--                  the batch), m, m linking hosts (other hosts whose pages link here), n,
+--                  and n times: seen slot, fingerprint, score, credit, url
 -- then per excluded URL: seen slot, fingerprint, reason
 -- (a seen slot is a 1-based index into the seen-bucket part of KEYS)
 -- A new URL is queued on its host (or excluded: host blocked, host budget spent); a URL
 -- seen before that still waits in its host's hot window gains `credit` (OPIC cash).
 -- Budgets (Lee, Leonard, Wang & Loguinov, WWW 2008): a host may hold
 -- base + per x (distinct linking hosts) URLs, and never more than its absolute budget.
+-- A host that had a seed is vouched for by the operator: only the absolute budget applies.
 -- A URL beyond the earned budget is excluded ('host_link_budget') but not remembered as
 -- seen, so it may be admitted when offered again after more hosts link to its host.
 -- Returns {new, credited, excluded, duplicates}.
@@ -35,8 +36,8 @@ end
 
 -- The URLs this host may hold now, and whether that limit is earned (may still grow).
 -- `wanted`: the most URLs the host can hold after this batch (no count needed below base).
-local function host_limit(budget, linking, wanted)
-  if base == 0 or wanted <= base then
+local function host_limit(budget, linking, wanted, seeded)
+  if base == 0 or seeded or wanted <= base then
     return budget, false
   end
   local earned = base
@@ -51,8 +52,8 @@ end
 
 local a = 7
 for g = 0, ngroups - 1 do
-  local host, budget, m = ARGV[a], tonumber(ARGV[a + 1]), tonumber(ARGV[a + 2])
-  a = a + 3
+  local host, budget, seed, m = ARGV[a], tonumber(ARGV[a + 1]), ARGV[a + 2], tonumber(ARGV[a + 3])
+  a = a + 4
   local hk, hot, cold, linking = KEYS[8 + 4 * g], KEYS[9 + 4 * g], KEYS[10 + 4 * g], KEYS[11 + 4 * g]
   for i = a, a + m - 1, 1000 do
     redis.call('PFADD', linking, unpack(ARGV, i, math.min(i + 999, a + m - 1)))
@@ -60,14 +61,18 @@ for g = 0, ngroups - 1 do
   a = a + m
   local n = tonumber(ARGV[a])
   a = a + 1
-  local f = redis.call('HMGET', hk, 'state', 'admitted')
-  local state, admitted = f[1], tonumber(f[2] or '0')
+  local f = redis.call('HMGET', hk, 'state', 'admitted', 'seeded')
+  local state, admitted, seeded = f[1], tonumber(f[2] or '0'), f[3]
   if not state then
     state = 'active'
     redis.call('HSET', hk, 'state', state, 'boost', '1')
     redis.call('SADD', KEYS[7], host)
   end
-  local limit, earned = host_limit(budget, linking, admitted + n)
+  if seed == '1' and not seeded then
+    seeded = '1'
+    redis.call('HSET', hk, 'seeded', seeded)
+  end
+  local limit, earned = host_limit(budget, linking, admitted + n, seeded)
   local changed = false
   local q = nil
   for _ = 1, n do
