@@ -21,7 +21,7 @@ from redis import exceptions as redis_errors
 from frontier.exceptions import LeaseNotHeld, StoreError, StoreUnavailable
 from frontier.keys import Keys, PartitionKeys
 from frontier.model import AdmitResult, Completion, Counts, Lease, Outcome, STATES
-from frontier.scripts import Scripts
+from frontier.scripts import ScriptCall, Scripts, run_many
 from frontier.settings import JobSettings
 
 log = logging.getLogger(__name__)
@@ -155,16 +155,16 @@ class FrontierStore:
     async def admit_batches(
         self, batches: dict[int, PartitionBatch], now: int | None = None
     ) -> AdmitResult:
-        """Run the admit script once per partition, concurrently."""
+        """Run the admit script once per partition, all in one go."""
         t = self._now(now)
-        calls = [self._admit_one(p, b, t) for p, b in batches.items() if len(b)]
+        calls = [self._admit_call(p, b, t) for p, b in batches.items() if len(b)]
         total = AdmitResult()
         async with redis_boundary("admit"):
-            for res in await asyncio.gather(*calls):
-                total.add(res)
+            for new, credited, excluded, dups in await run_many(self.redis, calls):
+                total.add(AdmitResult(new, credited, excluded, dups))
         return total
 
-    async def _admit_one(self, partition: int, batch: PartitionBatch, now: int) -> AdmitResult:
+    def _admit_call(self, partition: int, batch: PartitionBatch, now: int) -> ScriptCall:
         pk = self.keys.part(partition)
         keys: list[str] = [pk.counts, pk.reasons, pk.due, pk.ready, pk.prio, pk.claims, pk.hosts]
         prio = self.settings.priority
@@ -193,8 +193,7 @@ class FrontierStore:
         for fp, reason in batch.refused:
             args += (slot(fp), fp, reason)
         keys += [pk.seen(b) for b in slots]  # dicts keep insertion order: slot i is key i
-        new, credited, excluded, dups = await self.scripts.admit(keys, args)
-        return AdmitResult(new, credited, excluded, dups)
+        return (self.scripts.admit, keys, args)
 
     # -- lease ---------------------------------------------------------------------------
 
@@ -215,41 +214,42 @@ class FrontierStore:
                 if want <= 0 or not parts:
                     break
                 ask = min(want, max(1, math.ceil(PICK_SPREAD * want / len(parts))))
-                picked = await asyncio.gather(*(self._pick(p, ask, t) for p in parts))
+                picked = [self._picked(r) for r in await run_many(
+                    self.redis, [self._pick_call(p, ask, t) for p in parts])]
                 ranked = sorted(((score, p, host) for p, hosts in zip(parts, picked)
                                  for host, score in hosts), reverse=True)
                 chosen: dict[int, list[str]] = {}
                 spare: dict[int, list[str]] = {}
                 for i, (_, p, host) in enumerate(ranked):
                     (chosen if i < want else spare).setdefault(p, []).append(host)
-                got = await asyncio.gather(
-                    *(self._take(p, hosts, t) for p, hosts in chosen.items()),
-                    *(self._unclaim(p, hosts) for p, hosts in spare.items()))
-                for batch in got[:len(chosen)]:
-                    leases += batch
+                expires = t + int(self.settings.lease.ttl_s * 1000)
+                got = await run_many(self.redis, [
+                    *(self._take_call(p, hosts, expires) for p, hosts in chosen.items()),
+                    *(self._unclaim_call(p, hosts) for p, hosts in spare.items())])
+                for members in got[:len(chosen)]:
+                    leases += [Lease.from_member(m.decode(), expires) for m in members]
                 parts = [p for p, hosts in zip(parts, picked) if len(hosts) == ask]
         return leases
 
-    async def _pick(self, partition: int, n: int, now: int) -> list[tuple[str, float]]:
+    def _pick_call(self, partition: int, n: int, now: int) -> ScriptCall:
         pk = self.keys.part(partition)
-        flat = await self.scripts.lease_pick(
-            [pk.due, pk.ready, pk.prio, pk.claims], [now, n, now + CLAIM_TTL_MS, PROMOTE_LIMIT]
-        )
+        return (self.scripts.lease_pick, [pk.due, pk.ready, pk.prio, pk.claims],
+                [now, n, now + CLAIM_TTL_MS, PROMOTE_LIMIT])
+
+    @staticmethod
+    def _picked(flat: list[Any]) -> list[tuple[str, float]]:
         return [(flat[i].decode(), float(flat[i + 1])) for i in range(0, len(flat), 2)]
 
-    async def _unclaim(self, partition: int, hosts: list[str]) -> list[Lease]:
+    def _unclaim_call(self, partition: int, hosts: list[str]) -> ScriptCall:
         pk = self.keys.part(partition)
-        await self.scripts.unclaim([pk.ready, pk.claims, pk.prio], hosts)
-        return []
+        return (self.scripts.unclaim, [pk.ready, pk.claims, pk.prio], list(hosts))
 
-    async def _take(self, partition: int, hosts: Sequence[str], now: int) -> list[Lease]:
+    def _take_call(self, partition: int, hosts: Sequence[str], expires: int) -> ScriptCall:
         pk = self.keys.part(partition)
-        expires = now + int(self.settings.lease.ttl_s * 1000)
         keys = [pk.counts, pk.claims, pk.leases, pk.attempts, pk.prio]
         for h in hosts:
             keys += (pk.host(h), pk.hot(h), pk.cold(h))
-        members = await self.scripts.lease_take(keys, [expires, partition, len(hosts), *hosts])
-        return [Lease.from_member(m.decode(), expires) for m in members]
+        return (self.scripts.lease_take, keys, [expires, partition, len(hosts), *hosts])
 
     # -- complete and reap ---------------------------------------------------------------
 
@@ -268,9 +268,8 @@ class FrontierStore:
             by_part.setdefault(c.lease.partition, []).append(i)
         statuses = [""] * len(items)
         async with redis_boundary("complete"):
-            results = await asyncio.gather(
-                *(self._complete_one(p, [items[i] for i in idx], t) for p, idx in by_part.items())
-            )
+            results = await run_many(self.redis, [
+                self._complete_call(p, [items[i] for i in idx], t) for p, idx in by_part.items()])
         for idx, res in zip(by_part.values(), results):
             for i, status in zip(idx, res):
                 statuses[i] = status.decode() if isinstance(status, bytes) else status
@@ -282,7 +281,7 @@ class FrontierStore:
         if status != "ok":
             raise LeaseNotHeld(f"lease {completion.lease.id} for {completion.lease.url}: {status}")
 
-    async def _complete_one(self, partition: int, items: list[Completion], now: int) -> list[Any]:
+    def _complete_call(self, partition: int, items: list[Completion], now: int) -> ScriptCall:
         pk = self.keys.part(partition)
         pol = self.settings.politeness
         keys = self._outcome_keys(pk)
@@ -298,8 +297,7 @@ class FrontierStore:
                 min(c.crawl_delay_s, pol.crawl_delay_cap_s) * 1000)
             args += (c.lease.member, c.outcome.value, c.reason or "none", int(c.response_s * 1000),
                      int(c.extra_delay_s * 1000), crawl)
-        result: list[Any] = await self.scripts.complete(keys, args)
-        return result
+        return (self.scripts.complete, keys, args)
 
     async def reap(self, now: int | None = None) -> dict[str, int]:
         """Return expired leases to their hosts; counts of 'requeued', 'dead', 'excluded'."""

@@ -32,6 +32,8 @@ def parse_args(argv: Sequence[str] | None = None) -> argparse.Namespace:
     parser.add_argument("--seed", type=int, default=defaults.seed)
     parser.add_argument("--hosts", type=int, default=defaults.hosts, help="ordinary hosts")
     parser.add_argument("--pages", type=int, default=defaults.pages, help="ordinary pages")
+    parser.add_argument("--zipf", type=float, default=defaults.zipf_exponent,
+                        help="host size exponent (0: every host the same size)")
     parser.add_argument("--slow-delay", type=float, default=DEFAULT_SLOW_DELAY,
                         help="seconds added to each response of a slow host")
     parser.add_argument("--plain", action="store_true",
@@ -42,7 +44,8 @@ def parse_args(argv: Sequence[str] | None = None) -> argparse.Namespace:
 async def serve(args: argparse.Namespace) -> None:
     """Generate the web, listen, print the port and seeds, then serve until cancelled."""
     switches = {name: False for name in FEATURES} if args.plain else {}
-    spec = WebSpec(seed=args.seed, hosts=args.hosts, pages=args.pages, **switches)
+    spec = WebSpec(seed=args.seed, hosts=args.hosts, pages=args.pages,
+                   zipf_exponent=args.zipf, **switches)
     server = SyntheticServer(SyntheticWeb.generate(spec), slow_delay=args.slow_delay)
     port = await server.start(args.bind, args.port)
     try:
