@@ -169,3 +169,25 @@ def test_warc_reads_back_with_correct_digests(crawl_result: dict[str, Any]) -> N
                 responses[uri] += 1
     assert set(responses) == archived
     assert all(n == 1 for n in responses.values())
+
+
+def test_bad_inputs_end_as_recorded_outcomes(crawl_result: dict[str, Any]) -> None:
+    """Each hostile page ends in the fetch log with an outcome and a reason; the crawl went on."""
+    lines = [json.loads(x) for x in (crawl_result["out"] / "fetches.jsonl").read_text().splitlines()]
+    by_path = {ln["url"].split("bad.test", 1)[1]: ln for ln in lines if "//bad.test/" in ln["url"]}
+    expected = {
+        "/malformed.html": ("fetched", None),          # parsed as well as it goes
+        "/wrong-charset.html": ("fetched", None),      # decoded with a fallback
+        "/binary.html": ("fetched", "binary"),         # archived, not parsed
+        "/huge.html": ("fetched", "truncated_length"),  # cut at max_body_bytes
+        "/bomb.html": ("fetched", "truncated_length"),  # cut at max_decompressed_bytes
+        "/slow-drip.html": ("fetched", "truncated_time"),  # cut by the total timeout
+        "/huge-headers.html": ("failed", "headers_too_large"),  # headers over the cap
+    }
+    for path, (outcome, reason) in expected.items():
+        assert path in by_path, path
+        assert (by_path[path]["outcome"], by_path[path]["reason"]) == (outcome, reason), path
+    # the endless redirect stops: within the host budget, every hop fetched once
+    hops = [p for p in by_path if p.startswith("/endless-redirect/")]
+    assert 0 < len(hops) <= HOST_BUDGET
+    assert crawl_result["summary"]["balanced"]

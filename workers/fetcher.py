@@ -121,6 +121,9 @@ class Fetcher:
         started = time.monotonic()
         try:
             async with self._session.get(url, allow_redirects=False) as resp:
+                header_bytes = sum(len(k) + len(v) + 4 for k, v in resp.raw_headers)
+                if header_bytes > s.max_header_bytes:
+                    raise FetchError("headers_too_large", f"{header_bytes} bytes of headers")
                 decoder = Decoder(resp.headers.get("Content-Encoding"), s.max_decompressed_bytes)
                 truncated = None
                 raw = 0
