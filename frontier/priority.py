@@ -1,6 +1,6 @@
 """Online page importance (OPIC) and its defences against link farms and traps.
 
-OPIC, "On-line Page Importance Computation" (Abiteboul, Preda & Cobena, WWW 2003):
+OPIC: "Adaptive On-Line Page Importance Computation" (Abiteboul, Preda & Cobena, WWW 2003):
 every URL carries *cash*. Fetching a page hands its cash on to the pages it links
 to; the cash a page has received over time estimates its importance, and the frontier
 fetches the URLs holding the most cash first (their score is their cash, see
