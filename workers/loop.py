@@ -8,6 +8,7 @@ fetched again, and URL-seen dedupe absorbs the repeated links (at-least-once).
 from __future__ import annotations
 
 import asyncio
+import dataclasses
 import email.utils
 import logging
 import time
@@ -382,7 +383,7 @@ class Worker:
                 self.metrics.near_duplicates.inc()
                 f.links = []
                 if f.entry is not None:
-                    f.entry.reason = "near_duplicate"
+                    f.entry = dataclasses.replace(f.entry, reason="near_duplicate")
 
 
 def canonical_or_raw(href: str, base: str) -> str:

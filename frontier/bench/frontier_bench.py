@@ -128,6 +128,7 @@ async def run(urls: int, hosts: int, exponent: float, seed: int, state: Path) ->
         "name": "bench", "state_dir": str(state),
         "store": {"partitions": 16, "expected_urls": urls},
         "budget": {"max_pages_per_host": None},
+        "priority": {"host_budget_base": 0},  # no earned budgets: every URL is queued
         "politeness": {"min_delay_s": 0.0, "response_time_factor": 0.0},
         "lease": {"ttl_s": 3600},
     })

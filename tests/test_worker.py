@@ -1,0 +1,106 @@
+"""Worker behaviour on a tiny hand-made site served on loopback: near-duplicates are
+archived but not followed, nofollow is honoured, Retry-After slows the host down."""
+
+from __future__ import annotations
+
+import json
+import time
+from pathlib import Path
+from typing import Any
+
+from aiohttp import web
+
+from frontier.cli import _crawl
+from frontier.settings import load_settings
+from tests.servers import RedisServer
+
+UA = "sluice-test/0.1 (+http://operator.test/contact)"
+WORDS = ("river stone cloud lantern meadow copper whistle orchard velvet harbor "
+         "thistle ember quarry saddle juniper beacon").split()
+TEXT = " ".join(WORDS[(i * 7) % len(WORDS)] + str(i % 13) for i in range(300))
+
+
+def page(body: str, links: list[str], nofollow: list[str] | None = None) -> str:
+    anchors = "".join(f'<a href="{u}">{u}</a> ' for u in links)
+    anchors += "".join(f'<a rel="nofollow" href="{u}">{u}</a> ' for u in nofollow or [])
+    return f"<html><head><title>t</title></head><body><p>{body}</p>{anchors}</body></html>"
+
+
+times: list[float] = []
+
+
+async def run_site(tmp_path: Path, redis_url: str, pages: dict[str, Any]) -> tuple[list[str], list[dict[str, Any]]]:
+    requests: list[str] = []
+
+    async def handle(request: web.Request) -> web.StreamResponse:
+        requests.append(request.path)
+        times.append(time.monotonic())
+        item = pages.get(request.path)
+        if item is None:
+            return web.Response(status=404)
+        if callable(item):
+            return item(len([p for p in requests if p == request.path]))
+        return web.Response(text=item, content_type="text/html")
+
+    app = web.Application()
+    app.router.add_get("/{tail:.*}", handle)
+    runner = web.AppRunner(app)
+    await runner.setup()
+    site = web.TCPSite(runner, "127.0.0.1", 0)
+    await site.start()
+    port = site._server.sockets[0].getsockname()[1]  # type: ignore[union-attr]
+    try:
+        from frontier.redis_client import connect
+        client = connect(redis_url)
+        await client.flushall()
+        await client.aclose()
+        settings = load_settings(None, {
+            "name": "w", "seeds": ["http://site.test/"], "redis": {"url": redis_url},
+            "politeness": {"min_delay_s": 0.0, "response_time_factor": 0.0, "max_delay_s": 5.0},
+            "fetch": {"user_agent": UA, "map_hosts": [f"site.test=127.0.0.1:{port}"]},
+        })
+        await _crawl(settings, tmp_path, 1, quiet=True)
+    finally:
+        await runner.cleanup()
+    log = [json.loads(x) for x in (tmp_path / "fetches.jsonl").read_text().splitlines()]
+    return requests, log
+
+
+async def test_near_duplicate_archived_not_followed(tmp_path: Path, redis_server: RedisServer) -> None:
+    pages = {
+        "/": page("home " * 50, ["/a.html", "/b.html"]),
+        "/a.html": page(TEXT, ["/from-a.html"]),
+        "/b.html": page(TEXT, ["/from-b.html"]),  # the same text: SimHash distance 0
+        "/from-a.html": page("leaf a " * 40, []),
+        "/from-b.html": page("leaf b " * 40, []),
+    }
+    requests, log = await run_site(tmp_path, redis_server.url, pages)
+    assert {"/a.html", "/b.html"} <= set(requests)
+    # exactly one of the twins is the near-duplicate (Charikar 2002 SimHash, Hamming <= 3,
+    # Manku et al. 2007); its link is not followed, the other twin's is
+    dups = [e["url"] for e in log if e["reason"] == "near_duplicate"]
+    assert len(dups) == 1
+    followed = {"/from-a.html", "/from-b.html"} & set(requests)
+    assert len(followed) == 1
+    assert ("/from-a.html" in followed) == dups[0].endswith("/b.html")
+
+
+async def test_nofollow_not_followed(tmp_path: Path, redis_server: RedisServer) -> None:
+    pages = {"/": page("home " * 50, ["/kept.html"], nofollow=["/skipped.html"]),
+             "/kept.html": page("kept " * 40, []), "/skipped.html": page("x " * 40, [])}
+    requests, _ = await run_site(tmp_path, redis_server.url, pages)
+    assert "/kept.html" in requests and "/skipped.html" not in requests
+
+
+async def test_retry_after_then_success(tmp_path: Path, redis_server: RedisServer) -> None:
+    def busy(n: int) -> web.Response:
+        if n == 1:  # RFC 9110 s.10.2.3: Retry-After in delta-seconds
+            return web.Response(status=503, headers={"Retry-After": "1"})
+        return web.Response(text=page("finally " * 40, []), content_type="text/html")
+
+    times.clear()
+    requests, log = await run_site(tmp_path, redis_server.url, {"/": busy})
+    assert requests.count("/") == 2
+    first, second = [t for p, t in zip(requests, times) if p == "/"]
+    assert second - first >= 1.0  # the host waited as long as Retry-After asked
+    assert [e["outcome"] for e in log if e["url"] == "http://site.test/"] == ["fetched"]
