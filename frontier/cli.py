@@ -252,7 +252,7 @@ def cmd_demo(a: argparse.Namespace) -> int:
 def cmd_bench(a: argparse.Namespace) -> int:
     if a.what == "frontier":
         from frontier.bench.frontier_bench import main as frontier_main
-        return frontier_main(urls=a.urls or 1_000_000, hosts=a.hosts or 10_000)
+        return frontier_main(urls=a.urls or 1_000_000, hosts=a.hosts or 10_000, aof=not a.no_aof)
     if a.what == "crawl":
         from frontier.bench.crawl_bench import main as crawl_main
         return crawl_main(pages=a.urls or 10_000)
@@ -320,6 +320,8 @@ def parser() -> argparse.ArgumentParser:
     b.add_argument("what", choices=["frontier", "crawl", "ordering"])
     b.add_argument("--urls", type=int, help="URLs (frontier) or pages (crawl)")
     b.add_argument("--hosts", type=int)
+    b.add_argument("--no-aof", action="store_true",
+                   help="frontier: run the embedded Redis without its append-only file")
     b.set_defaults(func=cmd_bench)
     return p
 

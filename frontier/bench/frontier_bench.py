@@ -123,7 +123,8 @@ async def admit_pipelined(admission: Admission, candidates: list[Candidate]) -> 
             pass
 
 
-async def run(urls: int, hosts: int, exponent: float, seed: int, state: Path) -> dict[str, Any]:
+async def run(urls: int, hosts: int, exponent: float, seed: int, state: Path,
+              aof: bool = True) -> dict[str, Any]:
     settings = JobSettings.model_validate({
         "name": "bench", "state_dir": str(state),
         "store": {"partitions": 16, "expected_urls": urls},
@@ -132,7 +133,10 @@ async def run(urls: int, hosts: int, exponent: float, seed: int, state: Path) ->
         "politeness": {"min_delay_s": 0.0, "response_time_factor": 0.0},
         "lease": {"ttl_s": 3600},
     })
-    server = EmbeddedRedis(state, config=redis_tuning(settings))
+    config = redis_tuning(settings)
+    if not aof:  # the embedded default keeps an append-only file; this measures without it
+        config["appendonly"] = "no"
+    server = EmbeddedRedis(state, config=config)
     server.start()
     client = connect(server.url)
     try:
@@ -179,6 +183,7 @@ async def run(urls: int, hosts: int, exponent: float, seed: int, state: Path) ->
         final = await store.counts()
         return {
             "urls": urls, "hosts": hosts, "zipf_exponent": exponent, "partitions": 16,
+            "append_only_file": aof,
             "admit_urls_per_s": round(statistics.median(segment_rates)),
             "admit_urls_per_s_overall": round(urls / admit_total_s),
             "lease_complete_urls_per_s": round(statistics.median(full_rates)) if full_rates else 0,
@@ -202,8 +207,9 @@ async def run(urls: int, hosts: int, exponent: float, seed: int, state: Path) ->
         server.stop()
 
 
-def main(urls: int = 1_000_000, hosts: int = 10_000, exponent: float = 1.0, seed: int = 7) -> int:
+def main(urls: int = 1_000_000, hosts: int = 10_000, exponent: float = 1.0, seed: int = 7,
+         aof: bool = True) -> int:
     with tempfile.TemporaryDirectory(prefix="sluice-bench-") as tmp:
-        result = asyncio.run(run(urls, hosts, exponent, seed, Path(tmp)))
+        result = asyncio.run(run(urls, hosts, exponent, seed, Path(tmp), aof))
     print(json.dumps(result, indent=2))
     return 0
