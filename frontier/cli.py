@@ -82,6 +82,7 @@ async def _crawl(settings: JobSettings, out: Path, workers: int, *, quiet: bool 
                  admin: str | None = None) -> dict[str, Any]:
     from frontier.daemon import Daemon, serve
     from frontier.job import admit_seeds, open_job
+    from frontier.metrics import WorkerMetrics
     from frontier.progress import Progress
     from workers.loop import Worker
 
@@ -94,8 +95,9 @@ async def _crawl(settings: JobSettings, out: Path, workers: int, *, quiet: bool 
         await admit_seeds(job, settings.seeds)
         daemon = Daemon(job, registry)
         stop = asyncio.Event()
-        crew = [Worker(job.store, job.admission, out, registry=registry if i == 0 else None,
-                       drain=True) for i in range(workers)]
+        metrics = WorkerMetrics(registry)  # one set of counters for all workers here
+        crew = [Worker(job.store, job.admission, out, metrics=metrics, drain=True)
+                for _ in range(workers)]
         loop = asyncio.get_running_loop()
 
         interrupted = False
@@ -169,6 +171,7 @@ def cmd_daemon(a: argparse.Namespace) -> int:
 def cmd_worker(a: argparse.Namespace) -> int:
     from frontier.daemon import metrics_app, serve
     from frontier.job import open_job
+    from frontier.metrics import WorkerMetrics
     from workers.loop import Worker
 
     base = load_settings(None, {"name": a.job, "redis": {"url": a.redis}})
@@ -179,8 +182,8 @@ def cmd_worker(a: argparse.Namespace) -> int:
                 fetch = job.settings.fetch.model_copy(update={"concurrency": a.concurrency})
                 job.store.settings = job.settings.model_copy(update={"fetch": fetch})
             registry = CollectorRegistry()
-            worker = Worker(job.store, job.admission, Path(a.out), registry=registry,
-                            drain=a.drain)
+            worker = Worker(job.store, job.admission, Path(a.out),
+                            metrics=WorkerMetrics(registry), drain=a.drain)
             loop = asyncio.get_running_loop()
             loop.add_signal_handler(signal.SIGINT, worker.stop)
             loop.add_signal_handler(signal.SIGTERM, worker.stop)

@@ -87,7 +87,7 @@ class Worker:
         admission: Admission,
         out_dir: Path,
         *,
-        registry: CollectorRegistry | None = None,
+        metrics: WorkerMetrics | None = None,
         drain: bool = False,
         clock: Callable[[], float] = time.time,
     ) -> None:
@@ -103,7 +103,7 @@ class Worker:
         self.out_dir = Path(out_dir)
         self.drain = drain
         self.clock = clock
-        self.metrics = WorkerMetrics(registry or CollectorRegistry())
+        self.metrics = metrics or WorkerMetrics(CollectorRegistry())
         self.budget = PageBudget(store.redis, store.keys, self.settings.budget.max_pages)
         self.near_dups = NearDuplicateIndex(store.redis, store.keys.near_dup)
         self._fetcher = Fetcher(self.settings.fetch, ua)

@@ -73,8 +73,10 @@ for g = 0, ngroups - 1 do
     redis.call('HSET', hk, 'seeded', seeded)
   end
   local limit, earned = host_limit(budget, linking, admitted + n, seeded)
-  local changed = false
+  local changed = false  -- something was queued or credited: the host's counters change
+  local reschedule = false  -- the host's best score may have risen, or it was idle
   local q = nil
+  local prior_best = nil  -- best score before this batch (nil: the host queued nothing)
   for _ = 1, n do
     local slot, fp, score, credit, url = ARGV[a], ARGV[a + 1], ARGV[a + 2], ARGV[a + 3], ARGV[a + 4]
     a = a + 5
@@ -91,7 +93,15 @@ for g = 0, ngroups - 1 do
       elseif full then
         exclude(earned and 'host_link_budget' or 'host_budget')
       else
-        q = q or queue_open(hot, cold, cap)
+        if not q then
+          q = queue_open(hot, cold, cap)
+          if q.size > 0 then
+            prior_best = tonumber(redis.call('ZREVRANGE', hot, 0, 0, 'WITHSCORES')[2])
+          end
+        end
+        if prior_best == nil or tonumber(score) > prior_best then
+          reschedule = true
+        end
         queue_push(q, url, score)
         admitted = admitted + 1
         new = new + 1
@@ -106,6 +116,7 @@ for g = 0, ngroups - 1 do
         end
         credited = credited + 1
         changed = true
+        reschedule = true
       end
     end
   end
@@ -114,6 +125,8 @@ for g = 0, ngroups - 1 do
   end
   if changed then
     redis.call('HSET', hk, 'admitted', admitted)
+  end
+  if reschedule then  -- a host that already queued URLs is scheduled (or held) already
     schedule(S, host, hk, hot, now)
   end
 end
