@@ -249,7 +249,8 @@ class FrontierStore:
         keys = [pk.counts, pk.claims, pk.leases, pk.attempts, pk.prio]
         for h in hosts:
             keys += (pk.host(h), pk.hot(h), pk.cold(h))
-        return (self.scripts.lease_take, keys, [expires, partition, len(hosts), *hosts])
+        return (self.scripts.lease_take, keys,
+                [expires, partition, len(hosts), self.settings.store.hot_capacity, *hosts])
 
     # -- complete and reap ---------------------------------------------------------------
 
@@ -335,7 +336,8 @@ class FrontierStore:
         keys = [pk.counts, pk.reasons, pk.due, pk.ready, pk.prio, pk.claims, pk.hosts,
                 pk.host(host), pk.hot(host), pk.cold(host)]
         async with redis_boundary("control"):
-            state = await self.scripts.control(keys, [self._now(now), host, action, arg])
+            state = await self.scripts.control(
+                keys, [self._now(now), host, action, arg, self.settings.store.hot_capacity])
         return state.decode() if isinstance(state, bytes) else str(state)
 
     # -- reading ---------------------------------------------------------------------------

@@ -4,10 +4,13 @@
 
 local DEPTH_SCALE = 256
 
--- A host's queue: the best `cap` URLs stay sorted in `hot` (a listpack ZSET), the rest
--- wait in `cold` (a LIST of 'score url', arrival order). Open it, push URLs, close it:
--- the hot size and lowest hot score are tracked locally, and cold entries are written
--- in one RPUSH per batch, so a URL that goes cold costs no call of its own.
+-- A host's queue: up to `cap` URLs sorted in `hot` (a listpack ZSET), the rest waiting in
+-- `cold` (a LIST of 'score url', arrival order). A URL goes hot while there is room, or
+-- when it beats the lowest hot URL (which then goes cold). Leases pop the best hot URL;
+-- when hot runs empty, the oldest `cap` cold URLs move in at once. So a lease costs one
+-- call, and a host has queued URLs iff hot or cold is non-empty. Open the queue, push
+-- URLs, close it: the hot size and lowest score are tracked locally, and cold entries are
+-- written in one RPUSH per batch.
 local function queue_open(hot, cold, cap)
   return {hot = hot, cold = cold, cap = cap, size = redis.call('ZCARD', hot), low = nil, spill = {}}
 end
@@ -48,17 +51,39 @@ local function push_url(hot, cold, url, score, cap)
   queue_close(q)
 end
 
--- Pop the host's best URL; refill the hot window with one cold URL.
--- Invariant: cold is non-empty only while hot is full.
-local function pop_best(hot, cold)
+-- Move the oldest `cap` cold URLs into an empty hot window; returns how many moved.
+local function refill(hot, cold, cap)
+  local items = redis.call('LPOP', cold, cap)
+  if not items then
+    return 0
+  end
+  local add = {}
+  for _, item in ipairs(items) do
+    local sp = string.find(item, ' ', 1, true)
+    add[#add + 1] = string.sub(item, 1, sp - 1)
+    add[#add + 1] = string.sub(item, sp + 1)
+  end
+  redis.call('ZADD', hot, unpack(add))
+  return #items
+end
+
+-- The host's best queued URL and score (refilling an empty hot window), or nil.
+local function best_url(hot, cold, cap)
+  local best = redis.call('ZREVRANGE', hot, 0, 0, 'WITHSCORES')
+  if #best == 0 and refill(hot, cold, cap) > 0 then
+    best = redis.call('ZREVRANGE', hot, 0, 0, 'WITHSCORES')
+  end
+  return best[1], best[2]
+end
+
+-- Pop the host's best URL (refilling an empty hot window first).
+local function pop_best(hot, cold, cap)
   local top = redis.call('ZPOPMAX', hot)
   if #top == 0 then
-    return nil, nil
-  end
-  local item = redis.call('LPOP', cold)
-  if item then
-    local sp = string.find(item, ' ', 1, true)
-    redis.call('ZADD', hot, string.sub(item, 1, sp - 1), string.sub(item, sp + 1))
+    if refill(hot, cold, cap) == 0 then
+      return nil, nil
+    end
+    top = redis.call('ZPOPMAX', hot)
   end
   return top[1], top[2]
 end
@@ -70,7 +95,7 @@ end
 -- Put a host where it belongs: due (waiting for its time) or ready (time has come),
 -- unless it is paused, blocked, leased, claimed, or has nothing queued.
 -- S = {due=, ready=, prio=, claims=}
-local function schedule(S, host, hk, hot, now)
+local function schedule(S, host, hk, hot, cold, cap, now)
   local f = redis.call('HMGET', hk, 'state', 'lease', 'boost', 'next')
   if f[1] ~= 'active' or f[2] then
     return
@@ -78,14 +103,14 @@ local function schedule(S, host, hk, hot, now)
   if redis.call('ZSCORE', S.claims, host) then
     return
   end
-  local best = redis.call('ZREVRANGE', hot, 0, 0, 'WITHSCORES')
-  if #best == 0 then
+  local url, score = best_url(hot, cold, cap)
+  if not url then
     redis.call('ZREM', S.due, host)
     redis.call('ZREM', S.ready, host)
     redis.call('HDEL', S.prio, host)
     return
   end
-  local p = tonumber(best[2]) * tonumber(f[3] or '1')
+  local p = tonumber(score) * tonumber(f[3] or '1')
   redis.call('HSET', S.prio, host, p)
   if redis.call('ZSCORE', S.ready, host) then
     redis.call('ZADD', S.ready, p, host)
@@ -96,14 +121,32 @@ end
 
 -- Schedule a host whose lease just ended: it is in none of due, ready and claims, so
 -- only its next time and priority are needed. `boost` comes from the caller's HMGET.
-local function schedule_released(S, host, hot, boost, next_ms)
-  local best = redis.call('ZREVRANGE', hot, 0, 0, 'WITHSCORES')
-  if #best == 0 then
-    redis.call('HDEL', S.prio, host)
+-- The writes are gathered in `out` = {prio = {host, p, ...}, due = {ms, host, ...},
+-- idle = {host, ...}} and made by flush_released, a few calls for a whole batch.
+local function schedule_released(out, host, hot, cold, cap, boost, next_ms)
+  local url, score = best_url(hot, cold, cap)
+  if not url then
+    out.idle[#out.idle + 1] = host
     return
   end
-  redis.call('HSET', S.prio, host, tonumber(best[2]) * tonumber(boost or '1'))
-  redis.call('ZADD', S.due, next_ms, host)
+  local prio = out.prio
+  prio[#prio + 1] = host
+  prio[#prio + 1] = tonumber(score) * tonumber(boost or '1')
+  local due = out.due
+  due[#due + 1] = next_ms
+  due[#due + 1] = host
+end
+
+local function each_chunk(items, step, fn)
+  for i = 1, #items, step do
+    fn(unpack(items, i, math.min(i + step - 1, #items)))
+  end
+end
+
+local function flush_released(S, out)
+  each_chunk(out.prio, 1000, function(...) redis.call('HSET', S.prio, ...) end)
+  each_chunk(out.due, 1000, function(...) redis.call('ZADD', S.due, ...) end)
+  each_chunk(out.idle, 1000, function(...) redis.call('HDEL', S.prio, ...) end)
 end
 
 -- A failed attempt: queue the URL again, or past the limit, move it to the dead letters.

@@ -96,7 +96,8 @@ for g = 0, ngroups - 1 do
         if not q then
           q = queue_open(hot, cold, cap)
           if q.size > 0 then
-            prior_best = tonumber(redis.call('ZREVRANGE', hot, 0, 0, 'WITHSCORES')[2])
+            local _, best = best_url(hot, cold, cap)
+            prior_best = tonumber(best)
           end
         end
         if prior_best == nil or tonumber(score) > prior_best then
@@ -127,7 +128,7 @@ for g = 0, ngroups - 1 do
     redis.call('HSET', hk, 'admitted', admitted)
   end
   if reschedule then  -- a host that already queued URLs is scheduled (or held) already
-    schedule(S, host, hk, hot, now)
+    schedule(S, host, hk, hot, cold, cap, now)
   end
 end
 

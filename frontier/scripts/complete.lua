@@ -18,7 +18,8 @@ local C = {counts = KEYS[1], reasons = KEYS[2], attempts = KEYS[4], dead = KEYS[
 local S = {due = KEYS[6], ready = KEYS[7], prio = KEYS[8], claims = KEYS[9]}
 local out = {}
 local tally = {}
-local ended = 0
+local ended = {}
+local released = {prio = {}, due = {}, idle = {}}
 local a = 8
 for i = 0, n - 1 do
   local member, outcome, reason = ARGV[a], ARGV[a + 1], ARGV[a + 2]
@@ -26,14 +27,14 @@ for i = 0, n - 1 do
   a = a + 6
   local hk, hot, cold = KEYS[10 + 3 * i], KEYS[11 + 3 * i], KEYS[12 + 3 * i]
   local expiry = redis.call('ZSCORE', KEYS[3], member)
-  if not expiry then
+  if not expiry or ended[member] then  -- (the leases ZSET is trimmed at the end)
     out[#out + 1] = 'not_held'
   elseif tonumber(expiry) < now then
     out[#out + 1] = 'expired'
   else
     local host, score, attempts, url = parse_lease(member)
-    redis.call('ZREM', KEYS[3], member)
-    ended = ended + 1
+    ended[#ended + 1] = member
+    ended[member] = true
     local f = redis.call('HMGET', hk, 'delay_ms', 'crawl_ms', 'boost', 'state', 'fetched')
     local fetched = tonumber(f[5] or '0')
     if outcome == 'retry' then
@@ -57,14 +58,16 @@ for i = 0, n - 1 do
     redis.call('HSET', hk, 'next', next_ms, 'rt_ms', rt, 'crawl_ms', f[2] or '0', 'fetched', fetched)
     redis.call('HDEL', hk, 'lease')
     if f[4] == 'active' then
-      schedule_released(S, host, hot, f[3], next_ms)
+      schedule_released(released, host, hot, cold, cap, f[3], next_ms)
     end
     out[#out + 1] = 'ok'
   end
 end
-if ended > 0 then
-  redis.call('HINCRBY', KEYS[1], 'leased', -ended)
+if #ended > 0 then
+  each_chunk(ended, 1000, function(...) redis.call('ZREM', KEYS[3], ...) end)
+  redis.call('HINCRBY', KEYS[1], 'leased', -#ended)
 end
+flush_released(S, released)
 for key, count in pairs(tally) do
   if key == 'fetched' then
     redis.call('HINCRBY', KEYS[1], 'fetched', count)

@@ -1,7 +1,7 @@
 -- control: an operator's command on one politeness key.
 -- KEYS[1] counts  KEYS[2] reasons  KEYS[3] due  KEYS[4] ready  KEYS[5] prio  KEYS[6] claims
 -- KEYS[7] hosts   KEYS[8] host hash  KEYS[9] hot ZSET  KEYS[10] cold LIST
--- ARGV[1] now (ms)  ARGV[2] host  ARGV[3] action  ARGV[4] value
+-- ARGV[1] now (ms)  ARGV[2] host  ARGV[3] action  ARGV[4] value  ARGV[5] hot capacity
 -- Actions: boost <multiplier> | pause | resume (a paused host) | block | unblock (a blocked
 -- host) | delay <ms>.
 -- Block drops the host's queue: its URLs end as excluded (reason host_blocked).
@@ -48,5 +48,5 @@ elseif action == 'delay' then
 else
   return redis.error_reply('unknown host action ' .. action)
 end
-schedule(S, host, hk, hot, now)
+schedule(S, host, hk, hot, cold, tonumber(ARGV[5]), now)
 return redis.call('HGET', hk, 'state')

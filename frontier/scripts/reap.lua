@@ -27,7 +27,7 @@ for i = 0, n - 1 do
     end
     redis.call('HINCRBY', KEYS[1], 'leased', -1)
     local result = retry_or_bury(C, hk, hot, cold, url, score, 'lease_expired', cap, max_attempts)
-    schedule(S, host, hk, hot, now)
+    schedule(S, host, hk, hot, cold, cap, now)
     out[#out + 1] = member
     out[#out + 1] = result
   end
