@@ -24,6 +24,7 @@ import time
 from collections.abc import Mapping
 from pathlib import Path
 from types import TracebackType
+from typing import Self
 
 import redis
 from redis.backoff import NoBackoff
@@ -51,7 +52,37 @@ def _make_dir(directory: Path | None, prefix: str) -> tuple[Path, bool]:
     return Path(tempfile.mkdtemp(prefix=prefix)), True
 
 
-class RedisServer:
+class _TestServers:
+    """Shared lifecycle: a context manager that stops and removes its own folder."""
+
+    dir: Path
+    _owns_dir: bool
+
+    def start(self) -> Self:
+        raise NotImplementedError
+
+    def stop(self) -> None:
+        raise NotImplementedError
+
+    def close(self) -> None:
+        """Stop, and delete the folder if this object created it."""
+        self.stop()
+        if self._owns_dir:
+            shutil.rmtree(self.dir, ignore_errors=True)
+
+    def __enter__(self) -> Self:
+        return self.start()
+
+    def __exit__(
+        self,
+        exc_type: type[BaseException] | None,
+        exc: BaseException | None,
+        tb: TracebackType | None,
+    ) -> None:
+        self.close()
+
+
+class RedisServer(_TestServers):
     """A standalone server for tests; ``restart()`` keeps its port, folder and AOF data."""
 
     def __init__(
@@ -100,22 +131,6 @@ class RedisServer:
         self._process.stop()
         self._process.start()
 
-    def close(self) -> None:
-        """Stop, and delete the folder if this object created it."""
-        self.stop()
-        if self._owns_dir:
-            shutil.rmtree(self.dir, ignore_errors=True)
-
-    def __enter__(self) -> RedisServer:
-        return self.start()
-
-    def __exit__(
-        self,
-        exc_type: type[BaseException] | None,
-        exc: BaseException | None,
-        tb: TracebackType | None,
-    ) -> None:
-        self.close()
 
 
 def _port_free(port: int) -> bool:
@@ -170,7 +185,7 @@ def _cluster_info(port: int) -> dict[str, str]:
     return dict(line.split(":", 1) for line in lines if ":" in line)
 
 
-class RedisCluster:
+class RedisCluster(_TestServers):
     """Three cluster-mode masters with all 16384 slots assigned, on loopback."""
 
     def __init__(
@@ -262,19 +277,3 @@ class RedisCluster:
             node.stop()
         self.nodes = []
 
-    def close(self) -> None:
-        """Stop, and delete the folder if this object created it."""
-        self.stop()
-        if self._owns_dir:
-            shutil.rmtree(self.dir, ignore_errors=True)
-
-    def __enter__(self) -> RedisCluster:
-        return self.start()
-
-    def __exit__(
-        self,
-        exc_type: type[BaseException] | None,
-        exc: BaseException | None,
-        tb: TracebackType | None,
-    ) -> None:
-        self.close()
