@@ -258,7 +258,7 @@ def cmd_bench(a: argparse.Namespace) -> int:
         return frontier_main(urls=a.urls or 1_000_000, hosts=a.hosts or 10_000, aof=not a.no_aof)
     if a.what == "crawl":
         from frontier.bench.crawl_bench import main as crawl_main
-        return crawl_main(pages=a.urls or 10_000)
+        return crawl_main(pages=a.urls or 10_000, profile=a.profile)
     from frontier.bench.ordering_bench import main as ordering_main
     return ordering_main()
 
@@ -323,6 +323,8 @@ def parser() -> argparse.ArgumentParser:
     b.add_argument("what", choices=["frontier", "crawl", "ordering"])
     b.add_argument("--urls", type=int, help="URLs (frontier) or pages (crawl)")
     b.add_argument("--hosts", type=int)
+    b.add_argument("--profile", action="store_true",
+                   help="crawl: also run a profiled crawl and print where the time goes")
     b.add_argument("--no-aof", action="store_true",
                    help="frontier: run the embedded Redis without its append-only file")
     b.set_defaults(func=cmd_bench)

@@ -153,6 +153,22 @@ def link_weights(
     return weights
 
 
+def _shares(
+    source_url: str, cash: float, links: Iterable[str], settings: PrioritySettings
+) -> list[tuple[str, float, float]]:
+    """(url, share, trap factor) per distinct out-link; shares carry the penalties."""
+    weights = link_weights(source_url, links, settings)
+    total = sum(weights.values())
+    if not total:
+        return []
+    spend = (1.0 - settings.jump_share) * cash / total
+    out = []
+    for url, w in weights.items():
+        factor = trap_factor(url, settings)
+        out.append((url, spend * w * factor, factor))
+    return out
+
+
 def split_cash(
     source_url: str, cash: float, links: Iterable[str], settings: PrioritySettings
 ) -> dict[str, float]:
@@ -160,12 +176,7 @@ def split_cash(
 
     The shares sum to at most (1 - jump_share) x cash; the rest is the jump pool's.
     """
-    weights = link_weights(source_url, links, settings)
-    total = sum(weights.values())
-    if not total:
-        return {}
-    spend = (1.0 - settings.jump_share) * cash / total
-    return {url: spend * w * trap_factor(url, settings) for url, w in weights.items()}
+    return {url: share for url, share, _ in _shares(source_url, cash, links, settings)}
 
 
 def distribute(
@@ -182,15 +193,14 @@ def distribute(
     ``cash`` = its share plus ``jump_floor`` (trap penalties on both), the priority of
     a URL the frontier has not seen. ``source_host`` is the fetched page's host.
     """
-    shares = split_cash(lease_url, lease_cash, (url for url, _ in links), settings)
     source = url_host(lease_url)
     floor = settings.jump_floor
     child = depth + 1
-    out = []
-    for url, share in shares.items():
-        start = share + floor * trap_factor(url, settings) if floor else share
-        out.append(Candidate(url, depth=child, cash=start, credit=share, source_host=source))
-    return out
+    return [
+        Candidate(url, depth=child, cash=share + floor * factor, credit=share,
+                  source_host=source)
+        for url, share, factor in _shares(lease_url, lease_cash, (u for u, _ in links), settings)
+    ]
 
 
 # -- the textbook algorithm, in memory --------------------------------------------------

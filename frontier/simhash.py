@@ -22,6 +22,7 @@ from collections.abc import Callable
 from typing import Any
 
 import mmh3
+from redis.asyncio.cluster import RedisCluster
 from redis.exceptions import ConnectionError as RedisConnectionError
 from redis.exceptions import RedisError
 from redis.exceptions import TimeoutError as RedisTimeoutError
@@ -171,11 +172,15 @@ class NearDuplicateIndex:
             return []
         unsigned = [to_unsigned(fp) for fp in fps]
         keys = [self.keys(fp) for fp in unsigned]
-        flat = await self._buckets([k for ks in keys for k in ks])
-        width = len(self.widths)
+        if isinstance(self.redis, RedisCluster):  # one fingerprint's buckets span slots
+            flat = await self._buckets([k for ks in keys for k in ks])
+            width = len(self.widths)
+            candidates = [flat[i * width:(i + 1) * width] for i in range(len(unsigned))]
+        else:  # one SUNION per fingerprint instead of k + 1 SMEMBERS
+            candidates = [[found] for found in await self._unions(keys)]
         out: list[int | None] = []
         for i, fp in enumerate(unsigned):
-            stored = self._closest(fp, flat[i * width:(i + 1) * width])
+            stored = self._closest(fp, candidates[i])
             earlier = min(((hamming(fp, e), e) for e in unsigned[:i]), default=None)
             if earlier is not None and earlier[0] <= self.k and (
                     stored is None or earlier[0] < hamming(fp, stored)):
@@ -201,6 +206,17 @@ class NearDuplicateIndex:
         candidates = {to_unsigned(int(member)) for member in set().union(*buckets)}
         best = min(((hamming(fp, c), c) for c in candidates), default=None)
         return best[1] if best is not None and best[0] <= self.k else None
+
+    async def _unions(self, keys: list[list[str]]) -> list[set[Any]]:
+        try:
+            async with self.redis.pipeline(transaction=False) as pipe:
+                for ks in keys:
+                    pipe.sunion(ks)
+                return list(await pipe.execute())
+        except (RedisConnectionError, RedisTimeoutError) as exc:
+            raise StoreUnavailable(f"near-duplicate lookup failed: {exc}") from exc
+        except RedisError as exc:
+            raise StoreError(f"near-duplicate lookup failed: {exc}") from exc
 
     async def _buckets(self, keys: list[str]) -> list[set[Any]]:
         try:

@@ -413,13 +413,13 @@ class _CountingRedis:
 
 async def test_check_and_add_takes_two_round_trips(client: aioredis.Redis) -> None:
     # Project requirement (common practice, no source): one pipelined round trip
-    # for the k+1 SMEMBERS, one for the SADDs.
+    # for the lookup (on a single server one SUNION of the k+1 buckets), one for the SADDs.
     _, key = _keyspace()
     counting = _CountingRedis(client)
     index = NearDuplicateIndex(counting, key)
     await index.check_and_add(12345)
     assert counting.round_trips == 2
-    assert counting.commands == [["SMEMBERS"] * 4, ["SADD"] * 4]
+    assert counting.commands == [["SUNION"], ["SADD"] * 4]
 
 
 async def test_unreachable_redis_raises_store_unavailable() -> None:
