@@ -199,10 +199,25 @@ def cmd_worker(a: argparse.Namespace) -> int:
     return asyncio.run(run())
 
 
+def _stored_job(a: argparse.Namespace) -> JobSettings:
+    """Where a job lives: --redis URL, or the embedded server of the --state folder."""
+    overrides: dict[str, Any] = {"name": a.job, "redis": {"url": a.redis}}
+    if a.state:
+        overrides["state_dir"] = str(a.state)
+    return load_settings(None, overrides)
+
+
+def _admin_flags(p: argparse.ArgumentParser) -> None:
+    p.add_argument("--redis", help="redis:// URL; none: the embedded server of --state")
+    p.add_argument("--job", required=True)
+    p.add_argument("--state", type=Path,
+                   help="state folder of an embedded job (sluice crawl: OUT/state)")
+
+
 def cmd_host(a: argparse.Namespace) -> int:
     from frontier.job import open_job
 
-    base = load_settings(None, {"name": a.job, "redis": {"url": a.redis}})
+    base = _stored_job(a)
 
     async def run() -> None:
         async with open_job(base, stored=True) as job:
@@ -217,7 +232,7 @@ def cmd_host(a: argparse.Namespace) -> int:
 def cmd_status(a: argparse.Namespace) -> int:
     from frontier.job import open_job
 
-    base = load_settings(None, {"name": a.job, "redis": {"url": a.redis}})
+    base = _stored_job(a)
 
     async def run() -> None:
         async with open_job(base, stored=True) as job:
@@ -234,8 +249,7 @@ def cmd_explain(a: argparse.Namespace) -> int:
     from frontier.explain import explain, format_explain
     from frontier.job import open_job
 
-    base = load_settings(None, {"name": a.job, "redis": {"url": a.redis},
-                                "state_dir": str(a.state) if a.state else ".sluice"})
+    base = _stored_job(a)
 
     async def run() -> None:
         async with open_job(base, stored=True) as job:
@@ -291,23 +305,19 @@ def parser() -> argparse.ArgumentParser:
     w.set_defaults(func=cmd_worker)
 
     h = sub.add_parser("host", help="boost, pause, resume, block, unblock or delay a host")
-    h.add_argument("--redis", required=True)
-    h.add_argument("--job", required=True)
+    _admin_flags(h)
     h.add_argument("host")
     h.add_argument("action", choices=["boost", "pause", "resume", "block", "unblock", "delay"])
     h.add_argument("value", nargs="?", type=float, help="boost multiplier or delay seconds")
     h.set_defaults(func=cmd_host)
 
     s = sub.add_parser("status", help="URL counts by state")
-    s.add_argument("--redis", required=True)
-    s.add_argument("--job", required=True)
+    _admin_flags(s)
     s.set_defaults(func=cmd_status)
 
     e = sub.add_parser("explain", help="why a URL has its priority")
     e.add_argument("url")
-    e.add_argument("--redis", required=True)
-    e.add_argument("--job", required=True)
-    e.add_argument("--state", type=Path)
+    _admin_flags(e)
     e.add_argument("--json", action="store_true")
     e.set_defaults(func=cmd_explain)
 
