@@ -68,6 +68,12 @@ async def client_limit(client: Any, seconds: float = 2.0, batch: int = 500) -> f
     return calls / (time.perf_counter() - start)
 
 
+async def redis_cpu_s(client: Any) -> float:
+    """CPU seconds the Redis server has used (INFO cpu)."""
+    info = await client.info("cpu")
+    return float(info["used_cpu_user"]) + float(info["used_cpu_sys"])
+
+
 async def hosts_with_queue(client: Any, store: FrontierStore) -> int:
     """Politeness keys that still have queued URLs."""
     total = 0
@@ -150,6 +156,7 @@ async def run(urls: int, hosts: int, exponent: float, seed: int, state: Path,
         gc.freeze()  # the million input objects are bench data: keep the collector off them
         mean_len = statistics.fmean(len(c.url) for c in candidates)
         segment_rates: list[float] = []
+        cpu0, redis0 = time.process_time(), await redis_cpu_s(client)
         t0 = time.perf_counter()
         segment = max(1, len(candidates) // SEGMENTS)
         for start in range(0, len(candidates), segment):
@@ -157,6 +164,7 @@ async def run(urls: int, hosts: int, exponent: float, seed: int, state: Path,
             await admit_pipelined(admission, candidates[start:start + segment])
             segment_rates.append(min(segment, len(candidates) - start) / (time.perf_counter() - s))
         admit_total_s = time.perf_counter() - t0
+        admit_py_cpu, admit_redis_cpu = time.process_time() - cpu0, await redis_cpu_s(client) - redis0
         del candidates
         gc.unfreeze()
         counts = await store.counts()
@@ -166,6 +174,7 @@ async def run(urls: int, hosts: int, exponent: float, seed: int, state: Path,
         full_rates: list[float] = []
         done = 0
         thin_rounds = 0
+        cpu1, redis1 = time.process_time(), await redis_cpu_s(client)
         t1 = time.perf_counter()
         while thin_rounds < TAIL_ROUNDS:
             s = time.perf_counter()
@@ -183,6 +192,7 @@ async def run(urls: int, hosts: int, exponent: float, seed: int, state: Path,
             # the tail: few hosts left, one lease per host at a time (politeness, by design)
             thin_rounds = thin_rounds + 1 if len(leases) < LEASE_BATCH * LEASERS // 4 else 0
         lease_total_s = time.perf_counter() - t1
+        lease_py_cpu, lease_redis_cpu = time.process_time() - cpu1, await redis_cpu_s(client) - redis1
         final = await store.counts()
         return {
             "urls": urls, "hosts": hosts, "zipf_exponent": exponent, "partitions": 16,
@@ -196,6 +206,11 @@ async def run(urls: int, hosts: int, exponent: float, seed: int, state: Path,
             "admit_ratio_to_client_limit": round(statistics.median(segment_rates) / limit, 2),
             "lease_complete_ratio_to_client_limit": round(
                 (statistics.median(full_rates) if full_rates else 0) / limit, 2),
+            "cpu_us_per_admitted_url": {"redis": round(admit_redis_cpu / urls * 1e6, 1),
+                                        "python": round(admit_py_cpu / urls * 1e6, 1)},
+            "cpu_us_per_leased_and_completed_url": {
+                "redis": round(lease_redis_cpu / max(done, 1) * 1e6, 1),
+                "python": round(lease_py_cpu / max(done, 1) * 1e6, 1)},
             "mean_url_length": round(mean_len, 1),
             "bytes_per_queued_url": round(mem.get("queue", 0) / counts.queued, 1),
             "bytes_per_seen_url": round(mem.get("seen", 0) / counts.admitted, 2),
