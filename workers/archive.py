@@ -31,7 +31,7 @@ import socket
 import uuid
 import zlib
 from collections.abc import Callable, Iterable, Sequence
-from dataclasses import asdict, dataclass
+from dataclasses import dataclass
 from datetime import UTC, datetime
 from pathlib import Path
 from typing import IO, Any
@@ -361,7 +361,7 @@ class FetchEntry:
 
     def to_json(self) -> dict[str, Any]:
         """JSON-ready dict: ISO UTC time ending in Z, SimHash as 16 hex digits."""
-        data = asdict(self)
+        data = {name: getattr(self, name) for name in self.__slots__}  # flat: no deep copy
         data["fetched_at"] = warc_date(self.fetched_at)
         finite = math.isfinite(self.duration_s)
         data["duration_s"] = round(self.duration_s, 6) if finite else None
