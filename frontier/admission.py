@@ -6,9 +6,10 @@ lies out of scope is admitted as *excluded* with its reason, so the counts add u
 
 from __future__ import annotations
 
-from collections.abc import Iterable
+import asyncio
+from collections.abc import Awaitable, Callable, Iterable
 
-from frontier.exceptions import UrlError
+from frontier.exceptions import ConfigError, UrlError
 from frontier.keys import partition_of
 from frontier.model import AdmitResult, Candidate, encode_credit, encode_score
 from frontier.settings import JobSettings
@@ -16,6 +17,9 @@ from frontier.store import FrontierStore, PartitionBatch, QueuedUrl
 from frontier.urls import Scope, canonicalize, fingerprint, host_of, politeness_key
 
 HOST_CACHE_SIZE = 100_000  # hosts whose politeness key and partition are remembered
+RESOLVE_CONCURRENCY = 32  # address lookups at once, for the 'ip' politeness key
+
+Resolver = Callable[[str], Awaitable[str | None]]
 
 
 def scope_from_settings(settings: JobSettings, seeds: Iterable[str] = ()) -> Scope:
@@ -34,14 +38,20 @@ def scope_from_settings(settings: JobSettings, seeds: Iterable[str] = ()) -> Sco
 class Admission:
     """Prepares candidates for the store and admits them."""
 
-    def __init__(self, store: FrontierStore, scope: Scope) -> None:
+    def __init__(self, store: FrontierStore, scope: Scope,
+                 resolver: Resolver | None = None) -> None:
+        """``resolver`` maps a host to its address; needed for the 'ip' politeness key."""
         self.store = store
         self.scope = scope
+        self.resolver = resolver
+        self._address: dict[str, str] = {}  # host -> address, for the 'ip' politeness key
         s = store.settings
         self.partitions = s.store.partitions
         self.max_length = s.scope.max_url_length
         self.schemes = frozenset(s.scope.schemes)
         self.key_mode = s.politeness.key
+        if self.key_mode == "ip" and resolver is None:
+            raise ConfigError("politeness.key = 'ip' needs a resolver")
         self._places: dict[str, tuple[str, int]] = {}  # host -> (politeness key, partition)
 
     def prepare(self, candidates: Iterable[Candidate]) -> dict[int, PartitionBatch]:
@@ -65,7 +75,7 @@ class Admission:
             if place is None:
                 if len(places) > HOST_CACHE_SIZE:
                     places.clear()
-                key = politeness_key(host, self.key_mode)
+                key = self._key(host)
                 place = places[host] = (key, partition_of(key, parts))
             batch = batches.get(place[1])
             if batch is None:
@@ -83,10 +93,47 @@ class Admission:
                 batch.seeded.add(place[0])
             source = c.source_host
             if source is not None and source != host:
-                source_key = politeness_key(source, key_mode) if key_mode != "host" else source
+                source_key = self._key(source) if key_mode != "host" else source
                 if source_key != place[0]:
                     batch.add_source(place[0], source_key)
         return batches
 
+    def _key(self, host: str) -> str:
+        """The politeness key of a host (an unresolved host stands for itself)."""
+        if self.key_mode == "ip":
+            return self._address.get(host, host)
+        return politeness_key(host, self.key_mode)
+
+    async def _resolve_new_hosts(self, candidates: list[Candidate]) -> None:
+        """Look up the addresses of hosts not seen before ('ip' politeness key)."""
+        assert self.resolver is not None
+        hosts = set()
+        for c in candidates:
+            for url in (c.url, c.source_host and f"http://{c.source_host}/"):
+                if not url:
+                    continue
+                try:
+                    host = host_of(canonicalize(url, max_length=self.max_length,
+                                                schemes=self.schemes))
+                except UrlError:
+                    continue
+                if host not in self._address:
+                    hosts.add(host)
+        if len(self._address) + len(hosts) > HOST_CACHE_SIZE:
+            self._address.clear()
+            self._places.clear()
+        limit = asyncio.Semaphore(RESOLVE_CONCURRENCY)
+
+        async def one(host: str) -> None:
+            async with limit:
+                address = await self.resolver(host)  # type: ignore[misc]
+            if address is not None:
+                self._address[host] = address
+
+        await asyncio.gather(*(one(h) for h in hosts))
+
     async def admit(self, candidates: Iterable[Candidate], now: int | None = None) -> AdmitResult:
+        if self.key_mode == "ip":
+            candidates = list(candidates)
+            await self._resolve_new_hosts(candidates)
         return await self.store.admit_batches(self.prepare(candidates), now)

@@ -8,15 +8,16 @@ on any machine read them from there, so every process agrees on scope and polite
 from __future__ import annotations
 
 import json
+import socket
 from collections.abc import Iterable
 from contextlib import asynccontextmanager
 from dataclasses import dataclass
 from pathlib import Path
 from typing import Any, AsyncIterator
 
-from frontier.admission import Admission, scope_from_settings
+from frontier.admission import Admission, Resolver, scope_from_settings
 from frontier.embedded import EmbeddedRedis
-from frontier.exceptions import ConfigError
+from frontier.exceptions import ConfigError, SluiceError
 from frontier.keys import Keys
 from frontier.model import AdmitResult, Candidate
 from frontier.redis_client import connect, connect_auto
@@ -95,12 +96,32 @@ async def open_job(settings: JobSettings, *, stored: bool = False) -> AsyncItera
         store = FrontierStore(client, settings)
         if server is None:
             await store.tune_server()
-        admission = Admission(store, scope_from_settings(settings, settings.seeds))
+        admission = Admission(store, scope_from_settings(settings, settings.seeds),
+                              resolver=address_resolver(settings))
         yield Job(settings, store, admission, server)
     finally:
         await client.aclose()
         if server is not None:
             server.stop()
+
+
+def address_resolver(settings: JobSettings) -> Resolver | None:
+    """For the 'ip' politeness key: a host's first address, through the address guard."""
+    if settings.politeness.key != "ip":
+        return None
+    from workers.guard import GuardedResolver, parse_host_map
+
+    guard = GuardedResolver(parse_host_map(settings.fetch.map_hosts),
+                            allow_private=settings.fetch.allow_private)
+
+    async def resolve(host: str) -> str | None:
+        try:
+            answers = await guard.resolve(host, 0, socket.AF_UNSPEC)
+        except (SluiceError, OSError):
+            return None  # refused or unknown: the fetch will say why; the host keys itself
+        return str(answers[0]["host"]) if answers else None
+
+    return resolve
 
 
 async def admit_seeds(job: Job, seeds: Iterable[str]) -> AdmitResult:

@@ -52,7 +52,9 @@ class BudgetSettings(_Part):
 class PolitenessSettings(_Part):
     """When a host may be fetched again: now + max(crawl-delay, min delay, factor x response time)."""
 
-    key: Literal["host", "domain"] = "host"
+    key: Literal["host", "domain", "ip"] = Field(
+        default="host", description="what one politeness queue covers: a host, a registrable "
+        "domain, or an IP address (hosts that resolve to one address share a queue)")
     min_delay_s: float = Field(default=1.0, ge=0.0, description="common practice, no source")
     # Najork & Heydon, "High-Performance Web Crawling", SRC Research Report 173 (2001):
     # wait a multiple (10x) of the time the last download from the host took.

@@ -58,8 +58,9 @@ RESERVED_TLDS: frozenset[str] = frozenset({"test", "example", "invalid", "localh
 REGISTERED_DOMAIN_CACHE_SIZE = 65536
 """Hosts whose registrable domain is memoised."""
 
-POLITENESS_MODES: tuple[str, ...] = ("host", "domain")
-"""Ways of grouping URLs for politeness: by host or by registrable domain."""
+POLITENESS_MODES: tuple[str, ...] = ("host", "domain", "ip")
+"""Ways of grouping URLs for politeness: by host, registrable domain, or IP address
+(the address needs a resolver; see ``frontier.admission.Admission``)."""
 
 # --- reason words --------------------------------------------------------------------
 
@@ -440,6 +441,8 @@ def politeness_key(host: str, mode: str) -> str:
         return host
     if mode == "domain":
         return registered_domain(host)
+    if mode == "ip":
+        raise ConfigError("politeness mode 'ip' needs a resolver (frontier.admission.Admission)")
     raise ConfigError(f"politeness mode: {mode!r} is not one of {', '.join(POLITENESS_MODES)}")
 
 

@@ -203,3 +203,20 @@ async def test_host_budget_excludes_beyond(make_store: StoreFactory) -> None:
     assert (res.new, res.excluded) == (3, 2)
     counts = await store.counts()
     assert counts.reasons["excluded:host_budget"] == 2 and counts.balanced
+
+
+async def test_politeness_by_ip_address_shares_one_queue(make_store: StoreFactory) -> None:
+    """Hosts that resolve to one address share one politeness queue ('ip' key)."""
+    from frontier.job import address_resolver
+
+    store = make_store(politeness={"key": "ip", "min_delay_s": 0.0, "response_time_factor": 0.0},
+                       fetch={"map_hosts": ["*.shared.test=127.0.0.1", "own.test=127.0.0.2"]})
+    resolver = address_resolver(store.settings)
+    adm = Admission(store, Scope(allow=[], include=[], exclude=[], max_depth=None), resolver)
+    await adm.admit([Candidate(u) for u in (
+        "http://a.shared.test/1", "http://b.shared.test/1", "http://own.test/1")])
+    first = await store.lease(10)
+    assert sorted(x.host for x in first) == ["127.0.0.1", "127.0.0.2"]  # a and b: one queue
+    await store.complete_many([done(x) for x in first])
+    (second,) = await store.lease(10)
+    assert second.host == "127.0.0.1"
