@@ -93,7 +93,7 @@ def _expected_canonical(target: str) -> str:
 
 
 def _rfc_remove_dot_segments(path: str) -> str:
-    """Literal transcription of RFC 3986 s.5.2.4 with two string buffers (test oracle)."""
+    """RFC 3986 s.5.2.4 copied step by step with two string buffers (test oracle)."""
     buf, out = path, ""
     while buf:
         if buf.startswith("../"):
