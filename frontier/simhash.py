@@ -189,18 +189,25 @@ class NearDuplicateIndex:
         await self._add_many(keys, unsigned)
         return out
 
-    async def _add_many(self, keys: list[list[str]], fps: list[int]) -> None:
+    async def _pipelined(self, what: str, queue: Callable[[Any], None]) -> list[Any]:
+        """One round trip of the commands ``queue`` adds, Redis errors translated."""
         try:
             async with self.redis.pipeline(transaction=False) as pipe:
-                for ks, fp in zip(keys, fps):
-                    member = str(to_signed(fp))
-                    for key in ks:
-                        pipe.sadd(key, member)
-                await pipe.execute()
+                queue(pipe)
+                return list(await pipe.execute())
         except (RedisConnectionError, RedisTimeoutError) as exc:
-            raise StoreUnavailable(f"near-duplicate add failed: {exc}") from exc
+            raise StoreUnavailable(f"near-duplicate {what} failed: {exc}") from exc
         except RedisError as exc:
-            raise StoreError(f"near-duplicate add failed: {exc}") from exc
+            raise StoreError(f"near-duplicate {what} failed: {exc}") from exc
+
+    async def _add_many(self, keys: list[list[str]], fps: list[int]) -> None:
+        def queue(pipe: Any) -> None:
+            for ks, fp in zip(keys, fps):
+                member = str(to_signed(fp))
+                for key in ks:
+                    pipe.sadd(key, member)
+
+        await self._pipelined("add", queue)
 
     def _closest(self, fp: int, buckets: list[set[Any]]) -> int | None:
         candidates = {to_unsigned(int(member)) for member in set().union(*buckets)}
@@ -208,23 +215,7 @@ class NearDuplicateIndex:
         return best[1] if best is not None and best[0] <= self.k else None
 
     async def _unions(self, keys: list[list[str]]) -> list[set[Any]]:
-        try:
-            async with self.redis.pipeline(transaction=False) as pipe:
-                for ks in keys:
-                    pipe.sunion(ks)
-                return list(await pipe.execute())
-        except (RedisConnectionError, RedisTimeoutError) as exc:
-            raise StoreUnavailable(f"near-duplicate lookup failed: {exc}") from exc
-        except RedisError as exc:
-            raise StoreError(f"near-duplicate lookup failed: {exc}") from exc
+        return await self._pipelined("lookup", lambda pipe: [pipe.sunion(ks) for ks in keys])
 
     async def _buckets(self, keys: list[str]) -> list[set[Any]]:
-        try:
-            async with self.redis.pipeline(transaction=False) as pipe:
-                for key in keys:
-                    pipe.smembers(key)
-                return list(await pipe.execute())
-        except (RedisConnectionError, RedisTimeoutError) as exc:
-            raise StoreUnavailable(f"near-duplicate lookup failed: {exc}") from exc
-        except RedisError as exc:
-            raise StoreError(f"near-duplicate lookup failed: {exc}") from exc
+        return await self._pipelined("lookup", lambda pipe: [pipe.smembers(k) for k in keys])
