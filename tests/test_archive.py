@@ -5,12 +5,14 @@ from __future__ import annotations
 import base64
 import gzip
 import hashlib
+import io
 import json
 import random
 import re
 import subprocess
 import sys
 import time
+import uuid
 import zlib
 from dataclasses import dataclass, field
 from datetime import UTC, datetime, timedelta, timezone
@@ -18,6 +20,8 @@ from pathlib import Path
 
 import pytest
 from warcio.archiveiterator import ArchiveIterator
+from warcio.statusandheaders import StatusAndHeaders
+from warcio.warcwriter import WARCWriter
 
 from workers.archive import FetchEntry, FetchLog, RecordRef, WarcArchive
 
@@ -304,6 +308,44 @@ def test_record_ref_addresses_one_gzip_member(written: Written) -> None:
             stream.seek(ref.offset)
             first = next(iter(ArchiveIterator(stream)))
             assert first.rec_headers.get_header("WARC-Record-ID") == ref.record_id
+
+
+def test_response_record_matches_warcio_builder_field_by_field(tmp_path: Path) -> None:
+    # Reference implementation: warcio's own record builder (create_warc_record
+    # + WARC-Payload/Block-Digest) given the same URI, date, IP, HTTP head and
+    # body must yield the same named fields and block; record IDs are random
+    # version 4 UUIDs (RFC 9562 s.5.4).
+    archive = new_archive(tmp_path)
+    body = "<p>caf\u00e9</p>".encode()
+    ref = archive.write_exchange(
+        "http://ref.test/a b", ("GET", "/a%20b", [("Host", "ref.test")]), 200, "OK",
+        [("Content-Type", "text/html; charset=utf-8"), ("X-Note", "sn\u2603w")], body,
+        FETCHED, "127.0.0.2", None, truncated="length")
+    archive.close()
+    with open(archive.files[0], "rb") as stream:
+        ours = [rec for rec in ArchiveIterator(stream) if rec.rec_type == "response"][0]
+        our_fields = dict(ours.rec_headers.headers)
+    raw_response = read_raw(archive.files[0])[2]
+    buffer = io.BytesIO()
+    reference = WARCWriter(buffer, gzip=False, warc_version="1.1")
+    http_headers = StatusAndHeaders(
+        "200 OK", [("Content-Type", "text/html; charset=utf-8"), ("X-Note", "sn\u2603w"),
+                   ("Content-Length", str(len(body)))], protocol="HTTP/1.1")
+    record = reference.create_warc_record(
+        "http://ref.test/a%20b", "response", payload=io.BytesIO(body), length=len(body),
+        http_headers=http_headers, warc_headers_dict={
+            "WARC-Date": "2031-05-06T07:08:09.250000Z", "WARC-IP-Address": "127.0.0.2",
+            "WARC-Record-ID": ref.record_id,
+            "WARC-Concurrent-To": our_fields["WARC-Concurrent-To"], "WARC-Truncated": "length"})
+    reference.write_record(record)
+    buffer.seek(0)
+    theirs = next(iter(ArchiveIterator(buffer)))
+    assert our_fields == dict(theirs.rec_headers.headers)
+    expected_block = buffer.getvalue().split(b"\r\n\r\n", 1)[1][:-4]
+    assert raw_response.block == expected_block
+    for record_id in (ref.record_id, our_fields["WARC-Concurrent-To"]):
+        parsed = uuid.UUID(record_id.removeprefix("<urn:uuid:").removesuffix(">"))
+        assert parsed.version == 4 and parsed.variant == uuid.RFC_4122
 
 
 def test_no_metadata_record_without_outlinks(tmp_path: Path) -> None:

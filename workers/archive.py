@@ -17,18 +17,26 @@ reader gets back. ISO 28500 s.6 ('response') asks for the response "received
 over the network"; this rewrite is the documented deviation that keeps the record
 self-consistent.
 
+Request, response and metadata records are built here as bytes (header block,
+block, CRLF CRLF) and compressed one gzip member each with zlib; warcio's
+record builder re-reads and re-serialises every record, which dominated a
+worker's CPU. HTTP heads are serialised as warcio's ``StatusAndHeaders`` does
+(its own code handles the rare non-ASCII head and raw request bytes), and the
+warcinfo record, once per file, is still written through warcio.
+
 ``FetchLog`` appends one JSON object per final fetch outcome to
 ``out_dir/fetches.jsonl``; reopening appends (resume).
 """
 
 from __future__ import annotations
 
+import hashlib
 import io
 import json
 import math
+import re
 import os
 import socket
-import uuid
 import zlib
 from collections.abc import Callable, Iterable, Sequence
 from dataclasses import dataclass
@@ -36,6 +44,7 @@ from datetime import UTC, datetime
 from pathlib import Path
 from typing import IO, Any
 
+from warcio.recordloader import ArcWarcRecordLoader
 from warcio.statusandheaders import StatusAndHeaders
 from warcio.warcwriter import GzippingWrapper, WARCWriter
 
@@ -53,14 +62,32 @@ WARC_FORMAT = "WARC File Format 1.1"
 WARC_CONFORMS_TO = "https://iipc.github.io/warc-specifications/specifications/warc-format/warc-1.1/"
 ORIGINAL_HEADER_PREFIX = "Sluice-Original-"
 METADATA_CONTENT_TYPE = "application/warc-fields"
+REQUEST_CONTENT_TYPE = "application/http; msgtype=request"
+RESPONSE_CONTENT_TYPE = "application/http; msgtype=response"
+DIGEST_ALGORITHM = "sha1"
 OUTLINK_FIELD = "outlink"
 
+DEFLATE_MIN_WBITS = 9  # smallest window zlib accepts for a gzip stream
+DEFLATE_LOOKAHEAD = 262  # zlib's MIN_LOOKAHEAD: matches reach back window - 262 bytes
+DEFLATE_HASH_OFFSET = 7  # zlib: hash table bits = memLevel + 7 (defaults 15 and 8 agree)
+_CRLF = "\r\n"
+_RECORD_END = b"\r\n\r\n"
+"""ISO 28500 s.4: warc-record = header CRLF block CRLF CRLF."""
 _DROPPED_ALWAYS = ("transfer-encoding", "content-length")
 _DROPPED_WHEN_DECODED = ("content-encoding",)
 _LINE_BREAKS = str.maketrans({"\r": " ", "\n": " "})
 _URI_UNSAFE = {c: f"%{c:02X}" for c in (*range(0x21), 0x7F)}
 """Whitespace and controls percent-encoded in WARC URIs (ISO 28500 s.5,
 WARC-Target-URI: "written with no internal whitespace")."""
+_URI_UNSAFE_SEARCH = re.compile(r"[\x00-\x20\x7f]").search
+UUID_BYTES = 16
+_UUID_KEEP = ~((0xF000 << 64) | (0xC000 << 48))  # version and variant bits cleared
+_UUID_SET = (4 << 76) | (0x8000 << 48)  # version 4, RFC variant
+_BASE32_ALPHABET = "ABCDEFGHIJKLMNOPQRSTUVWXYZ234567"  # RFC 4648 s.6
+_BASE32_PAIRS = [a + b for a in _BASE32_ALPHABET for b in _BASE32_ALPHABET]
+"""Two Base32 digits per 10 bits; a 160-bit SHA-1 digest is 16 pairs, no padding."""
+_BASE32_PAIR_BITS = 10
+_BASE32_PAIR_MASK = (1 << _BASE32_PAIR_BITS) - 1
 
 Clock = Callable[[], datetime]
 HeaderList = Sequence[tuple[str, str]]
@@ -68,13 +95,7 @@ RequestHead = bytes | tuple[str, str, HeaderList]
 
 
 class _Writer(WARCWriter):  # type: ignore[misc]
-    """warcio's writer, minus the payload digest on metadata records.
-
-    ISO 28500 s.4: warcinfo, metadata and revisit records have no payload, and
-    s.5.9: WARC-Payload-Digest shall not be used on records without one.
-    """
-
-    NO_PAYLOAD_DIGEST_TYPES = ("warcinfo", "metadata", "revisit")
+    """warcio's writer (used for warcinfo records) at GZIP_LEVEL."""
 
     def _write_warc_record(self, out: Any, record: Any) -> Any:
         """One gzip member per record (ISO 28500 annex D), at GZIP_LEVEL, not warcio's 9."""
@@ -109,12 +130,15 @@ def warc_date(moment: datetime) -> str:
 
 
 def _uri(url: str) -> str:
-    return url.translate(_URI_UNSAFE)
+    return url.translate(_URI_UNSAFE) if _URI_UNSAFE_SEARCH(url) else url
 
 
 def _clean(text: str) -> str:
     """A header-safe string: no line breaks, no lone surrogates."""
-    text = text.translate(_LINE_BREAKS)
+    if "\r" in text or "\n" in text:
+        text = text.translate(_LINE_BREAKS)
+    if text.isascii():
+        return text
     try:
         text.encode("utf-8")
     except UnicodeEncodeError:
@@ -122,8 +146,105 @@ def _clean(text: str) -> str:
     return text
 
 
-def _record_id() -> str:
-    return f"<urn:uuid:{uuid.uuid4()}>"
+def _record_ids(count: int) -> list[str]:
+    """``count`` record IDs: random (version 4) UUID URNs from one urandom call.
+
+    Same bits as ``uuid.uuid4()`` (RFC 9562 s.5.4: version 4, variant 10x).
+    """
+    raw = os.urandom(UUID_BYTES * count)
+    ids = []
+    for start in range(0, len(raw), UUID_BYTES):
+        number = int.from_bytes(raw[start:start + UUID_BYTES], "big") & _UUID_KEEP | _UUID_SET
+        digits = f"{number:032x}"
+        ids.append(f"<urn:uuid:{digits[:8]}-{digits[8:12]}-{digits[12:16]}-"
+                   f"{digits[16:20]}-{digits[20:]}>")
+    return ids
+
+
+def _digest(*parts: bytes) -> str:
+    """Labelled SHA-1 in Base32 of the concatenated parts (ISO 28500 s.5.8/5.9)."""
+    hasher = hashlib.sha1()
+    for part in parts:
+        hasher.update(part)
+    number = int.from_bytes(hasher.digest(), "big")
+    pairs = [_BASE32_PAIRS[(number >> shift) & _BASE32_PAIR_MASK] for shift in _DIGEST_SHIFTS]
+    return f"{DIGEST_ALGORITHM}:{''.join(pairs)}"
+
+
+_DIGEST_SHIFTS = tuple(
+    range(hashlib.sha1().digest_size * 8 - _BASE32_PAIR_BITS, -1, -_BASE32_PAIR_BITS)
+)
+_EMPTY_DIGEST = _digest()
+
+
+
+def _http_head(protocol: str, statusline: str, headers: HeaderList) -> bytes:
+    """An HTTP head as warcio's ``StatusAndHeaders.to_ascii_bytes`` writes it.
+
+    ASCII heads are joined here; anything else goes through warcio, which
+    percent-encodes non-ASCII values (RFC 8187) or refuses the head.
+    """
+    first = f"{protocol} {statusline}" if protocol and statusline else protocol or statusline
+    lines = [f"{first}{_CRLF}"] if first else []
+    lines += [f"{name}: {value}{_CRLF}" for name, value in headers]
+    lines.append(_CRLF)
+    try:
+        return "".join(lines).encode("ascii")
+    except UnicodeEncodeError:
+        fallback = StatusAndHeaders(statusline, list(headers), protocol=protocol)
+        return bytes(fallback.to_ascii_bytes())
+
+
+def _raw_request_block(target: str, head: bytes) -> tuple[bytes, bytes]:
+    """(block, payload) for a raw request head, parsed and re-serialised by warcio."""
+    raw = head if head.endswith(_RECORD_END) else head.rstrip(b"\r\n") + _RECORD_END
+    stream = io.BytesIO(raw)
+    parsed = ArcWarcRecordLoader().load_http_headers("request", target, stream, len(raw))
+    if not parsed:
+        return raw, raw
+    payload = stream.read()
+    return bytes(parsed.to_ascii_bytes()) + payload, payload
+
+
+def _deflate_params(size: int) -> tuple[int, int]:
+    """Deflate window bits and memLevel for a ``size``-byte record.
+
+    A window larger than the input finds no further matches, so small records
+    get a window that just holds them and a hash table of the same size (zlib's
+    default proportion); the output is then the same as with the default 32 KiB
+    window, but zlib allocates a few KiB instead of ~256 KiB per gzip member,
+    which was most of the cost of compressing a small record. Records over
+    32 KiB use zlib's defaults (15, 8).
+    """
+    wbits = max(DEFLATE_MIN_WBITS, min(zlib.MAX_WBITS, (size + DEFLATE_LOOKAHEAD).bit_length()))
+    return wbits, wbits - DEFLATE_HASH_OFFSET
+
+
+def _gzip_record(
+    warc_type: str, record_id: str, date: str, target: str, fields: str, content_type: str,
+    block: Sequence[bytes], payload_digest: str | None = None, truncated: str | None = None,
+) -> bytes:
+    """One WARC record (ISO 28500 s.4) as one gzip member (annex D).
+
+    ``fields`` holds the type-specific named fields, each ending in CRLF.
+    """
+    head = [
+        f"WARC/{WARC_VERSION}{_CRLF}WARC-Type: {warc_type}{_CRLF}",
+        f"WARC-Record-ID: {record_id}{_CRLF}WARC-Date: {date}{_CRLF}",
+        f"WARC-Target-URI: {target}{_CRLF}" if target else "",
+        f"{fields}Content-Type: {content_type}{_CRLF}",
+        f"WARC-Block-Digest: {_digest(*block)}{_CRLF}",
+    ]
+    if payload_digest is not None:
+        head.append(f"WARC-Payload-Digest: {payload_digest}{_CRLF}")
+    if truncated:
+        head.append(f"WARC-Truncated: {truncated}{_CRLF}")
+    block_length = sum(map(len, block))
+    head.append(f"Content-Length: {block_length}{_CRLF}{_CRLF}")
+    header = "".join(head).encode("utf-8")
+    wbits, mem_level = _deflate_params(len(header) + block_length + len(_RECORD_END))
+    compressor = zlib.compressobj(GZIP_LEVEL, zlib.DEFLATED, wbits + 16, mem_level)
+    return compressor.compress(b"".join([header, *block, _RECORD_END])) + compressor.flush()
 
 
 def rewrite_response_headers(
@@ -183,7 +304,6 @@ class WarcArchive:
         self.files: list[Path] = []
         self._serial = 0
         self._file: IO[bytes] | None = None
-        self._writer: WARCWriter | None = None
 
     @property
     def current_path(self) -> Path | None:
@@ -214,40 +334,34 @@ class WarcArchive:
         Returns the location of the response record. Rotates afterwards when
         the file has grown past ``max_file_bytes``.
         """
-        writer, out = self._open()
+        out = self._open()
         target = _uri(url)
         date = warc_date(fetched_at)
-        request_id, response_id = _record_id(), _record_id()
-        common = {"WARC-Date": date}
-        if remote_ip:
-            common["WARC-IP-Address"] = remote_ip
+        request_id, response_id, metadata_id = _record_ids(3)
+        ip_field = f"WARC-IP-Address: {remote_ip}{_CRLF}" if remote_ip else ""
 
-        request = self._request_record(
-            writer, target, request_line_and_headers,
-            {**common, "WARC-Record-ID": request_id, "WARC-Concurrent-To": response_id},
-        )
-        writer.write_record(request)
+        request_block, request_payload = self._request_block(target, request_line_and_headers)
+        out.write(_gzip_record(
+            "request", request_id, date, target,
+            f"{ip_field}WARC-Concurrent-To: {response_id}{_CRLF}", REQUEST_CONTENT_TYPE,
+            request_block, _digest(request_payload) if request_payload else _EMPTY_DIGEST,
+        ))
 
-        response_warc_headers = {
-            **common, "WARC-Record-ID": response_id, "WARC-Concurrent-To": request_id
-        }
-        if truncated:
-            response_warc_headers["WARC-Truncated"] = truncated
-        http_headers = StatusAndHeaders(
-            _clean(f"{response_status} {response_reason}"),
+        http_head = _http_head(
+            HTTP_VERSION, _clean(f"{response_status} {response_reason}"),
             rewrite_response_headers(response_headers, len(body), body_decoded=body_decoded),
-            protocol=HTTP_VERSION,
         )
-        response = writer.create_warc_record(
-            target, "response", payload=io.BytesIO(body), length=len(body),
-            http_headers=http_headers, warc_headers_dict=response_warc_headers,
+        response = _gzip_record(
+            "response", response_id, date, target,
+            f"{ip_field}WARC-Concurrent-To: {request_id}{_CRLF}", RESPONSE_CONTENT_TYPE,
+            (http_head, body), _digest(body), truncated,
         )
         offset = out.tell()
-        writer.write_record(response)
-        ref = RecordRef(self.files[-1].name, offset, out.tell() - offset, response_id)
+        out.write(response)
+        ref = RecordRef(self.files[-1].name, offset, len(response), response_id)
 
         if outlinks:
-            writer.write_record(self._metadata_record(writer, target, date, response_id, outlinks))
+            out.write(self._metadata_record(target, date, metadata_id, response_id, outlinks))
 
         if out.tell() >= self.max_file_bytes:
             self.close()
@@ -260,7 +374,6 @@ class WarcArchive:
             os.fsync(self._file.fileno())
             self._file.close()
         self._file = None
-        self._writer = None
 
     def __enter__(self) -> WarcArchive:
         return self
@@ -270,9 +383,9 @@ class WarcArchive:
 
     # -- internals -------------------------------------------------------------------
 
-    def _open(self) -> tuple[WARCWriter, IO[bytes]]:
-        if self._file is not None and self._writer is not None:
-            return self._writer, self._file
+    def _open(self) -> IO[bytes]:
+        if self._file is not None:
+            return self._file
         self.directory.mkdir(parents=True, exist_ok=True)
         now = self.clock()
         stamp = now.astimezone(UTC).strftime(FILE_TIMESTAMP_FORMAT)
@@ -297,47 +410,34 @@ class WarcArchive:
         warcinfo = writer.create_warcinfo_record(name, info)
         warcinfo.rec_headers.replace_header("WARC-Date", warc_date(now))
         writer.write_record(warcinfo)
-        self._file, self._writer = out, writer
+        self._file = out
         self.files.append(self.directory / name)
-        return writer, out
+        return out
 
     @staticmethod
-    def _request_record(
-        writer: WARCWriter, target: str, head: RequestHead, warc_headers: dict[str, str]
-    ) -> Any:
+    def _request_block(target: str, head: RequestHead) -> tuple[tuple[bytes, ...], bytes]:
+        """(block parts, HTTP payload) of the request record."""
         if isinstance(head, bytes):
-            raw = head if head.endswith(b"\r\n\r\n") else head.rstrip(b"\r\n") + b"\r\n\r\n"
-            return writer.create_warc_record(
-                target, "request", payload=io.BytesIO(raw), length=len(raw),
-                warc_headers_dict=warc_headers,
-            )
+            block, payload = _raw_request_block(target, head)
+            return (block,), payload
         method, path, headers = head
-        http_headers = StatusAndHeaders(
-            _clean(f"{method} {path} {HTTP_VERSION}"),
-            [(_clean(n), _clean(v)) for n, v in headers],
-            is_http_request=True,
-        )
-        return writer.create_warc_record(
-            target, "request", payload=io.BytesIO(b""), length=0,
-            http_headers=http_headers, warc_headers_dict=warc_headers,
-        )
+        protocol, _, statusline = _clean(f"{method} {path} {HTTP_VERSION}").partition(" ")
+        return (_http_head(protocol, statusline, [(_clean(n), _clean(v)) for n, v in headers]),), b""
 
     @staticmethod
     def _metadata_record(
-        writer: WARCWriter, target: str, date: str, response_id: str,
+        target: str, date: str, record_id: str, response_id: str,
         outlinks: Sequence[tuple[str, str]],
-    ) -> Any:
+    ) -> bytes:
+        """Outlinks as application/warc-fields; no payload, so no payload digest (s.5.9)."""
         lines = [
-            f"{OUTLINK_FIELD}: {_uri(link)} {_clean(anchor)}".rstrip() + "\r\n"
+            f"{OUTLINK_FIELD}: {_uri(link)} {_clean(anchor)}".rstrip() + _CRLF
             for link, anchor in outlinks
         ]
         block = "".join(lines).encode("utf-8")
-        return writer.create_warc_record(
-            target, "metadata", payload=io.BytesIO(block), length=len(block),
-            warc_content_type=METADATA_CONTENT_TYPE,
-            warc_headers_dict={
-                "WARC-Date": date, "WARC-Record-ID": _record_id(), "WARC-Refers-To": response_id,
-            },
+        return _gzip_record(
+            "metadata", record_id, date, target, f"WARC-Refers-To: {response_id}{_CRLF}",
+            METADATA_CONTENT_TYPE, (block,),
         )
 
 
