@@ -22,6 +22,7 @@ from collections.abc import Callable
 from typing import Any
 
 import mmh3
+from redis.asyncio import Redis
 from redis.asyncio.cluster import RedisCluster
 from redis.exceptions import ConnectionError as RedisConnectionError
 from redis.exceptions import RedisError
@@ -121,6 +122,27 @@ def split_blocks(fp: int, widths: list[int]) -> list[int]:
     return values
 
 
+LOOKUP_AND_ADD = """
+-- near-duplicate lookup and store for a batch of fingerprints, on one server
+-- KEYS: the k + 1 bucket keys of each fingerprint, fingerprint after fingerprint
+-- ARGV[1] k + 1 (keys per fingerprint)  ARGV[2 ..] the fingerprints (signed decimal)
+-- Returns per fingerprint the union of its buckets as they were before this batch.
+local w = tonumber(ARGV[1])
+local out = {}
+for i = 2, #ARGV do
+  local base = (i - 2) * w
+  out[#out + 1] = redis.call('SUNION', unpack(KEYS, base + 1, base + w))
+end
+for i = 2, #ARGV do
+  local base = (i - 2) * w
+  for j = 1, w do
+    redis.call('SADD', KEYS[base + j], ARGV[i])
+  end
+end
+return out
+"""
+
+
 class NearDuplicateIndex:
     """Redis-backed index answering "is a stored fingerprint within k bits?".
 
@@ -137,6 +159,7 @@ class NearDuplicateIndex:
         self.table_key = table_key
         self.k = k
         self.widths = block_widths(k + 1)
+        self._script: Any = None
 
     def keys(self, fp: int) -> list[str]:
         """The bucket keys ``fp`` belongs to, one per block."""
@@ -156,14 +179,14 @@ class NearDuplicateIndex:
     async def check_and_add(self, fp: int) -> int | None:
         """Return the closest stored fingerprint within k bits, then store ``fp``.
 
-        Two round trips: one pipeline of SMEMBERS, one of SADD. ``fp`` is stored
-        even when a near-duplicate is found, so chains of small edits stay
-        detectable.
+        One script call on a single server; on a Cluster two round trips (a pipeline
+        of SMEMBERS, one of SADD). ``fp`` is stored even when a near-duplicate is
+        found, so chains of small edits stay detectable.
         """
         return (await self.check_and_add_many([fp]))[0]
 
     async def check_and_add_many(self, fps: list[int]) -> list[int | None]:
-        """:meth:`check_and_add` for a batch in two round trips.
+        """:meth:`check_and_add` for a batch, in the same number of round trips.
 
         A fingerprint is also compared with the ones before it in the batch, so two
         near-duplicates fetched together are still caught.
@@ -172,11 +195,16 @@ class NearDuplicateIndex:
             return []
         unsigned = [to_unsigned(fp) for fp in fps]
         keys = [self.keys(fp) for fp in unsigned]
+        stored_already = False
         if isinstance(self.redis, RedisCluster):  # one fingerprint's buckets span slots
             flat = await self._buckets([k for ks in keys for k in ks])
             width = len(self.widths)
             candidates = [flat[i * width:(i + 1) * width] for i in range(len(unsigned))]
-        else:  # one SUNION per fingerprint instead of k + 1 SMEMBERS
+        elif isinstance(self.redis, Redis):  # one script call: look up, then store
+            found = await self._lookup_and_add(keys, unsigned)
+            candidates = [[set(f)] for f in found]
+            stored_already = True
+        else:  # a wrapped client: one SUNION per fingerprint, then the SADDs
             candidates = [[found] for found in await self._unions(keys)]
         out: list[int | None] = []
         for i, fp in enumerate(unsigned):
@@ -186,8 +214,23 @@ class NearDuplicateIndex:
                     stored is None or earlier[0] < hamming(fp, stored)):
                 stored = earlier[1]
             out.append(stored)
-        await self._add_many(keys, unsigned)
+        if not stored_already:
+            await self._add_many(keys, unsigned)
         return out
+
+    async def _lookup_and_add(self, keys: list[list[str]], fps: list[int]) -> list[list[Any]]:
+        """Unions of each fingerprint's buckets (before the batch), then the adds: one call."""
+        if self._script is None:
+            self._script = self.redis.register_script(LOOKUP_AND_ADD)
+        try:
+            result: list[list[Any]] = await self._script(
+                [k for ks in keys for k in ks],
+                [len(self.widths), *(str(to_signed(fp)) for fp in fps)])
+        except (RedisConnectionError, RedisTimeoutError) as exc:
+            raise StoreUnavailable(f"near-duplicate lookup failed: {exc}") from exc
+        except RedisError as exc:
+            raise StoreError(f"near-duplicate lookup failed: {exc}") from exc
+        return result
 
     async def _pipelined(self, what: str, queue: Callable[[Any], None]) -> list[Any]:
         """One round trip of the commands ``queue`` adds, Redis errors translated."""
