@@ -429,11 +429,14 @@ class SyntheticServer:
         await resp.prepare(request)
         if request.method == hdrs.METH_HEAD:
             return resp
-        for _ in range(int(self.drip_duration / self.drip_interval)):
-            await resp.write(b".")
-            o.bytes += 1
-            await asyncio.sleep(self.drip_interval)
-        await resp.write_eof()
+        try:
+            for _ in range(int(self.drip_duration / self.drip_interval)):
+                await resp.write(b".")
+                o.bytes += 1
+                await asyncio.sleep(self.drip_interval)
+            await resp.write_eof()
+        except ConnectionResetError:  # the client gave up on the drip, as it should
+            pass
         return resp
 
 
