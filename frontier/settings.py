@@ -73,6 +73,11 @@ class LeaseSettings(_Part):
     ttl_s: float = Field(default=120.0, gt=0)
     max_attempts: int = Field(default=3, ge=1)
     batch: int = Field(default=32, ge=1, le=1000)
+    rank_spread: float = Field(
+        default=2.0, ge=1.0, le=8.0,
+        description="each partition is asked for this many times its fair share of a lease "
+        "and the best hosts over all partitions are kept: 1.0 is cheapest (best-first within "
+        "a partition only), 2.0 keeps importance order across partitions")
 
 
 class StoreSettings(_Part):

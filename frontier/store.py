@@ -30,7 +30,6 @@ HOST_ACTIONS = ("boost", "pause", "resume", "block", "unblock", "delay")
 PROMOTE_LIMIT = 1000  # due hosts moved to ready per lease_pick call
 REAP_BATCH = 500  # expired leases handled per reap call and partition
 CLAIM_TTL_MS = 10_000  # a picked host returns to due if not leased within this time
-PICK_SPREAD = 2.0  # each partition is asked for twice its fair share; the best are kept
 LEASE_ROUNDS = 2
 COLD_SCAN_CHUNK = 1000  # cold-list entries read per call when looking for one URL
 COLD_SCAN_LIMIT = 200_000  # entries of one cold list searched before giving up
@@ -200,9 +199,10 @@ class FrontierStore:
     async def lease(self, n: int, now: int | None = None) -> list[Lease]:
         """Lease up to ``n`` URLs, at most one per politeness key, best hosts first.
 
-        Every partition is asked at once for a share of ``n`` (twice its fair part, so a
-        partition with many ready hosts can fill in for empty ones); the best ``n`` hosts
-        over all partitions are leased and the other claims handed back. A second round
+        Every partition is asked at once for a share of ``n`` (``lease.rank_spread`` times
+        its fair part, so a partition with many ready hosts can fill in for empty ones and
+        the best hosts of the whole job win); the best ``n`` hosts over all partitions are
+        leased and the other claims handed back. A second round
         asks the partitions that gave all they were asked for, if ``n`` is not reached.
         """
         t = self._now(now)
@@ -213,7 +213,8 @@ class FrontierStore:
                 want = n - len(leases)
                 if want <= 0 or not parts:
                     break
-                ask = min(want, max(1, math.ceil(PICK_SPREAD * want / len(parts))))
+                spread = self.settings.lease.rank_spread
+                ask = min(want, max(1, math.ceil(spread * want / len(parts))))
                 picked = [self._picked(r) for r in await run_many(
                     self.redis, [self._pick_call(p, ask, t) for p in parts])]
                 ranked = sorted(((score, p, host) for p, hosts in zip(parts, picked)
