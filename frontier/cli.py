@@ -21,6 +21,22 @@ from frontier.settings import JobSettings, load_settings
 log = logging.getLogger("sluice")
 
 
+def dump_tasks() -> None:
+    """SIGUSR1: print what every asyncio task is waiting on (for a crawl that seems stuck)."""
+    for task in asyncio.all_tasks():
+        task.print_stack(limit=12, file=sys.stderr)
+    sys.stderr.flush()
+
+
+def watch_signals(on_stop: Any) -> None:
+    """SIGINT/SIGTERM stop cleanly; SIGUSR1 dumps the tasks."""
+    loop = asyncio.get_running_loop()
+    with contextlib.suppress(NotImplementedError):
+        loop.add_signal_handler(signal.SIGINT, on_stop)
+        loop.add_signal_handler(signal.SIGTERM, on_stop)
+        loop.add_signal_handler(signal.SIGUSR1, dump_tasks)
+
+
 # -- flags shared by crawl and daemon --------------------------------------------------------
 
 def _job_flags(p: argparse.ArgumentParser) -> None:
@@ -98,8 +114,6 @@ async def _crawl(settings: JobSettings, out: Path, workers: int, *, quiet: bool 
         metrics = WorkerMetrics(registry)  # one set of counters for all workers here
         crew = [Worker(job.store, job.admission, out, metrics=metrics, drain=True)
                 for _ in range(workers)]
-        loop = asyncio.get_running_loop()
-
         interrupted = False
 
         def interrupt() -> None:
@@ -109,9 +123,7 @@ async def _crawl(settings: JobSettings, out: Path, workers: int, *, quiet: bool 
             for w in crew:
                 w.stop()
 
-        with contextlib.suppress(NotImplementedError):
-            loop.add_signal_handler(signal.SIGINT, interrupt)
-            loop.add_signal_handler(signal.SIGTERM, interrupt)
+        watch_signals(interrupt)
         runner = await serve(daemon.app(), admin) if admin else None
         background = asyncio.create_task(daemon.run(stop))
         started = time.monotonic()
@@ -152,9 +164,7 @@ def cmd_daemon(a: argparse.Namespace) -> int:
                 log.info("seeds: %s", res)
             daemon = Daemon(job, CollectorRegistry())
             stop = asyncio.Event()
-            loop = asyncio.get_running_loop()
-            loop.add_signal_handler(signal.SIGINT, stop.set)
-            loop.add_signal_handler(signal.SIGTERM, stop.set)
+            watch_signals(stop.set)
             runner = await serve(daemon.app(), a.admin) if a.admin else None
             print(f"sluice daemon: job {settings.name} on {settings.redis.url or 'embedded Redis'}"
                   + (f", admin http://{a.admin}/" if a.admin else ""), flush=True)
@@ -184,9 +194,7 @@ def cmd_worker(a: argparse.Namespace) -> int:
             registry = CollectorRegistry()
             worker = Worker(job.store, job.admission, Path(a.out),
                             metrics=WorkerMetrics(registry), drain=a.drain)
-            loop = asyncio.get_running_loop()
-            loop.add_signal_handler(signal.SIGINT, worker.stop)
-            loop.add_signal_handler(signal.SIGTERM, worker.stop)
+            watch_signals(worker.stop)
             runner = await serve(metrics_app(registry), a.metrics) if a.metrics else None
             try:
                 await worker.run()
