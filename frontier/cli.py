@@ -330,11 +330,12 @@ def parser() -> argparse.ArgumentParser:
     e.set_defaults(func=cmd_explain)
 
     m = sub.add_parser("demo", help="crawl the synthetic .test web on the embedded Redis")
-    m.add_argument("--out", default="demo-out")
-    m.add_argument("--hosts", type=int, default=60)
-    m.add_argument("--pages", type=int, default=3000)
-    m.add_argument("--max-pages", type=int, default=2000)
-    m.add_argument("--quiet", action="store_true")
+    m.add_argument("--out", default="demo-out",
+                   help="output folder; running again resumes (delete it to start afresh)")
+    m.add_argument("--hosts", type=int, default=60, help="ordinary .test sites to invent")
+    m.add_argument("--pages", type=int, default=3000, help="pages over those sites")
+    m.add_argument("--max-pages", type=int, default=2000, help="the crawl's page budget")
+    m.add_argument("--quiet", action="store_true", help="no live progress")
     m.set_defaults(func=cmd_demo)
 
     b = sub.add_parser("bench", help="benchmarks that print JSON")
