@@ -1,6 +1,9 @@
 """The scheduler daemon: reaper, stats, and the admin HTTP API (status, metrics, host controls).
 
-Its loops are owned by one lifecycle: started together, cancelled and awaited together.
+Its loops are owned by one lifecycle: started together, stopped together and awaited.
+A loop ends when its stop event is set, not on cancellation alone: redis-py (8.1 here)
+can absorb a cancellation that lands inside a command, and a loop that relied on it
+then ran on forever after the crawl was over.
 """
 
 from __future__ import annotations
@@ -21,6 +24,15 @@ from frontier.metrics import FrontierMetrics
 from frontier.store import HOST_ACTIONS
 
 log = logging.getLogger(__name__)
+
+
+async def wait_or_timeout(event: asyncio.Event, seconds: float) -> bool:
+    """Wait until ``event`` is set or ``seconds`` pass; True if it was set."""
+    try:
+        await asyncio.wait_for(event.wait(), seconds)
+    except TimeoutError:
+        return False
+    return True
 
 REAP_EVERY_S = 1.0
 STATS_EVERY_S = 2.0
@@ -66,21 +78,24 @@ class Daemon:
             await self.budget.reconcile(expected)
         self._budget_seen = (used, expected)
 
-    async def _every(self, seconds: float, step: Any) -> None:
-        while True:
+    @staticmethod
+    async def _every(seconds: float, step: Any, stop: asyncio.Event) -> None:
+        """Run ``step`` every ``seconds`` until ``stop`` is set."""
+        while not stop.is_set():
             try:
                 await step()
             except StoreUnavailable as exc:
                 log.warning("frontier unavailable: %s", exc)
-            await asyncio.sleep(seconds)
+            await wait_or_timeout(stop, seconds)
 
     async def run(self, stop: asyncio.Event) -> None:
-        """Run the loops until ``stop`` is set; every task is cancelled and awaited."""
-        tasks = [asyncio.create_task(self._every(REAP_EVERY_S, self.reap_once)),
-                 asyncio.create_task(self._every(STATS_EVERY_S, self.stats_once))]
+        """Run the loops until ``stop`` is set; then every loop is stopped and awaited."""
+        tasks = [asyncio.create_task(self._every(REAP_EVERY_S, self.reap_once, stop)),
+                 asyncio.create_task(self._every(STATS_EVERY_S, self.stats_once, stop))]
         try:
             await stop.wait()
         finally:
+            stop.set()  # the loops end on it even if a cancellation below is absorbed
             for t in tasks:
                 t.cancel()
             await asyncio.gather(*tasks, return_exceptions=True)

@@ -11,6 +11,8 @@ from rich.console import Console
 from rich.live import Live
 from rich.table import Table
 
+from frontier.daemon import wait_or_timeout
+
 REFRESH_S = 0.5
 
 
@@ -22,6 +24,7 @@ class Progress:
         self.quiet = quiet
         self.console = Console(stderr=True)
         self._task: asyncio.Task[None] | None = None
+        self._closing = asyncio.Event()  # ends the loop even if a cancellation is absorbed
         self._started = time.monotonic()
 
     def _table(self, data: dict[str, Any]) -> Table:
@@ -33,10 +36,10 @@ class Progress:
         return t
 
     async def _loop(self, live: Live) -> None:
-        while True:
+        while not self._closing.is_set():
             with contextlib.suppress(Exception):
                 live.update(self._table(await self.daemon.stats_once()))
-            await asyncio.sleep(REFRESH_S)
+            await wait_or_timeout(self._closing, REFRESH_S)
 
     async def __aenter__(self) -> Progress:
         if not self.quiet and self.console.is_terminal:
@@ -47,6 +50,7 @@ class Progress:
 
     async def __aexit__(self, *exc: object) -> None:
         if self._task is not None:
+            self._closing.set()
             self._task.cancel()
             with contextlib.suppress(asyncio.CancelledError):
                 await self._task
