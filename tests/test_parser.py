@@ -105,12 +105,19 @@ _BASES = st.sampled_from(
 )
 
 
-@given(base=_BASES, tail=st.lists(_HREF_ALPHABET, max_size=12), rooted=st.booleans())
-@settings(max_examples=1500, deadline=None)
-def test_resolver_agrees_with_urljoin(base: str, tail: list[str], rooted: bool) -> None:
+_HREF_STARTS = st.sampled_from(
+    ["", "/", "//", "http://a.test", "http://a.test/", "https://b.test:8443/", "HTTP://a.test/",
+     "http://[::1]/", "http:", "https://", "http://é.test/"]
+)
+
+
+@given(base=_BASES, tail=st.lists(_HREF_ALPHABET, max_size=12), start=_HREF_STARTS)
+@settings(max_examples=3000, deadline=None)
+def test_resolver_agrees_with_urljoin(base: str, tail: list[str], start: str) -> None:
     # Reference: urllib.parse.urljoin (RFC 3986 s.5.2 resolution); the resolver's
-    # concatenation shortcut must give the same string, minus the fragment.
-    href = ("/" if rooted else "") + "".join(tail)
+    # concatenation shortcuts (absolute, root-relative and relative hrefs) must give
+    # the same string, minus the fragment.
+    href = start + "".join(tail)
     got = LinkResolver(base).resolve(href)
     stripped = href.strip("".join(map(chr, range(0x21))))
     if not stripped:

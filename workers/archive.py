@@ -18,8 +18,10 @@ over the network"; this rewrite is the documented deviation that keeps the recor
 self-consistent.
 
 Request, response and metadata records are built here as bytes (header block,
-block, CRLF CRLF) and compressed one gzip member each with zlib; warcio's
-record builder re-reads and re-serialises every record, which dominated a
+block, CRLF CRLF) and compressed one gzip member each with ISA-L (``isal``), which
+compresses these small records about three times as fast as zlib for a similar size
+(measured: 10 vs 29 microseconds for a 1 KB record, 0.56 vs 0.55 of the input);
+warcio's record builder re-reads and re-serialises every record, which dominated a
 worker's CPU. HTTP heads are serialised as warcio's ``StatusAndHeaders`` does
 (its own code handles the rare non-ASCII head and raw request bytes), and the
 warcinfo record, once per file, is still written through warcio.
@@ -44,6 +46,7 @@ from datetime import UTC, datetime
 from pathlib import Path
 from typing import IO, Any
 
+from isal import isal_zlib
 from warcio.recordloader import ArcWarcRecordLoader
 from warcio.statusandheaders import StatusAndHeaders
 from warcio.warcwriter import GzippingWrapper, WARCWriter
@@ -53,7 +56,9 @@ WARC_SUBDIR = "warc"
 WARC_SUFFIX = ".warc.gz"
 DEFAULT_PREFIX = "sluice"
 DEFAULT_MAX_FILE_BYTES = 1_000_000_000
-GZIP_LEVEL = 6  # zlib's default: level 9 costs several times the CPU for a few % of size
+GZIP_LEVEL = 6  # warcinfo records, through warcio and zlib: zlib's default level
+ISAL_LEVEL = 1  # every other record: ISA-L's levels are 0-3; above 1 gained nothing here
+GZIP_WBITS = 16 + 15  # a gzip wrapper (RFC 1952) around a 32 KiB-window deflate stream
 FETCH_LOG_NAME = "fetches.jsonl"
 HTTP_VERSION = "HTTP/1.1"
 FILE_TIMESTAMP_FORMAT = "%Y%m%d%H%M%S"
@@ -67,9 +72,6 @@ RESPONSE_CONTENT_TYPE = "application/http; msgtype=response"
 DIGEST_ALGORITHM = "sha1"
 OUTLINK_FIELD = "outlink"
 
-DEFLATE_MIN_WBITS = 9  # smallest window zlib accepts for a gzip stream
-DEFLATE_LOOKAHEAD = 262  # zlib's MIN_LOOKAHEAD: matches reach back window - 262 bytes
-DEFLATE_HASH_OFFSET = 7  # zlib: hash table bits = memLevel + 7 (defaults 15 and 8 agree)
 _CRLF = "\r\n"
 _RECORD_END = b"\r\n\r\n"
 """ISO 28500 s.4: warc-record = header CRLF block CRLF CRLF."""
@@ -206,20 +208,6 @@ def _raw_request_block(target: str, head: bytes) -> tuple[bytes, bytes]:
     return bytes(parsed.to_ascii_bytes()) + payload, payload
 
 
-def _deflate_params(size: int) -> tuple[int, int]:
-    """Deflate window bits and memLevel for a ``size``-byte record.
-
-    A window larger than the input finds no further matches, so small records
-    get a window that just holds them and a hash table of the same size (zlib's
-    default proportion); the output is then the same as with the default 32 KiB
-    window, but zlib allocates a few KiB instead of ~256 KiB per gzip member,
-    which was most of the cost of compressing a small record. Records over
-    32 KiB use zlib's defaults (15, 8).
-    """
-    wbits = max(DEFLATE_MIN_WBITS, min(zlib.MAX_WBITS, (size + DEFLATE_LOOKAHEAD).bit_length()))
-    return wbits, wbits - DEFLATE_HASH_OFFSET
-
-
 def _gzip_record(
     warc_type: str, record_id: str, date: str, target: str, fields: str, content_type: str,
     block: Sequence[bytes], payload_digest: str | None = None, truncated: str | None = None,
@@ -242,9 +230,7 @@ def _gzip_record(
     block_length = sum(map(len, block))
     head.append(f"Content-Length: {block_length}{_CRLF}{_CRLF}")
     header = "".join(head).encode("utf-8")
-    wbits, mem_level = _deflate_params(len(header) + block_length + len(_RECORD_END))
-    compressor = zlib.compressobj(GZIP_LEVEL, zlib.DEFLATED, wbits + 16, mem_level)
-    return compressor.compress(b"".join([header, *block, _RECORD_END])) + compressor.flush()
+    return isal_zlib.compress(b"".join([header, *block, _RECORD_END]), ISAL_LEVEL, GZIP_WBITS)
 
 
 def rewrite_response_headers(

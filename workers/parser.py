@@ -22,6 +22,7 @@ from __future__ import annotations
 import codecs
 import re
 from dataclasses import dataclass, field
+from typing import NamedTuple
 from urllib.parse import urljoin, urlsplit
 
 from selectolax.lexbor import LexborHTMLParser, LexborNode
@@ -88,12 +89,11 @@ _WEB_CODECS: dict[str, str] = {
     "gb2312": "gbk",
     "utf-16": "utf-16-le",
 }
-_BINARY_BYTES = frozenset([*range(0x00, 0x09), 0x0B, *range(0x0E, 0x1B), *range(0x1C, 0x20)])
+_BINARY_BYTES = bytes([*range(0x00, 0x09), 0x0B, *range(0x0E, 0x1B), *range(0x1C, 0x20)])
 """WHATWG MIME Sniffing, "binary data byte"."""
 
 
-@dataclass(frozen=True, slots=True)
-class Link:
+class Link(NamedTuple):
     """One outlink: absolute URL without fragment (not canonicalised)."""
 
     url: str
@@ -125,7 +125,7 @@ def looks_binary(body: bytes) -> bool:
         return False
     if b"\x00" in head:
         return True
-    binary = sum(1 for byte in head if byte in _BINARY_BYTES)
+    binary = len(head) - len(head.translate(None, _BINARY_BYTES))
     return binary > BINARY_SHARE * len(head)
 
 
@@ -173,30 +173,38 @@ def collapse(text: str) -> str:
 class LinkResolver:
     """Resolves hrefs against one base URL exactly as ``urllib.parse.urljoin`` does.
 
-    Root-relative hrefs with no dot segments, path parameters or removable
-    characters (the common case) are joined by concatenation with the base's
-    ``scheme://netloc``; every other href goes through ``urljoin``.
+    The common shapes of href are joined by string concatenation: absolute ``http(s)``
+    URLs that ``urljoin`` would return unchanged, root-relative paths (joined to the
+    base's ``scheme://netloc``) and plain relative paths (joined to the base's
+    directory), in each case only when the href holds nothing ``urljoin`` rewrites (dot
+    segments, empty segments, path parameters, an empty query, characters it deletes).
+    Every other href goes through ``urljoin``. ``urljoin`` cost about 10 microseconds a
+    link here, most of a small page's parse.
     """
 
-    __slots__ = ("base", "_origin")
+    __slots__ = ("base", "_origin", "_directory")
 
     def __init__(self, base: str) -> None:
         self.base = base
         self._origin = ""
+        self._directory = ""
         try:
             parts = urlsplit(base)
         except ValueError:
             return
         if parts.scheme in ("http", "https") and parts.netloc:
             self._origin = f"{parts.scheme}://{parts.netloc}"
+            path = parts.path or "/"
+            if "/." not in path and "//" not in path and ";" not in path:
+                self._directory = self._origin + path[: path.rfind("/") + 1]
 
     def resolve(self, href: str) -> str | None:
         """Absolute URL of ``href`` without fragment, or None if it is skipped."""
         href = href.strip(_C0_CONTROL_OR_SPACE)
         if not href:
             return None
-        if self._origin and href[0] == "/" and href[1:2] != "/":
-            joined = self._join_root_relative(href)
+        if self._origin:
+            joined = self._join_plain(href)
             if joined is not None:
                 return joined
         try:
@@ -209,13 +217,41 @@ class LinkResolver:
             return None
         return absolute.split("#", 1)[0]
 
-    def _join_root_relative(self, href: str) -> str | None:
-        if not _URLSPLIT_REMOVES.isdisjoint(href):
+    def _join_plain(self, href: str) -> str | None:
+        """The join of an href that ``urljoin`` would not rewrite; None for any other."""
+        if not _URLSPLIT_REMOVES.isdisjoint(href) or ";" in href:
             return None
-        path, _, query = href.split("#", 1)[0].partition("?")
-        if "/." in path or ";" in path:
+        href = href.split("#", 1)[0]
+        path, mark, query = href.partition("?")
+        if mark and not query:
+            return None  # urljoin drops an empty query's "?"
+        first = href[:1]
+        if not first:
+            return None  # a bare fragment: the base itself, as urljoin spells it
+        if first == "/":
+            if href[1:2] == "/":  # scheme-relative: //host/path
+                return self._origin[: self._origin.find(":") + 1] + href if _plain_authority(
+                    href[2:]) else None
+            return None if "/." in path else self._origin + href
+        if href.startswith(_WEB_PREFIXES):
+            return href if _plain_authority(href[href.find("//") + 2:]) else None
+        if not self._directory:
             return None
-        return f"{self._origin}{path}?{query}" if query else self._origin + path
+        directory = self._directory
+        while href.startswith("../"):  # up one directory each, never above the root
+            href = href[3:]
+            cut = directory.rstrip("/").rfind("/") + 1
+            if cut > len(self._origin):
+                directory = directory[:cut]
+        path = href.partition("?")[0]
+        if href[:1] in (".", "?", "#", "/") or ":" in path or "//" in path or "/." in path:
+            return None
+        return directory + href
+
+
+def _plain_authority(rest: str) -> bool:
+    """True if ``rest`` (what follows ``//``) starts with a host ``urlsplit`` takes as is."""
+    return bool(rest) and rest[0] not in "/?" and "[" not in rest and rest.isascii()
 
 
 def _document_base(tree: LexborHTMLParser, url: str) -> str:
