@@ -82,6 +82,22 @@ _RELEASE_LOCK = """
 if redis.call('GET', KEYS[1]) == ARGV[1] then return redis.call('DEL', KEYS[1]) end
 return 0
 """
+# KEYS[1] entry, KEYS[2] lock; ARGV[1] our token, ARGV[2] lock TTL in ms. The entry's
+# fields if it exists, else the lock if it is free: one round trip for the common cases.
+_READ_OR_LOCK = """
+local entry = redis.call('HGETALL', KEYS[1])
+if #entry > 0 then return {entry, 0} end
+local got = redis.call('SET', KEYS[2], ARGV[1], 'NX', 'PX', ARGV[2])
+return {entry, got and 1 or 0}
+"""
+# KEYS[1] entry, KEYS[2] lock; ARGV[1] our token, ARGV[2] entry TTL in ms, then field,
+# value pairs. Writes the entry and releases the lock if it is still ours.
+_STORE_AND_UNLOCK = """
+redis.call('HSET', KEYS[1], unpack(ARGV, 3))
+redis.call('PEXPIRE', KEYS[1], ARGV[2])
+if redis.call('GET', KEYS[2]) == ARGV[1] then redis.call('DEL', KEYS[2]) end
+return 1
+"""
 
 
 def product_token(user_agent: str) -> str:
@@ -276,6 +292,8 @@ class RobotsCache:
         self._lock_ttl_ms = int(lock_ttl_s * MS_PER_S)
         self._lock_wait_s = lock_wait_s
         self._sleep = sleep
+        self._read_or_lock = redis.register_script(_READ_OR_LOCK)
+        self._store_and_unlock = redis.register_script(_STORE_AND_UNLOCK)
         self._lru: OrderedDict[str, tuple[RobotsRules, float]] = OrderedDict()
         self._inflight: dict[str, asyncio.Future[RobotsRules]] = {}
 
@@ -300,9 +318,21 @@ class RobotsCache:
             done.exception()  # mark retrieved; the awaiting callers re-raise it
 
     async def _load(self, origin: str) -> RobotsRules:
-        key = self._key(origin)
-        entry = await self._read(key)
-        if entry is None:
+        key, lock_key = self._key(origin), self._lock_key(origin)
+        token = secrets.token_hex(16)
+        try:
+            raw, locked = await self._read_or_lock(
+                keys=[key, lock_key], args=[token, self._lock_ttl_ms])
+        except RedisError as exc:
+            raise _translate(exc) from exc
+        entry = self._parse(key, raw)
+        if entry is None and locked:
+            try:
+                entry = await self._fetch_and_store(origin, key, lock_key, token)
+            except BaseException:
+                await self._release(lock_key, token)
+                raise
+        elif entry is None:
             entry = await self._fetch_shared(origin, key)
         rules = RobotsRules.from_entry(
             entry.status,
@@ -331,7 +361,8 @@ class RobotsCache:
             if acquired:
                 try:
                     entry = await self._read(key)  # written between our miss and the lock?
-                    return entry if entry is not None else await self._fetch_and_store(origin, key)
+                    return entry if entry is not None else await self._fetch_and_store(
+                        origin, key, lock_key, token)
                 finally:
                     await self._release(lock_key, token)
             await self._sleep(pause)
@@ -340,10 +371,11 @@ class RobotsCache:
                 return entry
             if time.monotonic() >= deadline:
                 log.warning("robots lock for %s held too long; fetching without it", origin)
-                return await self._fetch_and_store(origin, key)
+                return await self._fetch_and_store(origin, key, lock_key, token="")
             pause = min(pause * 2, POLL_MAX_S)
 
-    async def _fetch_and_store(self, origin: str, key: str) -> _Entry:
+    async def _fetch_and_store(self, origin: str, key: str, lock_key: str, token: str) -> _Entry:
+        """Fetch, write the entry, and release the lock if ``token`` still holds it."""
         try:
             result = await self._fetch(robots_url(origin))
         except SluiceError as exc:
@@ -353,10 +385,11 @@ class RobotsCache:
         ttl = self._error_ttl_s if state == STATE_DISALLOW_ALL else self._ttl_s
         body = truncate_body(result.body, self._max_bytes) if state == STATE_RULES else b""
         entry = _Entry(result.status, body, result.error or "", now, now + ttl)
-        await self._write(key, entry, ttl)
+        await self._write(key, entry, ttl, lock_key, token)
         return entry
 
-    async def _write(self, key: str, entry: _Entry, ttl_s: float) -> None:
+    async def _write(self, key: str, entry: _Entry, ttl_s: float, lock_key: str,
+                     token: str) -> None:
         compress = len(entry.body) >= COMPRESS_MIN_BYTES
         mapping = {
             "v": ENTRY_VERSION,
@@ -367,11 +400,10 @@ class RobotsCache:
             "encoding": ENCODING_ZLIB if compress else ENCODING_IDENTITY,
             "body": zlib.compress(entry.body, ZLIB_LEVEL) if compress else entry.body,
         }
+        pairs = [item for field_value in mapping.items() for item in field_value]
         try:
-            pipe = self._redis.pipeline(transaction=False)
-            pipe.hset(key, mapping=mapping)
-            pipe.pexpire(key, int(ttl_s * MS_PER_S))
-            await pipe.execute()
+            await self._store_and_unlock(
+                keys=[key, lock_key], args=[token, int(ttl_s * MS_PER_S), *pairs])
         except RedisError as exc:
             raise _translate(exc) from exc
 
@@ -380,6 +412,12 @@ class RobotsCache:
             raw = await self._redis.hgetall(key)
         except RedisError as exc:
             raise _translate(exc) from exc
+        return self._parse(key, raw)
+
+    def _parse(self, key: str, raw: dict[Any, Any] | list[Any]) -> _Entry | None:
+        """An entry from HGETALL's reply (a dict, or a flat list from a script), if live."""
+        if isinstance(raw, list):
+            raw = dict(zip(raw[::2], raw[1::2]))
         fields = {_as_text(k): v for k, v in raw.items()}
         if not fields or _as_text(fields.get("v", b"")) != ENTRY_VERSION:
             return None

@@ -530,3 +530,24 @@ async def test_redis_down_is_store_unavailable() -> None:
             await cache.rules_for(ORIGIN)
     finally:
         await client.aclose()
+
+
+async def test_workers_share_one_fetch_on_a_cluster(redis_cluster: Any) -> None:
+    # The entry and its lock share a hash tag, so each script runs on one Cluster node.
+    from frontier.redis_client import connect
+
+    client = connect(redis_cluster.url.replace("redis://", "redis+cluster://"))
+    try:
+        fetch = CountingFetch(RobotsFetchResult(200, OK_BODY))
+
+        def cache() -> RobotsCache:
+            return RobotsCache(client, lambda h: f"{{t.7}}:robots:{h}", fetch, user_agent=UA,
+                               clock=ManualClock(), lock_key_for_host=lambda h: f"{{t.7}}:lock:{h}")
+
+        first, second = await asyncio.gather(cache().rules_for(ORIGIN), cache().rules_for(ORIGIN))
+        third = await cache().rules_for(ORIGIN)
+        assert len(fetch.urls) == 1
+        assert all(not r.allowed(url("/private")) for r in (first, second, third))
+        assert not await client.exists(f"{{t.7}}:lock:{ORIGIN}")
+    finally:
+        await client.aclose()
