@@ -5,6 +5,7 @@ from __future__ import annotations
 import argparse
 import asyncio
 import contextlib
+import gc
 import json
 import logging
 import signal
@@ -19,6 +20,25 @@ from frontier.exceptions import SluiceError
 from frontier.settings import JobSettings, load_settings
 
 log = logging.getLogger("sluice")
+
+CRAWL_GC_THRESHOLDS = (20_000, 20, 20)
+"""Python's cyclic collector during a crawl: the default first threshold (700) ran it
+about once a page and cost ~87 microseconds a page (1/14 of a worker's CPU); at these
+thresholds, with the start-up objects frozen, it costs ~9 (measured with gc.callbacks
+over a 10,000-page bench crawl)."""
+
+
+@contextlib.contextmanager
+def crawl_gc() -> Any:
+    """Collect cyclic garbage less often while crawling; restore the settings after."""
+    before = gc.get_threshold()
+    gc.freeze()  # everything imported and built so far lives as long as the process
+    gc.set_threshold(*CRAWL_GC_THRESHOLDS)
+    try:
+        yield
+    finally:
+        gc.set_threshold(*before)
+        gc.unfreeze()
 
 
 def dump_tasks() -> None:
@@ -96,15 +116,22 @@ def _settings(a: argparse.Namespace, **extra: Any) -> JobSettings:
 
 async def _crawl(settings: JobSettings, out: Path, workers: int, *, quiet: bool = False,
                  admin: str | None = None) -> dict[str, Any]:
+    """Scheduler loops and ``workers`` workers in this process, until drained or spent."""
+    if not settings.seeds:
+        raise SluiceError("no seeds: pass --seeds FILE or set seeds in the job file")
+    registry = CollectorRegistry()
+    with crawl_gc():
+        return await _crawl_job(settings, out, workers, registry, quiet=quiet, admin=admin)
+
+
+async def _crawl_job(settings: JobSettings, out: Path, workers: int, registry: CollectorRegistry,
+                     *, quiet: bool, admin: str | None) -> dict[str, Any]:
     from frontier.daemon import Daemon, serve
     from frontier.job import admit_seeds, open_job
     from frontier.metrics import WorkerMetrics
     from frontier.progress import Progress
     from workers.loop import Worker
 
-    if not settings.seeds:
-        raise SluiceError("no seeds: pass --seeds FILE or set seeds in the job file")
-    registry = CollectorRegistry()
     async with open_job(settings) as job:
         if job.server is not None:  # a private server: leases of an earlier run are orphans
             await job.store.reap(now=2**62)
@@ -197,7 +224,8 @@ def cmd_worker(a: argparse.Namespace) -> int:
             watch_signals(worker.stop)
             runner = await serve(metrics_app(registry), a.metrics) if a.metrics else None
             try:
-                await worker.run()
+                with crawl_gc():
+                    await worker.run()
             finally:
                 if runner is not None:
                     await runner.cleanup()

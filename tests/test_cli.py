@@ -95,3 +95,16 @@ async def test_crawl_refuses_without_user_agent(tmp_path: Path, redis_server: Re
     code, out = await sluice("crawl", "--seeds", str(seeds), "--out", str(tmp_path / "o"),
                              "--redis", redis_server.url, "--job", "noua", "--quiet")
     assert code == 2 and "user_agent is required" in out
+
+
+def test_crawl_gc_is_restored_after_the_crawl() -> None:
+    import gc
+
+    from frontier.cli import CRAWL_GC_THRESHOLDS, crawl_gc
+
+    before = gc.get_threshold()
+    with crawl_gc():
+        assert gc.get_threshold() == CRAWL_GC_THRESHOLDS
+        assert gc.get_freeze_count() > 0
+    assert gc.get_threshold() == before
+    assert gc.get_freeze_count() == 0
