@@ -5,7 +5,6 @@ from __future__ import annotations
 import argparse
 import asyncio
 import contextlib
-import gc
 import json
 import logging
 import signal
@@ -17,28 +16,10 @@ from typing import Any
 from prometheus_client import CollectorRegistry
 
 from frontier.exceptions import SluiceError
+from frontier.process import crawl_process
 from frontier.settings import JobSettings, load_settings
 
 log = logging.getLogger("sluice")
-
-CRAWL_GC_THRESHOLDS = (20_000, 20, 20)
-"""Python's cyclic collector during a crawl: the default first threshold (700) ran it
-about once a page and cost ~87 microseconds a page (1/14 of a worker's CPU); at these
-thresholds, with the start-up objects frozen, it costs ~9 (measured with gc.callbacks
-over a 10,000-page bench crawl)."""
-
-
-@contextlib.contextmanager
-def crawl_gc() -> Any:
-    """Collect cyclic garbage less often while crawling; restore the settings after."""
-    before = gc.get_threshold()
-    gc.freeze()  # everything imported and built so far lives as long as the process
-    gc.set_threshold(*CRAWL_GC_THRESHOLDS)
-    try:
-        yield
-    finally:
-        gc.set_threshold(*before)
-        gc.unfreeze()
 
 
 def dump_tasks() -> None:
@@ -120,7 +101,7 @@ async def _crawl(settings: JobSettings, out: Path, workers: int, *, quiet: bool 
     if not settings.seeds:
         raise SluiceError("no seeds: pass --seeds FILE or set seeds in the job file")
     registry = CollectorRegistry()
-    with crawl_gc():
+    with crawl_process():
         return await _crawl_job(settings, out, workers, registry, quiet=quiet, admin=admin)
 
 
@@ -224,7 +205,7 @@ def cmd_worker(a: argparse.Namespace) -> int:
             watch_signals(worker.stop)
             runner = await serve(metrics_app(registry), a.metrics) if a.metrics else None
             try:
-                with crawl_gc():
+                with crawl_process():
                     await worker.run()
             finally:
                 if runner is not None:

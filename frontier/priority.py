@@ -91,7 +91,7 @@ def _path_and_query(url: str) -> tuple[str, str]:
 
 def _ends_in_date(segments: Sequence[str]) -> bool:
     """The path ends in a date: .../YYYY/MM, .../YYYY/MM/DD or .../YYYY-MM[-DD]."""
-    if not segments:
+    if not segments or not segments[-1][:1].isdigit():  # every form ends in digits
         return False
     if _DATE_SEGMENT_RE.fullmatch(segments[-1]):
         return True
@@ -125,7 +125,7 @@ def trap_signs(url: str, settings: PrioritySettings) -> list[str]:
             session = True
         if value and (name in _DATE_PARAMS or _DATE_VALUE_RE.fullmatch(value)):
             date = True
-    if ";jsessionid=" in path.lower():
+    if ";" in path and ";jsessionid=" in path.lower():
         session = True
     if session:
         signs.append(SESSION_QUERY)
@@ -136,7 +136,8 @@ def trap_signs(url: str, settings: PrioritySettings) -> list[str]:
 
 def trap_factor(url: str, settings: PrioritySettings) -> float:
     """``trap_penalty`` to the power of the number of trap signs (1.0: no sign)."""
-    return float(settings.trap_penalty ** len(trap_signs(url, settings)))
+    signs = trap_signs(url, settings)
+    return float(settings.trap_penalty ** len(signs)) if signs else 1.0
 
 
 def link_weights(
@@ -197,8 +198,7 @@ def distribute(
     floor = settings.jump_floor
     child = depth + 1
     return [
-        Candidate(url, depth=child, cash=share + floor * factor, credit=share,
-                  source_host=source)
+        Candidate(url, child, share + floor * factor, share, source)
         for url, share, factor in _shares(lease_url, lease_cash, (u for u, _ in links), settings)
     ]
 

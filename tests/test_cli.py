@@ -100,10 +100,11 @@ async def test_crawl_refuses_without_user_agent(tmp_path: Path, redis_server: Re
 def test_crawl_gc_is_restored_after_the_crawl() -> None:
     import gc
 
-    from frontier.cli import CRAWL_GC_THRESHOLDS, crawl_gc
+    from frontier.process import CRAWL_GC_THRESHOLDS, crawl_process, tune_malloc
 
+    assert tune_malloc() is (sys.platform == "linux")  # glibc here; see frontier/process.py
     before = gc.get_threshold()
-    with crawl_gc():
+    with crawl_process():
         assert gc.get_threshold() == CRAWL_GC_THRESHOLDS
         assert gc.get_freeze_count() > 0
     assert gc.get_threshold() == before

@@ -38,6 +38,8 @@ def parse_args(argv: Sequence[str] | None = None) -> argparse.Namespace:
                         help="seconds added to each response of a slow host")
     parser.add_argument("--plain", action="store_true",
                         help="ordinary sites only: no robots, traps, farms or bad inputs")
+    parser.add_argument("--prerender", action="store_true",
+                        help="render every ordinary page before listening (for benchmarks)")
     return parser.parse_args(argv)
 
 
@@ -47,6 +49,8 @@ async def serve(args: argparse.Namespace) -> None:
     spec = WebSpec(seed=args.seed, hosts=args.hosts, pages=args.pages,
                    zipf_exponent=args.zipf, **switches)
     server = SyntheticServer(SyntheticWeb.generate(spec), slow_delay=args.slow_delay)
+    if args.prerender:
+        server.prerender()
     port = await server.start(args.bind, args.port)
     try:
         print(f"port {port}", flush=True)
