@@ -17,6 +17,7 @@ from prometheus_client import CollectorRegistry
 
 from frontier.exceptions import SluiceError
 from frontier.process import crawl_process
+from frontier.process import run as run_loop
 from frontier.settings import JobSettings, load_settings
 
 log = logging.getLogger("sluice")
@@ -154,7 +155,7 @@ async def _crawl_job(settings: JobSettings, out: Path, workers: int, registry: C
 def cmd_crawl(a: argparse.Namespace) -> int:
     out = Path(a.out)
     settings = _settings(a, state_dir=str(out / "state"))
-    summary = asyncio.run(_crawl(settings, out, a.workers, quiet=a.quiet, admin=a.admin))
+    summary = run_loop(_crawl(settings, out, a.workers, quiet=a.quiet, admin=a.admin))
     print(json.dumps(summary, indent=2))
     return 0
 
@@ -182,7 +183,7 @@ def cmd_daemon(a: argparse.Namespace) -> int:
                 if runner is not None:
                     await runner.cleanup()
 
-    asyncio.run(run())
+    run_loop(run())
     return 0
 
 
@@ -213,7 +214,7 @@ def cmd_worker(a: argparse.Namespace) -> int:
             print(json.dumps({"pages": worker.pages}))
             return 0
 
-    return asyncio.run(run())
+    return run_loop(run())
 
 
 def _stored_job(a: argparse.Namespace) -> JobSettings:
@@ -242,7 +243,7 @@ def cmd_host(a: argparse.Namespace) -> int:
             info = await job.store.host_info(a.host)
             print(json.dumps({"host": a.host, "state": state, **info}, indent=2, default=str))
 
-    asyncio.run(run())
+    run_loop(run())
     return 0
 
 
@@ -258,7 +259,7 @@ def cmd_status(a: argparse.Namespace) -> int:
             data["balanced"] = counts.balanced
             print(json.dumps(data, indent=2))
 
-    asyncio.run(run())
+    run_loop(run())
     return 0
 
 
@@ -273,7 +274,7 @@ def cmd_explain(a: argparse.Namespace) -> int:
             data = await explain(job.store, a.url)
             print(json.dumps(data, indent=2, default=str) if a.json else format_explain(data))
 
-    asyncio.run(run())
+    run_loop(run())
     return 0
 
 

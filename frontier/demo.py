@@ -2,11 +2,11 @@
 
 from __future__ import annotations
 
-import asyncio
 import json
 from pathlib import Path
 from typing import Any
 
+from frontier.process import run as run_loop
 from frontier.settings import load_settings
 
 DEMO_USER_AGENT = "sluice-demo/0.1 (+http://operator.test/contact)"
@@ -47,7 +47,7 @@ async def _demo(out: Path, hosts: int, pages: int, max_pages: int, quiet: bool) 
 
 
 def run_demo(out: Path, *, hosts: int, pages: int, max_pages: int, quiet: bool = False) -> int:
-    summary = asyncio.run(_demo(out, hosts, pages, max_pages, quiet))
+    summary = run_loop(_demo(out, hosts, pages, max_pages, quiet))
     print(json.dumps(summary, indent=2))
     warcs = sorted((out / "warc").glob("*.warc.gz"))
     print(f"\nWARC files: {len(warcs)} under {out / 'warc'}")

@@ -45,6 +45,7 @@ LEASE_CHUNK_DIVISOR = 4  # lease once a quarter of a batch of slots is free
 IDLE_SLEEP_MIN_S = 0.01
 IDLE_SLEEP_MAX_S = 0.25  # a worker with nothing to lease looks again at least this often
 STORE_RETRY_S = 0.5
+FETCHED_MEMORY = 200_000  # URLs this worker fetched, remembered to skip links back to them
 
 
 @dataclass
@@ -125,6 +126,10 @@ class Worker:
             lock_key_for_host=lambda h: store.keys.part_for(h).robots_lock(h))
         self._finished: list[Finished] = []
         self._fetched: list[FetchedPage] = []  # HTML pages not yet parsed and archived
+        # URLs this worker fetched (completion accepted). A link to one from its own host
+        # changes nothing in the frontier (no credit for a URL no longer queued, no new
+        # linking host), so it is not sent; cleared when full.
+        self._fetched_urls: set[str] = set()
         self._tasks: set[asyncio.Task[None]] = set()
         self._stop = asyncio.Event()
         self._to_flush = asyncio.Event()  # set when a lease finished
@@ -348,6 +353,10 @@ class Worker:
             else:
                 follow = [(ln.url, ln.anchor) for ln in page.links if not ln.nofollow]
             links = distribute(lease.url, lease.cash, lease.depth, follow, priority)
+            if self._fetched_urls:
+                own = origin_of(lease.url) + "/"
+                done = self._fetched_urls
+                links = [c for c in links if c.url not in done or not c.url.startswith(own)]
             entry = self._entry(lease, Outcome.FETCHED, p.reason, p.resp, simhash=fingerprint,
                                 **ref)
             self._record(Finished(p.base, links, simhash=fingerprint), entry)
@@ -426,8 +435,15 @@ class Worker:
                     self.fetch_log.write(f.entry)
                 if status != "ok" or f.completion.outcome is not Outcome.FETCHED:
                     released += 1
+                else:
+                    self._remember_fetched(f.completion.lease.url)
             await self.budget.release(released)
             self._finish_pages()  # pages fetched while this batch was written back
+
+    def _remember_fetched(self, url: str) -> None:
+        if len(self._fetched_urls) >= FETCHED_MEMORY:
+            self._fetched_urls.clear()
+        self._fetched_urls.add(url)
 
     async def _drop_near_duplicates(self, batch: list[Finished]) -> None:
         """A near-duplicate page stays archived, but its links are not followed."""
