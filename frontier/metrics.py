@@ -6,6 +6,8 @@ on counters, and no label with unbounded values (no URLs, no hosts).
 
 from __future__ import annotations
 
+from typing import Any
+
 from prometheus_client import CollectorRegistry, Counter, Gauge, Histogram
 
 from frontier.model import STATES
@@ -36,6 +38,22 @@ class WorkerMetrics:
         self.store_errors = Counter(
             "sluice_store_errors_total", "Frontier calls that failed and were retried",
             registry=registry)
+        self._children: dict[tuple[int, str], Any] = {}  # labels() looks up under a lock
+
+    def count_outcome(self, outcome: str) -> None:
+        """One more lease ended with ``outcome``."""
+        self._child(self.fetches, "outcome", outcome).inc()
+
+    def count_response(self, status: int) -> None:
+        """One more HTTP response with this status (counted by class: 2xx, 4xx...)."""
+        self._child(self.responses, "status_class", f"{status // 100}xx").inc()
+
+    def _child(self, metric: Any, label: str, value: str) -> Any:
+        key = (id(metric), value)
+        child = self._children.get(key)
+        if child is None:
+            child = self._children[key] = metric.labels(**{label: value})
+        return child
 
 
 class FrontierMetrics:

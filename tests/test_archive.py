@@ -482,12 +482,14 @@ def test_fetch_log_lines_and_fields(tmp_path: Path) -> None:
     assert second["status"] is None and second["simhash"] is None
 
 
-def test_fetch_log_is_line_buffered(tmp_path: Path) -> None:
-    # Each line reaches the file when written, before close (crash safety).
+def test_fetch_log_lines_reach_the_file_on_flush(tmp_path: Path) -> None:
+    # Lines reach the file at each flush, before close (crash safety per batch).
     log = FetchLog(tmp_path)
     try:
         log.write(entry(0))
-        assert len(read_lines(tmp_path / "fetches.jsonl")) == 1
+        log.write(entry(1))
+        log.flush()
+        assert len(read_lines(tmp_path / "fetches.jsonl")) == 2
     finally:
         log.close()
 

@@ -148,12 +148,22 @@ def _clean(text: str) -> str:
     return text
 
 
-def _record_ids(count: int) -> list[str]:
-    """``count`` record IDs: random (version 4) UUID URNs from one urandom call.
+_RANDOM_BATCH = 256  # UUIDs' worth of random bytes drawn from the OS at a time
+_random_pool = bytearray()
 
-    Same bits as ``uuid.uuid4()`` (RFC 9562 s.5.4: version 4, variant 10x).
+
+def _record_ids(count: int) -> list[str]:
+    """``count`` record IDs: random (version 4) UUID URNs.
+
+    Same bits as ``uuid.uuid4()`` (RFC 9562 s.5.4: version 4, variant 10x); the bytes come
+    from ``os.urandom``, drawn for many IDs at once (a system call each time cost more
+    than formatting the IDs).
     """
-    raw = os.urandom(UUID_BYTES * count)
+    need = UUID_BYTES * count
+    if len(_random_pool) < need:
+        _random_pool.extend(os.urandom(UUID_BYTES * max(count, _RANDOM_BATCH)))
+    raw = bytes(_random_pool[:need])
+    del _random_pool[:need]
     ids = []
     for start in range(0, len(raw), UUID_BYTES):
         number = int.from_bytes(raw[start:start + UUID_BYTES], "big") & _UUID_KEEP | _UUID_SET
@@ -290,6 +300,7 @@ class WarcArchive:
         self.files: list[Path] = []
         self._serial = 0
         self._file: IO[bytes] | None = None
+        self._position = 0  # bytes in the current file (tell() costs a system call)
 
     @property
     def current_path(self) -> Path | None:
@@ -327,7 +338,7 @@ class WarcArchive:
         ip_field = f"WARC-IP-Address: {remote_ip}{_CRLF}" if remote_ip else ""
 
         request_block, request_payload = self._request_block(target, request_line_and_headers)
-        out.write(_gzip_record(
+        self._write(out, _gzip_record(
             "request", request_id, date, target,
             f"{ip_field}WARC-Concurrent-To: {response_id}{_CRLF}", REQUEST_CONTENT_TYPE,
             request_block, _digest(request_payload) if request_payload else _EMPTY_DIGEST,
@@ -342,14 +353,15 @@ class WarcArchive:
             f"{ip_field}WARC-Concurrent-To: {request_id}{_CRLF}", RESPONSE_CONTENT_TYPE,
             (http_head, body), _digest(body), truncated,
         )
-        offset = out.tell()
-        out.write(response)
+        offset = self._position
+        self._write(out, response)
         ref = RecordRef(self.files[-1].name, offset, len(response), response_id)
 
         if outlinks:
-            out.write(self._metadata_record(target, date, metadata_id, response_id, outlinks))
+            self._write(out, self._metadata_record(target, date, metadata_id, response_id,
+                                                   outlinks))
 
-        if out.tell() >= self.max_file_bytes:
+        if self._position >= self.max_file_bytes:
             self.close()
         return ref
 
@@ -396,9 +408,14 @@ class WarcArchive:
         warcinfo = writer.create_warcinfo_record(name, info)
         warcinfo.rec_headers.replace_header("WARC-Date", warc_date(now))
         writer.write_record(warcinfo)
+        self._position = out.tell()
         self._file = out
         self.files.append(self.directory / name)
         return out
+
+    def _write(self, out: IO[bytes], data: bytes) -> None:
+        out.write(data)
+        self._position += len(data)
 
     @staticmethod
     def _request_block(target: str, head: RequestHead) -> tuple[tuple[bytes, ...], bytes]:
@@ -456,14 +473,18 @@ class FetchEntry:
 
 
 class FetchLog:
-    """Line-buffered JSON-lines log of fetch outcomes; appends when reopened."""
+    """JSON-lines log of fetch outcomes; appends when reopened.
+
+    Lines are buffered until :meth:`flush` (the worker flushes after each write-back
+    batch, before it awaits anything), so a batch costs one system call, not one a line.
+    """
 
     def __init__(self, out_dir: Path) -> None:
         self.path = Path(out_dir) / FETCH_LOG_NAME
         self.path.parent.mkdir(parents=True, exist_ok=True)
         torn = self._ends_mid_line(self.path)
         self._out: IO[str] | None = open(  # noqa: SIM115 - kept open across writes
-            self.path, "a", encoding="utf-8", buffering=1, newline="\n"
+            self.path, "a", encoding="utf-8", newline="\n"
         )
         if torn:
             self._out.write("\n")
@@ -487,6 +508,11 @@ class FetchLog:
         line = json.dumps(entry.to_json(), ensure_ascii=False, separators=(",", ":"),
                           allow_nan=False)
         self._out.write(line + "\n")
+
+    def flush(self) -> None:
+        """Hand the buffered lines to the operating system."""
+        if self._out is not None:
+            self._out.flush()
 
     def close(self) -> None:
         """Flush and close the log."""

@@ -235,7 +235,7 @@ class Worker:
     def _record(self, finished: Finished, entry: FetchEntry | None) -> None:
         """Queue a lease's end for the next write-back."""
         c = finished.completion
-        self.metrics.fetches.labels(outcome=c.outcome.value).inc()
+        self.metrics.count_outcome(c.outcome.value)
         if c.outcome is not Outcome.RETRY:
             finished.entry = entry
         if c.outcome is Outcome.FETCHED:
@@ -272,7 +272,7 @@ class Worker:
             c = Completion(lease, outcome, exc.reason, extra_delay_s=min(backoff, pol.max_delay_s),
                            crawl_delay_s=crawl_delay)
             return Finished(c), self._entry(lease, outcome, exc.reason)
-        self.metrics.responses.labels(status_class=f"{resp.status // 100}xx").inc()
+        self.metrics.count_response(resp.status)
         self.metrics.bytes.inc(len(resp.body))
         base = Completion(lease, Outcome.FETCHED, f"http_{resp.status}",
                           response_s=resp.elapsed_s, crawl_delay_s=crawl_delay)
@@ -437,6 +437,8 @@ class Worker:
                     released += 1
                 else:
                     self._remember_fetched(f.completion.lease.url)
+            if self.fetch_log is not None:
+                self.fetch_log.flush()
             await self.budget.release(released)
             self._finish_pages()  # pages fetched while this batch was written back
 
