@@ -104,3 +104,31 @@ async def test_retry_after_then_success(tmp_path: Path, redis_server: RedisServe
     first, second = [t for p, t in zip(requests, times) if p == "/"]
     assert second - first >= 1.0  # the host waited as long as Retry-After asked
     assert [e["outcome"] for e in log if e["url"] == "http://site.test/"] == ["fetched"]
+
+
+async def test_links_back_to_fetched_pages_are_not_sent(
+        tmp_path: Path, redis_server: RedisServer, monkeypatch: Any) -> None:
+    # Every child links back home. Home was fetched (and its completion accepted) before
+    # any child was leased, so those links could change nothing in the frontier (no
+    # credit for a URL no longer queued, no new linking host): the worker drops them.
+    from frontier.admission import Admission
+
+    offered: list[str] = []
+    prepare = Admission.prepare
+
+    def spy(self: Admission, candidates: Any) -> Any:
+        candidates = list(candidates)
+        offered.extend(c.url for c in candidates)
+        return prepare(self, candidates)
+
+    monkeypatch.setattr(Admission, "prepare", spy)
+    children = [f"/c{i}.html" for i in range(8)]
+    pages: dict[str, Any] = {"/": page("home " * 50, children)}
+    for i, child in enumerate(children):
+        pages[child] = page(f"child {i} " * 40, ["/", "/leaf.html"])
+    pages["/leaf.html"] = page("leaf " * 40, ["/"])
+    requests, log = await run_site(tmp_path, redis_server.url, pages)
+    assert sorted(requests) == sorted(["/robots.txt", "/", *children, "/leaf.html"])  # once
+    assert offered.count("http://site.test/") == 1  # the seed itself, nothing after
+    assert offered.count("http://site.test/leaf.html") >= 1  # links to unfetched pages go
+    assert sum(e["outcome"] == "fetched" for e in log) == len(children) + 2
