@@ -155,6 +155,7 @@ def test_warc_reads_back_with_correct_digests(crawl_result: dict[str, Any]) -> N
     out: Path = crawl_result["out"]
     fetched = [json.loads(x) for x in (out / "fetches.jsonl").read_text().splitlines()]
     archived = {ln["url"] for ln in fetched if ln["outcome"] == "fetched" and ln.get("warc_file")}
+    logged_at = {ln["url"]: ln["fetched_at"] for ln in fetched if ln["url"] in archived}
     responses: Counter[str] = Counter()
     for path in sorted((out / "warc").glob("*.warc.gz")):
         with path.open("rb") as fh:
@@ -166,6 +167,8 @@ def test_warc_reads_back_with_correct_digests(crawl_result: dict[str, Any]) -> N
                 # WARC 1.1 (ISO 28500) payload digest: sha1, base32
                 digest = "sha1:" + base64.b32encode(hashlib.sha1(body).digest()).decode()
                 assert record.rec_headers.get_header("WARC-Payload-Digest") == digest
+                # one capture time: the WARC-Date (ISO 28500 s.5.4) is the log's fetched_at
+                assert record.rec_headers.get_header("WARC-Date") == logged_at[uri]
                 responses[uri] += 1
     assert set(responses) == archived
     assert all(n == 1 for n in responses.values())

@@ -67,6 +67,7 @@ class FetchedPage:
     resp: Response
     base: Completion
     reason: str | None  # e.g. truncated_length
+    fetched_at: datetime  # WARC-Date and the log's time: when the response came, not later
 
 
 def retry_after_s(value: str | None, now: float) -> float | None:
@@ -243,10 +244,11 @@ class Worker:
         self._finished.append(finished)
 
     def _entry(self, lease: Lease, outcome: Outcome, reason: str | None,
-               resp: Response | None = None, **kw: Any) -> FetchEntry:
+               resp: Response | None = None, at: datetime | None = None,
+               **kw: Any) -> FetchEntry:
         return FetchEntry(
             url=lease.url, outcome=outcome.value, reason=reason,
-            fetched_at=datetime.now(UTC), status=resp.status if resp else None,
+            fetched_at=at or datetime.now(UTC), status=resp.status if resp else None,
             bytes=len(resp.body) if resp else 0, duration_s=resp.elapsed_s if resp else 0.0,
             depth=lease.depth, host=lease.host,
             content_type=resp.content_type if resp else None, **kw)
@@ -297,9 +299,10 @@ class Worker:
         if location:
             links.append(Candidate(canonical_or_raw(location, lease.url), depth=lease.depth,
                                    cash=lease.cash, credit=lease.cash, source_host=lease.host))
-        ref = self._archive(lease, resp, [(c.url, "redirect") for c in links])
+        at = datetime.now(UTC)
+        ref = self._archive(lease, resp, [(c.url, "redirect") for c in links], at)
         return Finished(base, links), self._entry(
-            lease, Outcome.FETCHED, f"redirect_{resp.status}", resp, **ref)
+            lease, Outcome.FETCHED, f"redirect_{resp.status}", resp, at, **ref)
 
     def _page(self, lease: Lease, resp: Response,
               base: Completion) -> tuple[Finished, FetchEntry] | FetchedPage:
@@ -311,10 +314,12 @@ class Worker:
                 c = Completion(lease, Outcome.EXCLUDED, "content_type", response_s=resp.elapsed_s,
                                crawl_delay_s=base.crawl_delay_s)
                 return Finished(c), self._entry(lease, Outcome.EXCLUDED, "content_type", resp)
-            ref = self._archive(lease, resp, None)
+            at = datetime.now(UTC)
+            ref = self._archive(lease, resp, None, at)
             kind = "binary" if looks_binary(resp.body[:1024]) else "not_html"
-            return Finished(base), self._entry(lease, Outcome.FETCHED, reason or kind, resp, **ref)
-        return FetchedPage(lease, resp, base, reason)
+            return Finished(base), self._entry(lease, Outcome.FETCHED, reason or kind, resp, at,
+                                               **ref)
+        return FetchedPage(lease, resp, base, reason, datetime.now(UTC))
 
     def _finish_pages(self) -> None:
         """Parse, fingerprint, archive and score the fetched HTML pages, a step at a time.
@@ -342,7 +347,7 @@ class Worker:
             lease = p.lease
             try:
                 outlinks = [(ln.url, ln.anchor) for ln in page.links]
-                ref = self._archive(lease, p.resp, outlinks)
+                ref = self._archive(lease, p.resp, outlinks, p.fetched_at)
             except Exception as exc:  # a full disk, say: fetch it again later
                 self._record(*self._internal_error(lease, exc))
                 continue
@@ -357,17 +362,17 @@ class Worker:
                 own = origin_of(lease.url) + "/"
                 done = self._fetched_urls
                 links = [c for c in links if c.url not in done or not c.url.startswith(own)]
-            entry = self._entry(lease, Outcome.FETCHED, p.reason, p.resp, simhash=fingerprint,
-                                **ref)
+            entry = self._entry(lease, Outcome.FETCHED, p.reason, p.resp, p.fetched_at,
+                                simhash=fingerprint, **ref)
             self._record(Finished(p.base, links, simhash=fingerprint), entry)
 
-    def _archive(self, lease: Lease, resp: Response,
-                 outlinks: list[tuple[str, str]] | None) -> dict[str, Any]:
+    def _archive(self, lease: Lease, resp: Response, outlinks: list[tuple[str, str]] | None,
+                 at: datetime) -> dict[str, Any]:
         assert self.archive is not None
         path = "/" + lease.url.split("/", 3)[3] if lease.url.count("/") >= 3 else "/"
         ref = self.archive.write_exchange(
             lease.url, ("GET", path, resp.request_headers), resp.status, resp.reason,
-            resp.headers, resp.body, datetime.now(UTC), remote_ip=resp.remote_ip,
+            resp.headers, resp.body, at, remote_ip=resp.remote_ip,
             outlinks=outlinks, truncated=resp.truncated)
         return {"warc_file": ref.file, "warc_offset": ref.offset}
 
