@@ -17,6 +17,7 @@ buckets and checks the candidates' real distance.
 
 from __future__ import annotations
 
+import functools
 import re
 from collections.abc import Callable
 from typing import Any
@@ -43,6 +44,9 @@ _BYTES = FP_BITS // 8
 _HASH_BYTES = 16
 """Length of mmh3.hash_bytes output (x64 128-bit MurmurHash3)."""
 _WORD = re.compile(r"\w+")
+_hash128 = (mmh3.hash_bytes if HASH_SEED == 0  # mmh3's default seed: no keyword to pass
+            else functools.partial(mmh3.hash_bytes, seed=HASH_SEED))
+"""128-bit MurmurHash3 (x64) of a shingle, bytes little-endian."""
 
 TableKey = Callable[[int, int], str]
 """(block index, block value) -> Redis key of that bucket."""
@@ -57,7 +61,7 @@ def shingles(text: str, width: int = SHINGLE_WORDS) -> list[str]:
     words = _WORD.findall(text.lower())
     if len(words) <= width:
         return [" ".join(words)] if words else []
-    return [" ".join(gram) for gram in zip(*(words[i:] for i in range(width)))]
+    return list(map(" ".join, zip(*(words[i:] for i in range(width)))))
 
 
 def simhash64(text: str, *, shingle_words: int = SHINGLE_WORDS) -> int:
@@ -74,7 +78,7 @@ def simhash64(text: str, *, shingle_words: int = SHINGLE_WORDS) -> int:
         return 0
     # mmh3.hash_bytes gives the 128-bit hash little-endian; its first 8 bytes
     # are the unsigned 64-bit value mmh3.hash64 returns first.
-    packed = b"".join([mmh3.hash_bytes(feature, HASH_SEED) for feature in features])
+    packed = b"".join(map(_hash128, features))
     total = len(features)
     masks = [int.from_bytes(bytes([1 << bit]) * total, "little") for bit in range(8)]
     fingerprint = 0
