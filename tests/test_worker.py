@@ -132,3 +132,51 @@ async def test_links_back_to_fetched_pages_are_not_sent(
     assert offered.count("http://site.test/") == 1  # the seed itself, nothing after
     assert offered.count("http://site.test/leaf.html") >= 1  # links to unfetched pages go
     assert sum(e["outcome"] == "fetched" for e in log) == len(children) + 2
+
+
+async def test_a_page_whose_archive_write_fails_is_fetched_again(
+        tmp_path: Path, redis_server: RedisServer, monkeypatch: Any) -> None:
+    # The first attempt to archive /b.html fails (a full disk, say). Its lease ends as a
+    # retry, the other pages of the batch go on, and the next attempt archives it.
+    from workers.archive import WarcArchive
+
+    write = WarcArchive.write_exchange
+    failed: list[str] = []
+
+    def flaky(self: WarcArchive, url: str, *args: Any, **kw: Any) -> Any:
+        if url.endswith("/b.html") and not failed:
+            failed.append(url)
+            raise OSError(28, "No space left on device")
+        return write(self, url, *args, **kw)
+
+    monkeypatch.setattr(WarcArchive, "write_exchange", flaky)
+    pages = {"/": page("home " * 50, ["/a.html", "/b.html", "/c.html"]),
+             "/a.html": page("alpha " * 40, []), "/b.html": page("bravo " * 40, []),
+             "/c.html": page("charlie " * 40, [])}
+    requests, log = await run_site(tmp_path, redis_server.url, pages)
+    assert failed == ["http://site.test/b.html"]
+    assert requests.count("/b.html") == 2 and requests.count("/a.html") == 1
+    outcomes = {e["url"].rsplit("/", 1)[1]: e["outcome"] for e in log}
+    assert outcomes == {"": "fetched", "a.html": "fetched", "b.html": "fetched",
+                        "c.html": "fetched"}
+
+
+async def test_a_broken_write_back_stops_the_worker_loudly(
+        tmp_path: Path, redis_server: RedisServer, monkeypatch: Any) -> None:
+    # A bug in the write-back must end the crawl with the error, not leave the worker
+    # leasing pages that are never written back (the leases expire and are fetched again).
+    import asyncio
+
+    import pytest
+
+    from workers.loop import Worker
+
+    async def broken(self: Worker, batch: Any) -> None:
+        raise RuntimeError("a bug in the write-back")
+
+    monkeypatch.setattr(Worker, "_drop_near_duplicates", broken)
+    pages = {"/": page("home " * 50, ["/a.html"]), "/a.html": page("alpha " * 40, [])}
+    started = time.monotonic()
+    with pytest.raises(RuntimeError, match="a bug in the write-back"):
+        await asyncio.wait_for(run_site(tmp_path, redis_server.url, pages), 20)
+    assert time.monotonic() - started < 10  # it stopped at once, not at the time-out

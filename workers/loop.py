@@ -33,7 +33,7 @@ from frontier.store import FrontierStore
 from frontier.urls import canonicalize
 from workers.archive import FetchEntry, FetchLog, WarcArchive
 from workers.fetcher import Fetcher, Response
-from workers.parser import looks_binary, parse_html
+from workers.parser import ParsedPage, looks_binary, parse_html
 
 log = logging.getLogger(__name__)
 
@@ -152,6 +152,7 @@ class Worker:
             software="sluice/0.1", operator=self.user_agent, job=s.name)
         self.fetch_log = FetchLog(self.out_dir)
         flusher = asyncio.create_task(self._flush_loop())
+        flusher.add_done_callback(self._flusher_ended)
         try:
             async with self._fetcher:
                 await self._lease_loop()
@@ -159,10 +160,19 @@ class Worker:
                     await asyncio.gather(*self._tasks, return_exceptions=True)
         finally:
             self._stop.set()
-            await flusher
-            await self._flush()
-            self.archive.close()
-            self.fetch_log.close()
+            try:
+                await flusher  # re-raises what stopped it
+                await self._flush()
+            finally:
+                self.archive.close()
+                self.fetch_log.close()
+
+    def _flusher_ended(self, flusher: asyncio.Task[None]) -> None:
+        """A write-back loop that died of a bug stops the worker (loudly) instead of
+        leaving it to lease pages that are never written back."""
+        if not flusher.cancelled() and flusher.exception() is not None:
+            log.error("write-back failed; stopping this worker", exc_info=flusher.exception())
+            self.stop()
 
     async def _lease_loop(self) -> None:
         s = self.settings
@@ -332,7 +342,6 @@ class Worker:
         pending, self._fetched = self._fetched, []
         if not pending:
             return
-        fetch, priority = self.settings.fetch, self.settings.priority
         parsed = []
         for p in pending:
             try:
@@ -342,29 +351,40 @@ class Worker:
                 self._record(*self._internal_error(p.lease, exc))
                 continue
             parsed.append((p, page))
-        fingerprints = [simhash64(page.text) if page.text else None for _, page in parsed]
-        for (p, page), fingerprint in zip(parsed, fingerprints):
-            lease = p.lease
+        fingerprinted = []
+        for p, page in parsed:
             try:
-                outlinks = [(ln.url, ln.anchor) for ln in page.links]
-                ref = self._archive(lease, p.resp, outlinks, p.fetched_at)
-            except Exception as exc:  # a full disk, say: fetch it again later
-                self._record(*self._internal_error(lease, exc))
+                fingerprint = simhash64(page.text) if page.text else None
+            except Exception as exc:  # a bug must not stop the batch
+                self._record(*self._internal_error(p.lease, exc))
                 continue
-            if fetch.follow_nofollow:
-                follow = outlinks
-            elif page.meta_nofollow:
-                follow = []
-            else:
-                follow = [(ln.url, ln.anchor) for ln in page.links if not ln.nofollow]
-            links = distribute(lease.url, lease.cash, lease.depth, follow, priority)
-            if self._fetched_urls:
-                own = origin_of(lease.url) + "/"
-                done = self._fetched_urls
-                links = [c for c in links if c.url not in done or not c.url.startswith(own)]
-            entry = self._entry(lease, Outcome.FETCHED, p.reason, p.resp, p.fetched_at,
-                                simhash=fingerprint, **ref)
-            self._record(Finished(p.base, links, simhash=fingerprint), entry)
+            fingerprinted.append((p, page, fingerprint))
+        for p, page, fingerprint in fingerprinted:
+            try:
+                self._record(*self._finish_page(p, page, fingerprint))
+            except Exception as exc:  # a full disk, say: fetch it again later
+                self._record(*self._internal_error(p.lease, exc))
+
+    def _finish_page(self, p: FetchedPage, page: ParsedPage,
+                     fingerprint: int | None) -> tuple[Finished, FetchEntry]:
+        """Archive one parsed page and hand its cash on to the links it follows."""
+        fetch, lease = self.settings.fetch, p.lease
+        outlinks = [(ln.url, ln.anchor) for ln in page.links]
+        ref = self._archive(lease, p.resp, outlinks, p.fetched_at)
+        if fetch.follow_nofollow:
+            follow = outlinks
+        elif page.meta_nofollow:
+            follow = []
+        else:
+            follow = [(ln.url, ln.anchor) for ln in page.links if not ln.nofollow]
+        links = distribute(lease.url, lease.cash, lease.depth, follow, self.settings.priority)
+        if self._fetched_urls:
+            own = origin_of(lease.url) + "/"
+            done = self._fetched_urls
+            links = [c for c in links if c.url not in done or not c.url.startswith(own)]
+        entry = self._entry(lease, Outcome.FETCHED, p.reason, p.resp, p.fetched_at,
+                            simhash=fingerprint, **ref)
+        return Finished(p.base, links, simhash=fingerprint), entry
 
     def _archive(self, lease: Lease, resp: Response, outlinks: list[tuple[str, str]] | None,
                  at: datetime) -> dict[str, Any]:
