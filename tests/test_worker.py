@@ -180,3 +180,17 @@ async def test_a_broken_write_back_stops_the_worker_loudly(
     with pytest.raises(RuntimeError, match="a bug in the write-back"):
         await asyncio.wait_for(run_site(tmp_path, redis_server.url, pages), 20)
     assert time.monotonic() - started < 10  # it stopped at once, not at the time-out
+
+
+async def test_a_crawl_on_the_cluster(tmp_path: Path, redis_cluster: Any) -> None:
+    # The whole worker (robots cache, budget, near-duplicate index, admit, lease,
+    # complete) on a 3-master Redis Cluster: every page once, twins caught.
+    url = redis_cluster.url.replace("redis://", "redis+cluster://")
+    children = [f"/c{i}.html" for i in range(12)]
+    pages: dict[str, Any] = {"/": page("home " * 50, children)}
+    for i, child in enumerate(children):
+        pages[child] = page(TEXT if i < 2 else f"child {i} " * 40, ["/"])
+    requests, log = await run_site(tmp_path, url, pages)
+    assert sorted(requests) == sorted(["/robots.txt", "/", *children])
+    assert sum(e["outcome"] == "fetched" for e in log) == len(children) + 1
+    assert [e["reason"] for e in log].count("near_duplicate") == 1  # c0 and c1 are twins
