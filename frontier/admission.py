@@ -17,6 +17,7 @@ from frontier.store import FrontierStore, PartitionBatch, QueuedUrl
 from frontier.urls import Scope, canonicalize, fingerprint, host_of, politeness_key
 
 HOST_CACHE_SIZE = 100_000  # hosts whose politeness key and partition are remembered
+URL_MEMO_SIZE = 1 << 16  # offered URLs whose canonical form and fingerprint are remembered
 RESOLVE_CONCURRENCY = 32  # address lookups at once, for the 'ip' politeness key
 
 Resolver = Callable[[str], Awaitable[str | None]]
@@ -53,24 +54,30 @@ class Admission:
         if self.key_mode == "ip" and resolver is None:
             raise ConfigError("politeness.key = 'ip' needs a resolver")
         self._places: dict[str, tuple[str, int]] = {}  # host -> (politeness key, partition)
+        # offered URL -> (canonical URL, host, fingerprint) or the reason it is refused;
+        # a crawl offers each URL many times (once per link to it)
+        self._facts: dict[str, tuple[str, str, int] | str] = {}
 
     def prepare(self, candidates: Iterable[Candidate]) -> dict[int, PartitionBatch]:
         """Group candidates by partition and host; refusals keep their reason."""
         batches: dict[int, PartitionBatch] = {}
-        parts, max_length, schemes = self.partitions, self.max_length, self.schemes
+        parts, max_length = self.partitions, self.max_length
         places = self._places
         check = self.scope.check
         key_mode = self.key_mode
+        facts = self._facts
         for c in candidates:
-            try:
-                url = canonicalize(c.url, max_length=max_length, schemes=schemes)
-            except UrlError as exc:
+            fact = facts.get(c.url)
+            if fact is None:
+                if len(facts) >= URL_MEMO_SIZE:
+                    facts.clear()
+                fact = facts[c.url] = self._url_facts(c.url)
+            if type(fact) is str:  # the reason the URL was refused
                 raw = c.url[: max_length * 2]
                 p = partition_of(raw, parts)
-                batches.setdefault(p, PartitionBatch()).refused.append(
-                    (fingerprint(raw), f"url_{exc.reason}"))
+                batches.setdefault(p, PartitionBatch()).refused.append((fingerprint(raw), fact))
                 continue
-            host = host_of(url)
+            url, host, fp = fact
             place = places.get(host)
             if place is None:
                 if len(places) > HOST_CACHE_SIZE:
@@ -82,12 +89,12 @@ class Admission:
                 batch = batches[place[1]] = PartitionBatch()
             reason = check(url, host, c.depth)
             if reason is not None:
-                batch.refused.append((fingerprint(url), reason))
+                batch.refused.append((fp, reason))
                 continue
             queue = batch.hosts.get(place[0])
             if queue is None:
                 queue = batch.hosts[place[0]] = []
-            queue.append(QueuedUrl(url, fingerprint(url), encode_score(c.cash, c.depth),
+            queue.append(QueuedUrl(url, fp, encode_score(c.cash, c.depth),
                                    encode_credit(c.credit)))
             if c.depth == 0:  # a seed, or where a seed redirects: the operator vouches
                 batch.seeded.add(place[0])
@@ -97,6 +104,14 @@ class Admission:
                 if source_key != place[0]:
                     batch.add_source(place[0], source_key)
         return batches
+
+    def _url_facts(self, raw: str) -> tuple[str, str, int] | str:
+        """(canonical URL, host, fingerprint) of an offered URL, or why it is refused."""
+        try:
+            url = canonicalize(raw, max_length=self.max_length, schemes=self.schemes)
+        except UrlError as exc:
+            return f"url_{exc.reason}"
+        return url, host_of(url), fingerprint(url)
 
     def _key(self, host: str) -> str:
         """The politeness key of a host (an unresolved host stands for itself)."""

@@ -4,6 +4,7 @@ from __future__ import annotations
 
 from dataclasses import dataclass, field
 from enum import StrEnum
+from typing import NamedTuple
 
 # A score packs an URL's cash (OPIC importance, in micro-units) and its link depth:
 # score = round(cash * CASH_SCALE) * DEPTH_SCALE + depth. Integer scores keep Redis
@@ -41,9 +42,12 @@ class Outcome(StrEnum):
 STATES = ("queued", "leased", "fetched", "failed", "excluded", "dead")
 
 
-@dataclass(frozen=True, slots=True)
-class Candidate:
-    """A URL offered to the frontier: a seed or a discovered link."""
+class Candidate(NamedTuple):
+    """A URL offered to the frontier: a seed or a discovered link.
+
+    A tuple, not a dataclass: a crawl makes one per discovered link, and a frozen
+    dataclass costs several times more to build.
+    """
 
     url: str
     depth: int = 0

@@ -29,6 +29,7 @@ splits cash so that OPIC converges to PageRank.
 
 from __future__ import annotations
 
+import functools
 import re
 from collections.abc import Callable, Iterable, Sequence
 from dataclasses import dataclass, field
@@ -44,6 +45,8 @@ URL_LENGTH = "url_length"
 SESSION_QUERY = "session_query"
 DATE_QUERY = "date_query"
 DATE_PATH = "date_path"
+
+LINK_MEMO_SIZE = 1 << 16  # link targets whose host and trap signs are remembered
 
 SESSION_PARAMS = frozenset({
     "sid", "sess", "session", "sessionid", "session_id", "jsessionid", "phpsessid",
@@ -105,12 +108,16 @@ def _ends_in_date(segments: Sequence[str]) -> bool:
 
 def trap_signs(url: str, settings: PrioritySettings) -> list[str]:
     """The trap signs of ``url``, each one multiplies its cash by ``trap_penalty``."""
+    return _signs(url, settings.trap_depth, settings.trap_length)
+
+
+def _signs(url: str, trap_depth: int, trap_length: int) -> list[str]:
     signs: list[str] = []
     path, query = _path_and_query(url)
     segments = [s for s in path.split("/") if s]
-    if len(segments) > settings.trap_depth:
+    if len(segments) > trap_depth:
         signs.append(PATH_DEPTH)
-    if len(url) > settings.trap_length:
+    if len(url) > trap_length:
         signs.append(URL_LENGTH)
     words = [s for s in segments if not s.isdigit()]  # /2024/01/01 repeats nothing
     if len(set(words)) < len(words):
@@ -140,6 +147,16 @@ def trap_factor(url: str, settings: PrioritySettings) -> float:
     return float(settings.trap_penalty ** len(signs)) if signs else 1.0
 
 
+@functools.lru_cache(maxsize=LINK_MEMO_SIZE)
+def _link_facts(url: str, trap_depth: int, trap_length: int) -> tuple[str, int]:
+    """(host, number of trap signs) of a link target.
+
+    A crawl meets each URL in many links (about ten times over in the benchmark crawl),
+    so the answers are remembered.
+    """
+    return url_host(url), len(_signs(url, trap_depth, trap_length))
+
+
 def link_weights(
     source_url: str, links: Iterable[str], settings: PrioritySettings
 ) -> dict[str, float]:
@@ -157,17 +174,27 @@ def link_weights(
 def _shares(
     source_url: str, cash: float, links: Iterable[str], settings: PrioritySettings
 ) -> list[tuple[str, float, float]]:
-    """(url, share, trap factor) per distinct out-link; shares carry the penalties."""
-    weights = link_weights(source_url, links, settings)
-    total = sum(weights.values())
+    """(url, share, trap factor) per distinct out-link; shares carry the penalties.
+
+    Same weights as :func:`link_weights` and factors as :func:`trap_factor`, from the
+    remembered facts of each link.
+    """
+    source = url_host(source_url)
+    cross, penalty = settings.cross_host_weight, settings.trap_penalty
+    depth, length = settings.trap_depth, settings.trap_length
+    found: dict[str, tuple[float, float]] = {}  # url -> (weight, trap factor)
+    total = 0.0
+    for url in links:
+        if url == source_url or url in found:
+            continue
+        host, signs = _link_facts(url, depth, length)
+        weight = 1.0 if host == source else cross
+        found[url] = (weight, float(penalty ** signs) if signs else 1.0)
+        total += weight
     if not total:
         return []
     spend = (1.0 - settings.jump_share) * cash / total
-    out = []
-    for url, w in weights.items():
-        factor = trap_factor(url, settings)
-        out.append((url, spend * w * factor, factor))
-    return out
+    return [(url, spend * w * factor, factor) for url, (w, factor) in found.items()]
 
 
 def split_cash(
