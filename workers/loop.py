@@ -134,7 +134,11 @@ class Worker:
         self._tasks: set[asyncio.Task[None]] = set()
         self._stop = asyncio.Event()
         self._to_flush = asyncio.Event()  # set when a lease finished
-        self._flushed = asyncio.Event()  # set when hosts were released back to the frontier
+        # set when hosts were released back to the frontier or a chunk of slots came free
+        self._lease_wanted = asyncio.Event()
+        s = self.settings
+        # lease in chunks: a call per freed slot would cost a round trip per page
+        self._lease_chunk = max(1, min(s.lease.batch, s.fetch.concurrency) // LEASE_CHUNK_DIVISOR)
         self.pages = 0
         self.archive: WarcArchive | None = None
         self.fetch_log: FetchLog | None = None
@@ -180,9 +184,7 @@ class Worker:
         while not self._stop.is_set():
             free = s.fetch.concurrency - len(self._tasks)
             leases: list[Lease] = []
-            # lease in chunks: a call per freed slot would cost a round trip per page
-            chunk = max(1, min(s.lease.batch, s.fetch.concurrency) // LEASE_CHUNK_DIVISOR)
-            if free >= chunk or (free > 0 and not self._tasks):
+            if free >= self._lease_chunk or (free > 0 and not self._tasks):
                 try:
                     leases = await self._lease(min(free, s.lease.batch))
                 except StoreUnavailable as exc:
@@ -200,10 +202,11 @@ class Worker:
             if self.drain and not self._tasks and not self._finished and not self._fetched:
                 if await self._frontier_done():
                     return
-            # wait until completions released hosts, or a host's time may have come
-            self._flushed.clear()
+            # wait until completions released hosts, slots came free, or a host's time may
+            # have come
+            self._lease_wanted.clear()
             try:
-                await asyncio.wait_for(self._flushed.wait(), idle)
+                await asyncio.wait_for(self._lease_wanted.wait(), idle)
             except TimeoutError:
                 idle = min(IDLE_SLEEP_MAX_S, idle * 2)
 
@@ -238,6 +241,9 @@ class Worker:
         else:
             self._record(*result)
         self._to_flush.set()
+        # this task still counts as running until it returns
+        if self.settings.fetch.concurrency - len(self._tasks) + 1 >= self._lease_chunk:
+            self._lease_wanted.set()
 
     def _internal_error(self, lease: Lease, exc: Exception) -> tuple[Finished, None]:
         log.error("unexpected error on %s", lease.url, exc_info=exc)
@@ -427,7 +433,7 @@ class Worker:
                 await asyncio.sleep(FLUSH_LINGER_S)
                 self._to_flush.clear()
                 await self._flush()
-                self._flushed.set()
+                self._lease_wanted.set()
         finally:
             stop.cancel()
 
