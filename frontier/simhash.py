@@ -44,6 +44,11 @@ _BYTES = FP_BITS // 8
 _HASH_BYTES = 16
 """Length of mmh3.hash_bytes output (x64 128-bit MurmurHash3)."""
 _WORD = re.compile(r"\w+")
+# For ASCII text, \w is [A-Za-z0-9_]: a byte table that lower-cases letters and turns every
+# other byte into a space finds the same words as _WORD on the lower-cased text, faster.
+_ASCII_WORDS = bytes(
+    c + 32 if 65 <= c <= 90 else c if (97 <= c <= 122 or 48 <= c <= 57 or c == 95) else 32
+    for c in range(256))
 _hash128 = (mmh3.hash_bytes if HASH_SEED == 0  # mmh3's default seed: no keyword to pass
             else functools.partial(mmh3.hash_bytes, seed=HASH_SEED))
 """128-bit MurmurHash3 (x64) of a shingle, bytes little-endian."""
@@ -64,6 +69,14 @@ def shingles(text: str, width: int = SHINGLE_WORDS) -> list[str]:
     return list(map(" ".join, zip(*(words[i:] for i in range(width)))))
 
 
+def _ascii_shingles(text: str, width: int) -> list[bytes]:
+    """:func:`shingles` of an ASCII text, as the UTF-8 bytes mmh3 would hash."""
+    words = text.encode("ascii").translate(_ASCII_WORDS).split()
+    if len(words) <= width:
+        return [b" ".join(words)] if words else []
+    return list(map(b" ".join, zip(*(words[i:] for i in range(width)))))
+
+
 def simhash64(text: str, *, shingle_words: int = SHINGLE_WORDS) -> int:
     """Unsigned 64-bit SimHash of ``text`` over word shingles (0 for no words).
 
@@ -73,7 +86,8 @@ def simhash64(text: str, *, shingle_words: int = SHINGLE_WORDS) -> int:
     per 1,500 words, so a text at the parser's 200,000-character cap takes
     tens of milliseconds (worth an executor if the event loop must stay snappy).
     """
-    features = shingles(text, shingle_words)
+    features = _ascii_shingles(text, shingle_words) if text.isascii() else shingles(
+        text, shingle_words)
     if not features:
         return 0
     # mmh3.hash_bytes gives the 128-bit hash little-endian; its first 8 bytes

@@ -78,6 +78,15 @@ def test_simhash_matches_bitwise_definition(words: list[str], width: int) -> Non
     assert 0 <= fp < 1 << 64
 
 
+@given(text=st.text(alphabet=st.characters(max_codepoint=127), max_size=300),
+       width=st.integers(min_value=1, max_value=4))
+@settings(max_examples=300, deadline=None)
+def test_ascii_text_matches_bitwise_definition(text: str, width: int) -> None:
+    # ASCII text takes a faster word split; the oracle splits with the \w+ regex
+    # (Python re: \w on ASCII is [A-Za-z0-9_]). Any punctuation, digits, controls.
+    assert simhash64(text, shingle_words=width) == reference_simhash(text, width)
+
+
 def test_simhash_is_unsigned_and_covers_high_bit() -> None:
     # Unsigned 64-bit result: over many texts the top bit is set about half the time.
     rng = random.Random(11)
