@@ -47,7 +47,7 @@ class Admission:
         self.resolver = resolver
         self._address: dict[str, str] = {}  # host -> address, for the 'ip' politeness key
         s = store.settings
-        self.partitions = s.store.partitions
+        self.partitions = store.partitions
         self.max_length = s.scope.max_url_length
         self.schemes = frozenset(s.scope.schemes)
         self.key_mode = s.politeness.key

@@ -15,6 +15,8 @@ from dataclasses import dataclass
 from pathlib import Path
 from typing import Any, AsyncIterator
 
+from redis.asyncio.cluster import RedisCluster
+
 from frontier.admission import Admission, Resolver, scope_from_settings
 from frontier.embedded import EmbeddedRedis
 from frontier.exceptions import ConfigError, SluiceError
@@ -57,7 +59,7 @@ async def _client(settings: JobSettings) -> tuple[Any, EmbeddedRedis | None]:
 
 
 async def save_settings(client: Any, settings: JobSettings) -> None:
-    keys = Keys(settings.name, settings.store.partitions)
+    keys = Keys(settings.name, 1)  # the settings key does not depend on the layout
     async with redis_boundary("save job"):
         await client.set(keys.settings, json.dumps(settings.public_dict()))
         await client.sadd(Keys.job_index(), settings.name)
@@ -88,6 +90,9 @@ async def open_job(settings: JobSettings, *, stored: bool = False) -> AsyncItera
                 existing = await load_settings(client, settings.name)
             except ConfigError:
                 existing = None
+            settings = settings.laid_out(
+                cluster=isinstance(client, RedisCluster),
+                partitions=existing.store.partitions if existing is not None else None)
             if existing is not None and existing.store != settings.store:
                 raise ConfigError(
                     f"job {settings.name!r} exists with store layout {existing.store}; "

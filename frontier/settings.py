@@ -80,10 +80,17 @@ class LeaseSettings(_Part):
         "a partition only), 2.0 keeps importance order across partitions")
 
 
+SINGLE_SERVER_PARTITIONS = 4
+CLUSTER_PARTITIONS = 16
+
+
 class StoreSettings(_Part):
     """The Redis layout: fixed when the job is created."""
 
-    partitions: int = Field(default=16, ge=1, le=4096)
+    partitions: int | None = Field(
+        default=None, ge=1, le=4096,
+        description="none: chosen when the job is created, 4 on one Redis server (fewer script "
+        "calls a lease and an admit), 16 on a Cluster (spread over its masters)")
     hot_capacity: int = Field(default=128, ge=8, le=4096, description="URLs per host kept sorted")
     expected_urls: int = Field(default=2_000_000, ge=1000, description="sizes the URL-seen buckets")
     seen_bucket_entries: int = Field(default=2048, ge=64, le=8192)
@@ -180,6 +187,14 @@ class JobSettings(BaseSettings):
         file_secret_settings: PydanticBaseSettingsSource,
     ) -> tuple[PydanticBaseSettingsSource, ...]:
         return (init_settings, env_settings)
+
+    def laid_out(self, *, cluster: bool, partitions: int | None = None) -> JobSettings:
+        """These settings with the partition count decided: as set, else ``partitions``
+        (an existing job's), else the default for one server or a Cluster."""
+        if self.store.partitions is not None:
+            return self
+        count = partitions or (CLUSTER_PARTITIONS if cluster else SINGLE_SERVER_PARTITIONS)
+        return self.model_copy(update={"store": self.store.model_copy(update={"partitions": count})})
 
     def public_dict(self) -> dict[str, Any]:
         """The settings as JSON-ready data (stored with the job in Redis)."""

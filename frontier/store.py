@@ -17,6 +17,7 @@ from dataclasses import dataclass, field
 from typing import Any, NamedTuple
 
 from redis import exceptions as redis_errors
+from redis.asyncio.cluster import RedisCluster
 
 from frontier.exceptions import LeaseNotHeld, StoreError, StoreUnavailable
 from frontier.keys import Keys, PartitionKeys
@@ -100,6 +101,7 @@ def seen_buckets(settings: JobSettings) -> int:
     only bigger (about 50 bytes a URL instead of 8).
     """
     s = settings.store
+    assert s.partitions is not None, "decide the layout first (JobSettings.laid_out)"
     per_partition = min(s.expected_urls, s.expected_urls / s.partitions * PARTITION_SKEW)
     return max(1, math.ceil(per_partition / (s.seen_bucket_entries * BUCKET_FILL)))
 
@@ -124,12 +126,19 @@ class FrontierStore:
         clock: Callable[[], float] = time.time,
     ) -> None:
         self.redis = redis
+        settings = settings.laid_out(cluster=isinstance(redis, RedisCluster))
         self.settings = settings
-        self.keys = Keys(settings.name, settings.store.partitions)
+        self.keys = Keys(settings.name, self.partitions)
         self.clock = clock
         self.buckets = seen_buckets(settings)
         self.scripts = Scripts.register(redis)
         self._next_partition = 0
+
+    @property
+    def partitions(self) -> int:
+        """The job's partition count (decided when the store was made)."""
+        assert self.settings.store.partitions is not None
+        return self.settings.store.partitions
 
     # -- setup ---------------------------------------------------------------------------
 
@@ -206,7 +215,7 @@ class FrontierStore:
         asks the partitions that gave all they were asked for, if ``n`` is not reached.
         """
         t = self._now(now)
-        parts = list(range(self.settings.store.partitions))
+        parts = list(range(self.partitions))
         leases: list[Lease] = []
         async with redis_boundary("lease"):
             for _ in range(LEASE_ROUNDS):
@@ -351,7 +360,7 @@ class FrontierStore:
                 *(self.redis.hgetall(pk.counts) for pk in self.keys.parts),
                 *(self.redis.hgetall(pk.reasons) for pk in self.keys.parts),
             )
-        parts = self.settings.store.partitions
+        parts = self.partitions
         for row in rows[:parts]:
             for k, v in row.items():
                 name = k.decode() if isinstance(k, bytes) else k

@@ -10,8 +10,11 @@ from typing import Any
 import pytest
 
 from frontier.admission import Admission
-from frontier.exceptions import LeaseNotHeld, StoreError
+from frontier.exceptions import ConfigError, LeaseNotHeld, StoreError
+from frontier.job import load_settings as load_job_settings
+from frontier.job import open_job
 from frontier.model import Candidate, Completion, Outcome
+from frontier.settings import CLUSTER_PARTITIONS, SINGLE_SERVER_PARTITIONS, load_settings
 from frontier.store import FrontierStore
 from frontier.urls import Scope
 from tests.conftest import Clock, StoreFactory
@@ -220,3 +223,39 @@ async def test_politeness_by_ip_address_shares_one_queue(make_store: StoreFactor
     await store.complete_many([done(x) for x in first])
     (second,) = await store.lease(10)
     assert second.host == "127.0.0.1"
+
+
+# -- the layout: decided when a job is created, kept when it resumes ----------------------
+
+
+@pytest.mark.parametrize("kind", ["single", "cluster"])
+async def test_default_partitions_follow_the_server(kind: str, request: pytest.FixtureRequest) -> None:
+    # One server runs every script on one thread: fewer partitions, fewer calls. A Cluster
+    # spreads partitions over its masters, so it gets more of them.
+    if kind == "single":
+        url = request.getfixturevalue("redis_server").url
+    else:
+        url = request.getfixturevalue("redis_cluster").url.replace("redis://", "redis+cluster://")
+    settings = load_settings(None, {"name": f"layout-{kind}", "redis": {"url": url}})
+    assert settings.store.partitions is None
+    async with open_job(settings) as job:
+        expected = SINGLE_SERVER_PARTITIONS if kind == "single" else CLUSTER_PARTITIONS
+        assert job.store.partitions == expected == len(job.store.keys.parts)
+        assert job.admission.partitions == expected
+        stored = await load_job_settings(job.store.redis, settings.name)
+        assert stored.store.partitions == expected  # workers read the decided layout
+
+
+async def test_resumed_job_keeps_its_layout(redis_server: Any) -> None:
+    def job_settings(**store: int) -> Any:
+        return load_settings(None, {"name": "layout-resume", "store": store,
+                                    "redis": {"url": redis_server.url}})
+
+    async with open_job(job_settings(partitions=16)) as job:  # made with an older default
+        await admit(job.store, "http://a.test/1", "http://b.test/2")
+    async with open_job(job_settings()) as job:  # no partitions given: the job's own
+        assert job.store.partitions == 16
+        assert (await job.store.counts()).queued == 2
+    with pytest.raises(ConfigError, match="fixed when a job is created"):
+        async with open_job(job_settings(partitions=2)):
+            pass
