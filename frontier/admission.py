@@ -87,17 +87,19 @@ class Admission:
             batch = batches.get(place[1])
             if batch is None:
                 batch = batches[place[1]] = PartitionBatch()
-            reason = check(url, host, c.depth)
+            fetched = c.fetched
+            reason = None if fetched else check(url, host, c.depth)
             if reason is not None:
                 batch.refused.append((fp, reason))
                 continue
             queue = batch.hosts.get(place[0])
             if queue is None:
                 queue = batch.hosts[place[0]] = []
-            queue.append(QueuedUrl(url, fp, encode_score(c.cash, c.depth),
-                                   encode_credit(c.credit)))
-            if c.depth == 0:  # a seed, or where a seed redirects: the operator vouches
-                batch.seeded.add(place[0])
+            if not fetched:
+                queue.append(QueuedUrl(url, fp, encode_score(c.cash, c.depth),
+                                       encode_credit(c.credit)))
+                if c.depth == 0:  # a seed, or where a seed redirects: the operator vouches
+                    batch.seeded.add(place[0])
             source = c.source_host
             if source is not None and source != host:
                 source_key = self._key(source) if key_mode != "host" else source

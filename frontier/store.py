@@ -87,6 +87,7 @@ class PartitionBatch:
             found.add(source)
 
     def __len__(self) -> int:
+        """URLs in the batch (a host group may carry only linking hosts)."""
         return sum(len(v) for v in self.hosts.values()) + len(self.refused)
 
 
@@ -165,7 +166,7 @@ class FrontierStore:
     ) -> AdmitResult:
         """Run the admit script once per partition, all in one go."""
         t = self._now(now)
-        calls = [self._admit_call(p, b, t) for p, b in batches.items() if len(b)]
+        calls = [self._admit_call(p, b, t) for p, b in batches.items() if b.hosts or b.refused]
         total = AdmitResult()
         async with redis_boundary("admit"):
             for new, credited, excluded, dups in await run_many(self.redis, calls):

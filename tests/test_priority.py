@@ -252,6 +252,29 @@ async def test_host_budget_grows_with_distinct_linking_hosts(make_store: StoreFa
     assert counts.balanced
 
 
+async def test_a_link_to_a_fetched_page_still_counts_its_linking_host(
+        make_store: StoreFactory) -> None:
+    # A worker offers a link to a page it already fetched as a link between hosts only:
+    # the URL is not looked up again, but the target host gains the linking host (IRLbot,
+    # Lee et al. 2008: the budget counts distinct hosts linking in, whatever the page).
+    store = make_store(budget={"max_pages_per_host": None},
+                       priority={"host_budget_base": 2, "host_budget_per_linking_host": 3})
+    adm = admission(store)
+    res = await adm.admit(candidates("t.test", 6, "t.test"))
+    assert (res.new, res.excluded) == (2, 4)
+    fetched = Candidate("http://t.test/0", depth=1, source_host="x.test", fetched=True)
+    res = await adm.admit([fetched])
+    assert (res.new, res.credited, res.excluded, res.duplicates) == (0, 0, 0, 0)
+    counts = await store.counts()
+    assert counts.queued == 2 and counts.balanced  # nothing queued, nothing counted
+    res = await adm.admit(candidates("t.test", 6, "t.test"))  # within the host: no growth
+    assert res.new == 3  # 2 + 3 x 1 linking host: x.test counted
+    out_of_scope = Candidate("http://elsewhere.test/", depth=1, source_host="x.test", fetched=True)
+    scoped = Admission(store, Scope(allow=["t.test"]))
+    res = await scoped.admit([out_of_scope])  # fetched: scope was decided when it was queued
+    assert (res.new, res.excluded, res.duplicates) == (0, 0, 0)
+
+
 async def test_absolute_budget_caps_the_earned_one(make_store: StoreFactory) -> None:
     store = make_store(budget={"max_pages_per_host": 4},
                        priority={"host_budget_base": 2, "host_budget_per_linking_host": 3})

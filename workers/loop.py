@@ -127,9 +127,9 @@ class Worker:
             lock_key_for_host=lambda h: store.keys.part_for(h).robots_lock(h))
         self._finished: list[Finished] = []
         self._fetched: list[FetchedPage] = []  # HTML pages not yet parsed and archived
-        # URLs this worker fetched (completion accepted). A link to one from its own host
-        # changes nothing in the frontier (no credit for a URL no longer queued, no new
-        # linking host), so it is not sent; cleared when full.
+        # URLs this worker fetched (completion accepted): links to them are not offered as
+        # URLs again (no credit for a URL no longer queued); see _known_links. Cleared
+        # when full.
         self._fetched_urls: set[str] = set()
         self._tasks: set[asyncio.Task[None]] = set()
         self._stop = asyncio.Event()
@@ -385,12 +385,25 @@ class Worker:
             follow = [(ln.url, ln.anchor) for ln in page.links if not ln.nofollow]
         links = distribute(lease.url, lease.cash, lease.depth, follow, self.settings.priority)
         if self._fetched_urls:
-            own = origin_of(lease.url) + "/"
-            done = self._fetched_urls
-            links = [c for c in links if c.url not in done or not c.url.startswith(own)]
+            links = self._known_links(lease.url, links)
         entry = self._entry(lease, Outcome.FETCHED, p.reason, p.resp, p.fetched_at,
                             simhash=fingerprint, **ref)
         return Finished(p.base, links, simhash=fingerprint), entry
+
+    def _known_links(self, page_url: str, links: list[Candidate]) -> list[Candidate]:
+        """Links to pages this worker fetched: one from the same host changes nothing in
+        the frontier and is dropped; one from another host still counts for the target
+        host's linking hosts, so it goes as a link between hosts only."""
+        own = origin_of(page_url) + "/"
+        done = self._fetched_urls
+        kept = []
+        for c in links:
+            if c.url in done:
+                if c.url.startswith(own):
+                    continue
+                c = c._replace(fetched=True)
+            kept.append(c)
+        return kept
 
     def _archive(self, lease: Lease, resp: Response, outlinks: list[tuple[str, str]] | None,
                  at: datetime) -> dict[str, Any]:
