@@ -40,7 +40,8 @@ log = logging.getLogger(__name__)
 HTML_TYPES = ("text/html", "application/xhtml+xml")
 ROBOTS_REDIRECTS = 5  # RFC 9309 s.2.3.1.2: follow at least five redirects
 ROBOTS_MAX_BYTES = 512 * 1024  # RFC 9309 s.2.5: parse at least 500 KiB
-FLUSH_LINGER_S = 0.03  # gather finished leases this long before writing them back
+FLUSH_LINGER_S = 0.03  # gather finished leases this long before writing them back ...
+LINGER_BELOW = 2  # ... unless fewer than 1/LINGER_BELOW of the fetch slots are busy
 LEASE_CHUNK_DIVISOR = 4  # lease once a quarter of a batch of slots is free
 IDLE_SLEEP_MIN_S = 0.01
 IDLE_SLEEP_MAX_S = 0.25  # a worker with nothing to lease looks again at least this often
@@ -443,7 +444,8 @@ class Worker:
                 wanted = asyncio.create_task(self._to_flush.wait())
                 await asyncio.wait([wanted, stop], return_when=asyncio.FIRST_COMPLETED)
                 wanted.cancel()
-                await asyncio.sleep(FLUSH_LINGER_S)
+                if len(self._tasks) * LINGER_BELOW >= self.settings.fetch.concurrency:
+                    await asyncio.sleep(FLUSH_LINGER_S)  # busy: gather a batch first
                 self._to_flush.clear()
                 await self._flush()
                 self._lease_wanted.set()
