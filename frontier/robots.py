@@ -207,9 +207,9 @@ class RobotsRules:
 
     def allowed(self, url: str) -> bool:
         """May ``url`` (absolute, on this host) be fetched? ``/robots.txt`` always may."""
-        if urlsplit(url).path == ROBOTS_PATH:  # RFC 9309 s.2.2.2: implicitly allowed
-            return True
         if self.state == STATE_ALLOW_ALL:
+            return True
+        if urlsplit(url).path == ROBOTS_PATH:  # RFC 9309 s.2.2.2: implicitly allowed
             return True
         if self.state == STATE_DISALLOW_ALL or self._parser is None:
             return False

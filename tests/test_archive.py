@@ -482,6 +482,17 @@ def test_fetch_log_lines_and_fields(tmp_path: Path) -> None:
     assert second["status"] is None and second["simhash"] is None
 
 
+def test_fetch_log_keeps_a_line_with_a_lone_surrogate(tmp_path: Path) -> None:
+    # A reason built from hostile text may carry a lone surrogate, which UTF-8 cannot
+    # encode (RFC 3629 s.3); the line is still written, with the text escaped (RFC 8259 s.7).
+    with FetchLog(tmp_path) as log:
+        log.write(entry(0, reason="bad_\ud800_text"))
+        log.write(entry(1))
+    first, second = read_lines(tmp_path / "fetches.jsonl")
+    assert first["reason"] == "bad_\ud800_text"
+    assert second["url"] == entry(1).url
+
+
 def test_fetch_log_lines_reach_the_file_on_flush(tmp_path: Path) -> None:
     # Lines reach the file at each flush, before close (crash safety per batch).
     log = FetchLog(tmp_path)

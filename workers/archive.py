@@ -46,6 +46,7 @@ from datetime import UTC, datetime
 from pathlib import Path
 from typing import IO, Any
 
+import orjson
 from isal import isal_zlib
 from warcio.recordloader import ArcWarcRecordLoader
 from warcio.statusandheaders import StatusAndHeaders
@@ -483,11 +484,9 @@ class FetchLog:
         self.path = Path(out_dir) / FETCH_LOG_NAME
         self.path.parent.mkdir(parents=True, exist_ok=True)
         torn = self._ends_mid_line(self.path)
-        self._out: IO[str] | None = open(  # noqa: SIM115 - kept open across writes
-            self.path, "a", encoding="utf-8", newline="\n"
-        )
+        self._out: IO[bytes] | None = open(self.path, "ab")  # noqa: SIM115 - kept open
         if torn:
-            self._out.write("\n")
+            self._out.write(b"\n")
 
     @staticmethod
     def _ends_mid_line(path: Path) -> bool:
@@ -505,9 +504,12 @@ class FetchLog:
         """Append one line for ``entry``."""
         if self._out is None:
             raise ValueError("fetch log is closed")
-        line = json.dumps(entry.to_json(), ensure_ascii=False, separators=(",", ":"),
-                          allow_nan=False)
-        self._out.write(line + "\n")
+        data = entry.to_json()
+        try:
+            line = orjson.dumps(data, option=orjson.OPT_APPEND_NEWLINE)
+        except orjson.JSONEncodeError:  # a lone surrogate in some text: write it escaped
+            line = json.dumps(data, separators=(",", ":")).encode("ascii") + b"\n"
+        self._out.write(line)
 
     def flush(self) -> None:
         """Hand the buffered lines to the operating system."""

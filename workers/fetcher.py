@@ -35,13 +35,15 @@ class Response:
     remote_ip: str | None = None
     truncated: str | None = None  # WARC-Truncated reason when the body was cut
     request_headers: list[tuple[str, str]] = field(default_factory=list)
+    _by_name: dict[str, str] | None = field(default=None, repr=False, compare=False)
 
     def header(self, name: str) -> str | None:
-        lower = name.lower()
-        for k, v in self.headers:
-            if k.lower() == lower:
-                return v
-        return None
+        """The first value of header ``name`` (any case), or None."""
+        if self._by_name is None:
+            self._by_name = {}
+            for k, v in self.headers:
+                self._by_name.setdefault(k.lower(), v)
+        return self._by_name.get(name.lower())
 
     @property
     def content_type(self) -> str:

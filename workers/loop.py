@@ -399,10 +399,11 @@ class Worker:
         done = self._fetched_urls
         kept = []
         for c in links:
-            if c.url in done:
-                if c.url.startswith(own):
+            url = c.url
+            if url in done:
+                if url.startswith(own):
                     continue
-                c = c._replace(fetched=True)
+                c = Candidate(url, c.depth, c.cash, c.credit, c.source_host, True)  # fetched
             kept.append(c)
         return kept
 
