@@ -42,6 +42,7 @@ from redis.exceptions import RedisError
 from redis.exceptions import TimeoutError as RedisTimeoutError
 
 from frontier.exceptions import ConfigError, SluiceError, StoreError, StoreUnavailable
+from frontier.scripts import CallBatcher
 
 log = logging.getLogger(__name__)
 
@@ -60,6 +61,7 @@ DEFAULT_LRU_ENTRIES = 10_000
 COMPRESS_MIN_BYTES = 2048  # bodies at least this long are stored zlib-compressed
 ZLIB_LEVEL = 6
 LOCK_TTL_S = 90.0  # longer than a whole robots fetch with its redirects
+WRITE_LINGER_S = 0.02  # a fetched entry waits this long for others to share its round trip
 LOCK_WAIT_S = 30.0  # then fetch anyway rather than stall behind a dead lock holder
 POLL_FIRST_S = 0.02
 POLL_MAX_S = 0.5
@@ -294,6 +296,10 @@ class RobotsCache:
         self._sleep = sleep
         self._read_or_lock = redis.register_script(_READ_OR_LOCK)
         self._store_and_unlock = redis.register_script(_STORE_AND_UNLOCK)
+        # hosts met together (a lease brings several new ones) share a round trip; an
+        # entry waits a little for company on its way out: only its own host waits on it
+        self._reads = CallBatcher(redis)
+        self._writes = CallBatcher(redis, linger_s=WRITE_LINGER_S)
         self._lru: OrderedDict[str, tuple[RobotsRules, float]] = OrderedDict()
         self._inflight: dict[str, asyncio.Future[RobotsRules]] = {}
 
@@ -321,8 +327,8 @@ class RobotsCache:
         key, lock_key = self._key(origin), self._lock_key(origin)
         token = secrets.token_hex(16)
         try:
-            raw, locked = await self._read_or_lock(
-                keys=[key, lock_key], args=[token, self._lock_ttl_ms])
+            raw, locked = await self._reads.run(
+                self._read_or_lock, [key, lock_key], [token, self._lock_ttl_ms])
         except RedisError as exc:
             raise _translate(exc) from exc
         entry = self._parse(key, raw)
@@ -402,8 +408,8 @@ class RobotsCache:
         }
         pairs = [item for field_value in mapping.items() for item in field_value]
         try:
-            await self._store_and_unlock(
-                keys=[key, lock_key], args=[token, int(ttl_s * MS_PER_S), *pairs])
+            await self._writes.run(
+                self._store_and_unlock, [key, lock_key], [token, int(ttl_s * MS_PER_S), *pairs])
         except RedisError as exc:
             raise _translate(exc) from exc
 

@@ -15,7 +15,7 @@ from typing import Any
 
 from redis.asyncio.cluster import RedisCluster
 from redis.commands.core import AsyncScript
-from redis.exceptions import NoScriptError
+from redis.exceptions import NoScriptError, RedisError
 
 ScriptCall = tuple[AsyncScript, list[Any], list[Any]]
 
@@ -56,17 +56,74 @@ async def run_many(client: Any, calls: list[ScriptCall]) -> list[Any]:
     A call refused with NOSCRIPT (a flushed script cache) did not run: it is run again
     through its script object, which loads the script first. Other errors are raised.
     """
+    results = await run_settled(client, calls)
+    for res in results:
+        if isinstance(res, Exception):
+            raise res
+    return results
+
+
+async def run_settled(client: Any, calls: list[ScriptCall]) -> list[Any]:
+    """Like :func:`run_many`, but a call's error takes its place in the results."""
     if not calls:
         return []
     if isinstance(client, RedisCluster):
-        return list(await asyncio.gather(*(script(keys, args) for script, keys, args in calls)))
+        return list(await asyncio.gather(*(script(keys, args) for script, keys, args in calls),
+                                         return_exceptions=True))
     pipe = client.pipeline(transaction=False)
     for script, keys, args in calls:
         pipe.evalsha(script.sha, len(keys), *keys, *args)
     results = list(await pipe.execute(raise_on_error=False))
     for i, (res, (script, keys, args)) in enumerate(zip(results, calls)):
         if isinstance(res, NoScriptError):
-            results[i] = await script(keys, args)
-        elif isinstance(res, Exception):
-            raise res
+            try:
+                results[i] = await script(keys, args)
+            except RedisError as exc:
+                results[i] = exc
     return results
+
+
+class CallBatcher:
+    """Script calls made close together go to Redis in one round trip.
+
+    A call waits at most ``linger_s`` for company (0: until the event loop's current turn
+    ends, which gathers the calls of tasks started together). Each caller gets its own
+    result or error; a connection error reaches every caller of the batch.
+    """
+
+    def __init__(self, client: Any, linger_s: float = 0.0) -> None:
+        self._client = client
+        self._linger_s = linger_s
+        self._queue: list[tuple[ScriptCall, asyncio.Future[Any]]] = []
+        self._sending: set[asyncio.Task[None]] = set()
+
+    def run(self, script: AsyncScript, keys: list[Any], args: list[Any]) -> asyncio.Future[Any]:
+        """Queue one call; await the returned future for its result."""
+        loop = asyncio.get_running_loop()
+        if not self._queue:
+            if self._linger_s > 0:
+                loop.call_later(self._linger_s, self._send)
+            else:
+                loop.call_soon(self._send)
+        future: asyncio.Future[Any] = loop.create_future()
+        self._queue.append(((script, keys, args), future))
+        return future
+
+    def _send(self) -> None:
+        batch, self._queue = self._queue, []
+        task = asyncio.ensure_future(self._deliver(batch))
+        self._sending.add(task)
+        task.add_done_callback(self._sending.discard)
+
+    async def _deliver(self, batch: list[tuple[ScriptCall, asyncio.Future[Any]]]) -> None:
+        try:
+            results = await run_settled(self._client, [call for call, _ in batch])
+        except Exception as exc:  # the round trip itself failed: every caller hears it
+            results = [exc] * len(batch)
+        for (_, future), res in zip(batch, results):
+            if future.done():  # its caller gave up (cancelled)
+                continue
+            if isinstance(res, BaseException):
+                future.set_exception(res)
+            else:
+                future.set_result(res)

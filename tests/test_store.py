@@ -259,3 +259,44 @@ async def test_resumed_job_keeps_its_layout(redis_server: Any) -> None:
     with pytest.raises(ConfigError, match="fixed when a job is created"):
         async with open_job(job_settings(partitions=2)):
             pass
+
+
+# -- script calls that share a round trip -------------------------------------------------
+
+
+async def test_calls_made_together_share_one_round_trip(single_client: Any, monkeypatch: Any) -> None:
+    import asyncio
+
+    from redis.exceptions import ResponseError
+
+    from frontier.scripts import CallBatcher
+
+    echo = single_client.register_script("return ARGV[1]")
+    fail = single_client.register_script("return redis.error_reply('refused ' .. ARGV[1])")
+    pipelines = 0
+    make_pipeline = single_client.pipeline
+
+    def counting(*args: Any, **kwargs: Any) -> Any:
+        nonlocal pipelines
+        pipelines += 1
+        return make_pipeline(*args, **kwargs)
+
+    monkeypatch.setattr(single_client, "pipeline", counting)
+    batcher = CallBatcher(single_client)
+
+    async def one(i: int) -> Any:
+        return await batcher.run(fail if i == 2 else echo, [], [i])
+
+    results = await asyncio.gather(*(one(i) for i in range(5)), return_exceptions=True)
+    assert pipelines == 1  # five callers, one round trip
+    assert [r for i, r in enumerate(results) if i != 2] == [b"0", b"1", b"3", b"4"]
+    assert isinstance(results[2], ResponseError) and "refused 2" in str(results[2])
+    assert await batcher.run(echo, [], ["later"]) == b"later"  # a later call: its own trip
+    assert pipelines == 2
+
+    lingering = CallBatcher(single_client, linger_s=0.05)
+    first = lingering.run(echo, [], ["a"])
+    await asyncio.sleep(0.01)  # within the linger: still shares the trip
+    second = lingering.run(echo, [], ["b"])
+    assert await asyncio.gather(first, second) == [b"a", b"b"]
+    assert pipelines == 3
