@@ -171,10 +171,10 @@ def link_weights(
     return weights
 
 
-def _shares(
-    source_url: str, cash: float, links: Iterable[str], settings: PrioritySettings
-) -> list[tuple[str, float, float]]:
-    """(url, share, trap factor) per distinct out-link; shares carry the penalties.
+def _weights(
+    source_url: str, links: Iterable[str], settings: PrioritySettings
+) -> tuple[dict[str, tuple[float, float]], float]:
+    """(weight, trap factor) per distinct out-link, and the weights' sum.
 
     Same weights as :func:`link_weights` and factors as :func:`trap_factor`, from the
     remembered facts of each link.
@@ -182,7 +182,7 @@ def _shares(
     source = url_host(source_url)
     cross, penalty = settings.cross_host_weight, settings.trap_penalty
     depth, length = settings.trap_depth, settings.trap_length
-    found: dict[str, tuple[float, float]] = {}  # url -> (weight, trap factor)
+    found: dict[str, tuple[float, float]] = {}
     total = 0.0
     for url in links:
         if url == source_url or url in found:
@@ -191,6 +191,14 @@ def _shares(
         weight = 1.0 if host == source else cross
         found[url] = (weight, float(penalty ** signs) if signs else 1.0)
         total += weight
+    return found, total
+
+
+def _shares(
+    source_url: str, cash: float, links: Iterable[str], settings: PrioritySettings
+) -> list[tuple[str, float, float]]:
+    """(url, share, trap factor) per distinct out-link; shares carry the penalties."""
+    found, total = _weights(source_url, links, settings)
     if not total:
         return []
     spend = (1.0 - settings.jump_share) * cash / total
@@ -221,13 +229,18 @@ def distribute(
     ``cash`` = its share plus ``jump_floor`` (trap penalties on both), the priority of
     a URL the frontier has not seen. ``source_host`` is the fetched page's host.
     """
+    found, total = _weights(lease_url, (u for u, _ in links), settings)
+    if not total:
+        return []
     source = url_host(lease_url)
+    spend = (1.0 - settings.jump_share) * lease_cash / total
     floor = settings.jump_floor
     child = depth + 1
-    return [
-        Candidate(url, child, share + floor * factor, share, source)
-        for url, share, factor in _shares(lease_url, lease_cash, (u for u, _ in links), settings)
-    ]
+    out = []
+    for url, (weight, factor) in found.items():
+        share = spend * weight * factor
+        out.append(Candidate(url, child, share + floor * factor, share, source))
+    return out
 
 
 # -- the textbook algorithm, in memory --------------------------------------------------

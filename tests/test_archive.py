@@ -358,6 +358,23 @@ def test_no_metadata_record_without_outlinks(tmp_path: Path) -> None:
         "warcinfo", "request", "response", "request", "response"]
 
 
+@pytest.mark.parametrize("anchor, expected", [
+    ("Next page", "Next page"),  # nothing to escape
+    ("caf\u00e9", "caf\u00e9"),  # UTF-8 in a warc-fields block (ISO 28500 s.6.6)
+    ("a\ud800b", "a\ufffdb"),  # a lone surrogate cannot be UTF-8 (RFC 3629 s.3): U+FFFD
+])
+def test_outlink_lines_read_back(tmp_path: Path, anchor: str, expected: str) -> None:
+    archive = new_archive(tmp_path)
+    archive.write_exchange("http://e.test/", ("GET", "/", []), 200, "OK", [], b"y", FETCHED,
+                           None, [("http://e.test/a", anchor), ("http://f.test/", "home")])
+    archive.close()
+    with open(archive.files[0], "rb") as stream:  # reference reader: warcio
+        blocks = [rec.content_stream().read() for rec in ArchiveIterator(stream)
+                  if rec.rec_type == "metadata"]
+    assert blocks[0].decode("utf-8").split("\r\n") == [
+        f"outlink: http://e.test/a {expected}", "outlink: http://f.test/ home", ""]
+
+
 def test_rotation_starts_each_file_with_warcinfo(tmp_path: Path) -> None:
     # Rotation bound: a file is closed once it reaches max_file_bytes; ISO 28500
     # "Record segmentation" forbids splitting a record that fits a new file,

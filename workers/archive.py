@@ -145,7 +145,10 @@ def _clean(text: str) -> str:
     try:
         text.encode("utf-8")
     except UnicodeEncodeError:
-        text = text.encode("utf-8", "surrogateescape").decode("latin-1")
+        try:  # undecodable bytes kept as surrogates: give them back as bytes
+            text = text.encode("utf-8", "surrogateescape").decode("latin-1")
+        except UnicodeEncodeError:  # any other lone surrogate: U+FFFD (RFC 3629 s.3)
+            text = text.encode("utf-16", "surrogatepass").decode("utf-16", "replace")
     return text
 
 
@@ -434,11 +437,19 @@ class WarcArchive:
         outlinks: Sequence[tuple[str, str]],
     ) -> bytes:
         """Outlinks as application/warc-fields; no payload, so no payload digest (s.5.9)."""
-        lines = [
-            f"{OUTLINK_FIELD}: {_uri(link)} {_clean(anchor)}".rstrip() + _CRLF
-            for link, anchor in outlinks
-        ]
-        block = "".join(lines).encode("utf-8")
+        links = "".join([link for link, _ in outlinks])
+        anchors = [anchor for _, anchor in outlinks]
+        joined = "".join(anchors)
+        if (all(anchors) and joined.isascii() and "\r" not in joined and "\n" not in joined
+                and not _URI_UNSAFE_SEARCH(links)):  # the usual page: nothing to escape
+            text = _CRLF.join([f"{OUTLINK_FIELD}: {link} {anchor}" for link, anchor in outlinks])
+            block = (text + _CRLF).encode("ascii")
+        else:
+            lines = [
+                f"{OUTLINK_FIELD}: {_uri(link)} {_clean(anchor)}".rstrip() + _CRLF
+                for link, anchor in outlinks
+            ]
+            block = "".join(lines).encode("utf-8")
         return _gzip_record(
             "metadata", record_id, date, target, f"WARC-Refers-To: {response_id}{_CRLF}",
             METADATA_CONTENT_TYPE, (block,),
