@@ -225,13 +225,20 @@ class NearDuplicateIndex:
         else:  # a wrapped client: one SUNION per fingerprint, then the SADDs
             candidates = [[found] for found in await self._unions(keys)]
         out: list[int | None] = []
+        # earlier fingerprints of the batch by block value: the same pigeonhole as the
+        # index, so a fingerprint is compared only with those sharing a block
+        earlier_by_block: list[dict[int, list[int]]] = [{} for _ in self.widths]
         for i, fp in enumerate(unsigned):
             stored = self._closest(fp, candidates[i])
-            earlier = min(((hamming(fp, e), e) for e in unsigned[:i]), default=None)
+            blocks = split_blocks(fp, self.widths)
+            near = {e for table, value in zip(earlier_by_block, blocks) for e in table.get(value, ())}
+            earlier = min(((hamming(fp, e), e) for e in near), default=None)
             if earlier is not None and earlier[0] <= self.k and (
                     stored is None or earlier[0] < hamming(fp, stored)):
                 stored = earlier[1]
             out.append(stored)
+            for table, value in zip(earlier_by_block, blocks):
+                table.setdefault(value, []).append(fp)
         if not stored_already:
             await self._add_many(keys, unsigned)
         return out

@@ -387,6 +387,27 @@ async def test_check_and_add_returns_closest_previous(client: aioredis.Redis) ->
     assert await index.find(flip(closer, [60, 61, 62])) == closer  # closer was stored
 
 
+async def test_a_batch_is_checked_against_itself_as_one_by_one(client: aioredis.Redis) -> None:
+    # A batch must answer as if its fingerprints were checked and added one at a time
+    # (Manku et al. 2007: within k bits is a near-duplicate, whichever came first).
+    rng = random.Random(17)
+    bases = [rng.getrandbits(64) for _ in range(6)]
+    batch = []
+    for _ in range(60):
+        base = rng.choice(bases)
+        batch.append(flip(base, rng.sample(range(FP_BITS), rng.choice([0, 1, 2, 3, 4, 6, 30]))))
+    _, key = _keyspace()
+    await NearDuplicateIndex(client, key).add(bases[0])  # stored before the batch
+    together = await NearDuplicateIndex(client, key).check_and_add_many(batch)
+    _, other = _keyspace()
+    alone = NearDuplicateIndex(client, other)
+    await alone.add(bases[0])
+    one_by_one = [await alone.check_and_add(fp) for fp in batch]
+    distances = [None if m is None else hamming(fp, m) for fp, m in zip(batch, one_by_one)]
+    assert [None if m is None else hamming(fp, m) for fp, m in zip(batch, together)] == distances
+    assert sum(d is not None for d in distances) > 30  # the batch does hold near-duplicates
+
+
 async def test_generalised_k_uses_k_plus_one_blocks(client: aioredis.Redis) -> None:
     _, key = _keyspace()
     index = NearDuplicateIndex(client, key, k=5)
