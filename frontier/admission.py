@@ -11,7 +11,7 @@ from collections.abc import Awaitable, Callable, Iterable
 
 from frontier.exceptions import ConfigError, UrlError
 from frontier.keys import partition_of
-from frontier.model import AdmitResult, Candidate, encode_credit, encode_score
+from frontier.model import CASH_SCALE, DEPTH_SCALE, MAX_DEPTH, AdmitResult, Candidate
 from frontier.settings import JobSettings
 from frontier.store import FrontierStore, PartitionBatch, QueuedUrl
 from frontier.urls import Scope, canonicalize, fingerprint, host_of, politeness_key
@@ -67,13 +67,14 @@ class Admission:
         key_mode = self.key_mode
         facts = self._facts
         for c in candidates:
-            fact = facts.get(c.url)
+            raw, depth, cash, credit, source, fetched = c
+            fact = facts.get(raw)
             if fact is None:
                 if len(facts) >= URL_MEMO_SIZE:
                     facts.clear()
-                fact = facts[c.url] = self._url_facts(c.url)
+                fact = facts[raw] = self._url_facts(raw)
             if type(fact) is str:  # the reason the URL was refused
-                raw = c.url[: max_length * 2]
+                raw = raw[: max_length * 2]
                 p = partition_of(raw, parts)
                 batches.setdefault(p, PartitionBatch()).refused.append((fingerprint(raw), fact))
                 continue
@@ -84,27 +85,33 @@ class Admission:
                     places.clear()
                 key = self._key(host)
                 place = places[host] = (key, partition_of(key, parts))
-            batch = batches.get(place[1])
+            key, partition = place
+            batch = batches.get(partition)
             if batch is None:
-                batch = batches[place[1]] = PartitionBatch()
-            fetched = c.fetched
-            reason = None if fetched else check(url, host, c.depth)
-            if reason is not None:
-                batch.refused.append((fp, reason))
-                continue
-            queue = batch.hosts.get(place[0])
-            if queue is None:
-                queue = batch.hosts[place[0]] = []
+                batch = batches[partition] = PartitionBatch()
             if not fetched:
-                queue.append(QueuedUrl(url, fp, encode_score(c.cash, c.depth),
-                                       encode_credit(c.credit)))
-                if c.depth == 0:  # a seed, or where a seed redirects: the operator vouches
-                    batch.seeded.add(place[0])
-            source = c.source_host
+                reason = check(url, host, depth)
+                if reason is not None:
+                    batch.refused.append((fp, reason))
+                    continue
+                queue = batch.hosts.get(key)
+                if queue is None:
+                    queue = batch.hosts[key] = []
+                # the scores of frontier.model.encode_score and encode_credit, inlined
+                queue.append(QueuedUrl(
+                    url, fp,
+                    max(1, round(cash * CASH_SCALE)) * DEPTH_SCALE + min(max(depth, 0), MAX_DEPTH),
+                    max(0, round(credit * CASH_SCALE)) * DEPTH_SCALE))
+                if depth == 0:  # a seed, or where a seed redirects: the operator vouches
+                    batch.seeded.add(key)
             if source is not None and source != host:
-                source_key = self._key(source) if key_mode != "host" else source
-                if source_key != place[0]:
-                    batch.add_source(place[0], source_key)
+                source_key = source if key_mode == "host" else self._key(source)
+                if source_key != key:
+                    linking = batch.sources.get(key)
+                    if linking is None:
+                        batch.sources[key] = {source_key}
+                    else:
+                        linking.add(source_key)
         return batches
 
     def _url_facts(self, raw: str) -> tuple[str, str, int] | str:

@@ -68,26 +68,16 @@ class QueuedUrl(NamedTuple):
 class PartitionBatch:
     """Admissions for one partition: queued URLs by host, and refusals."""
 
-    hosts: dict[str, list[QueuedUrl]] = field(default_factory=dict)
+    hosts: dict[str, list[QueuedUrl]] = field(default_factory=dict)  # those with URLs
     budgets: dict[str, int] = field(default_factory=dict)
     refused: list[tuple[int, str]] = field(default_factory=list)  # (fingerprint, reason)
-    # host -> distinct other politeness keys whose pages link to it in this batch
+    # host -> distinct other politeness keys whose pages link to it in this batch (a host
+    # with no URLs here, linked to only by pages fetched already, is a link-only host)
     sources: dict[str, set[str]] = field(default_factory=dict)
     seeded: set[str] = field(default_factory=set)  # hosts of seeds in this batch
 
-    def add(self, host: str, item: QueuedUrl) -> None:
-        self.hosts.setdefault(host, []).append(item)
-
-    def add_source(self, host: str, source: str) -> None:
-        """Record that a page of ``source`` links to ``host`` (budget growth)."""
-        found = self.sources.get(host)
-        if found is None:
-            self.sources[host] = {source}
-        else:
-            found.add(source)
-
     def __len__(self) -> int:
-        """URLs in the batch (a host group may carry only linking hosts)."""
+        """URLs in the batch."""
         return sum(len(v) for v in self.hosts.values()) + len(self.refused)
 
 
@@ -166,7 +156,8 @@ class FrontierStore:
     ) -> AdmitResult:
         """Run the admit script once per partition, all in one go."""
         t = self._now(now)
-        calls = [self._admit_call(p, b, t) for p, b in batches.items() if b.hosts or b.refused]
+        calls = [self._admit_call(p, b, t) for p, b in batches.items()
+                 if b.hosts or b.refused or b.sources]
         total = AdmitResult()
         async with redis_boundary("admit"):
             for new, credited, excluded, dups in await run_many(self.redis, calls):
@@ -177,8 +168,10 @@ class FrontierStore:
         pk = self.keys.part(partition)
         keys: list[str] = [pk.counts, pk.reasons, pk.due, pk.ready, pk.prio, pk.claims, pk.hosts]
         prio = self.settings.priority
+        sources, seeded = batch.sources, batch.seeded
+        link_only = [host for host in sources if host not in batch.hosts]
         args: list[Any] = [now, self.settings.store.hot_capacity, len(batch.hosts), len(batch.refused),
-                           prio.host_budget_base, prio.host_budget_per_linking_host]
+                           prio.host_budget_base, prio.host_budget_per_linking_host, len(link_only)]
         slots: dict[int, int] = {}  # seen bucket -> its 1-based place among the seen keys
         buckets = self.buckets
 
@@ -190,7 +183,6 @@ class FrontierStore:
             return s
 
         default_budget = self.settings.budget.max_pages_per_host or 0
-        sources, seeded = batch.sources, batch.seeded
         for host, items in batch.hosts.items():
             keys += (pk.host(host), pk.hot(host), pk.cold(host), pk.linking_hosts(host))
             linking = sources.get(host, ())
@@ -199,6 +191,10 @@ class FrontierStore:
             for url, fp, score, credit in items:
                 b = fp % buckets
                 args += (slots.get(b) or slot(fp), fp, score, credit, url)
+        for host in link_only:  # only links to pages fetched already: count the links
+            keys.append(pk.linking_hosts(host))
+            linking = sources[host]
+            args += (len(linking), *linking)
         for fp, reason in batch.refused:
             args += (slot(fp), fp, reason)
         keys += [pk.seen(b) for b in slots]  # dicts keep insertion order: slot i is key i

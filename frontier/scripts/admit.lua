@@ -3,12 +3,14 @@
 -- KEYS[6] claims   KEYS[7] hosts
 -- KEYS[8 ..]       per host group g (0-based): host hash, hot ZSET, cold LIST,
 --                  linking-hosts HyperLogLog (4 keys)
+-- then             per link-only host: its linking-hosts HyperLogLog (1 key)
 -- then             the URL-seen buckets this batch touches
 -- ARGV[1] now (ms)  ARGV[2] hot capacity  ARGV[3] number of host groups  ARGV[4] excluded count
--- ARGV[5] budget base  ARGV[6] budget per linking host
+-- ARGV[5] budget base  ARGV[6] budget per linking host  ARGV[7] number of link-only hosts
 -- then per group:  host, absolute budget (0: none), seeded (1: a seed of this host is in
 --                  the batch), m, m linking hosts (other hosts whose pages link here), n,
 --                  and n times: seen slot, fingerprint, score, credit, url
+-- then per link-only host (only links to pages fetched already): m, m linking hosts
 -- then per excluded URL: seen slot, fingerprint, reason
 -- (a seen slot is a 1-based index into the seen-bucket part of KEYS)
 -- A new URL is queued on its host (or excluded: host blocked, host budget spent); a URL
@@ -24,7 +26,8 @@ local cap = tonumber(ARGV[2])
 local ngroups = tonumber(ARGV[3])
 local nexcl = tonumber(ARGV[4])
 local base, per = tonumber(ARGV[5]), tonumber(ARGV[6])
-local seen_base = 7 + 4 * ngroups
+local nlinked = tonumber(ARGV[7])
+local seen_base = 7 + 4 * ngroups + nlinked
 local S = {due = KEYS[3], ready = KEYS[4], prio = KEYS[5], claims = KEYS[6]}
 local new, credited, excluded, dups = 0, 0, 0, 0
 local reasons = {}
@@ -50,14 +53,18 @@ local function host_limit(budget, linking, wanted, seeded)
   return earned, true
 end
 
-local a = 7
+local function add_linking(linking, from, m)
+  for i = from, from + m - 1, 1000 do
+    redis.call('PFADD', linking, unpack(ARGV, i, math.min(i + 999, from + m - 1)))
+  end
+end
+
+local a = 8
 for g = 0, ngroups - 1 do
   local host, budget, seed, m = ARGV[a], tonumber(ARGV[a + 1]), ARGV[a + 2], tonumber(ARGV[a + 3])
   a = a + 4
   local hk, hot, cold, linking = KEYS[8 + 4 * g], KEYS[9 + 4 * g], KEYS[10 + 4 * g], KEYS[11 + 4 * g]
-  for i = a, a + m - 1, 1000 do
-    redis.call('PFADD', linking, unpack(ARGV, i, math.min(i + 999, a + m - 1)))
-  end
+  add_linking(linking, a, m)
   a = a + m
   local n = tonumber(ARGV[a])
   a = a + 1
@@ -130,6 +137,12 @@ for g = 0, ngroups - 1 do
   if reschedule then  -- a host that already queued URLs is scheduled (or held) already
     schedule(S, host, hk, hot, cold, cap, now)
   end
+end
+
+for l = 0, nlinked - 1 do
+  local m = tonumber(ARGV[a])
+  add_linking(KEYS[8 + 4 * ngroups + l], a + 1, m)
+  a = a + 1 + m
 end
 
 for _ = 1, nexcl do
