@@ -172,14 +172,14 @@ def link_weights(
 
 
 def _weights(
-    source_url: str, links: Iterable[str], settings: PrioritySettings
+    source_url: str, source: str, links: Iterable[str], settings: PrioritySettings
 ) -> tuple[dict[str, tuple[float, float]], float]:
-    """(weight, trap factor) per distinct out-link, and the weights' sum.
+    """(weight, trap factor) per distinct out-link of a page on host ``source``, and the
+    weights' sum.
 
     Same weights as :func:`link_weights` and factors as :func:`trap_factor`, from the
     remembered facts of each link.
     """
-    source = url_host(source_url)
     cross, penalty = settings.cross_host_weight, settings.trap_penalty
     depth, length = settings.trap_depth, settings.trap_length
     found: dict[str, tuple[float, float]] = {}
@@ -198,7 +198,7 @@ def _shares(
     source_url: str, cash: float, links: Iterable[str], settings: PrioritySettings
 ) -> list[tuple[str, float, float]]:
     """(url, share, trap factor) per distinct out-link; shares carry the penalties."""
-    found, total = _weights(source_url, links, settings)
+    found, total = _weights(source_url, url_host(source_url), links, settings)
     if not total:
         return []
     spend = (1.0 - settings.jump_share) * cash / total
@@ -229,10 +229,10 @@ def distribute(
     ``cash`` = its share plus ``jump_floor`` (trap penalties on both), the priority of
     a URL the frontier has not seen. ``source_host`` is the fetched page's host.
     """
-    found, total = _weights(lease_url, (u for u, _ in links), settings)
+    source = url_host(lease_url)
+    found, total = _weights(lease_url, source, [u for u, _ in links], settings)
     if not total:
         return []
-    source = url_host(lease_url)
     spend = (1.0 - settings.jump_share) * lease_cash / total
     floor = settings.jump_floor
     child = depth + 1

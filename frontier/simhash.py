@@ -94,16 +94,24 @@ def simhash64(text: str, *, shingle_words: int = SHINGLE_WORDS) -> int:
     # are the unsigned 64-bit value mmh3.hash64 returns first.
     packed = b"".join(map(_hash128, features))
     total = len(features)
-    masks = [int.from_bytes(bytes([1 << bit]) * total, "little") for bit in range(8)]
+    masks = _bit_masks(total)
     fingerprint = 0
+    bit = 1  # fingerprint bits in order: byte 0 bit 0, byte 0 bit 1, ...
     # Bit-plane counting: gather byte j of every hash into one big integer and
     # count the set bits of each plane with one AND and one popcount.
     for position in range(_BYTES):
         plane = int.from_bytes(packed[position::_HASH_BYTES], "little")
-        for bit, mask in enumerate(masks):
+        for mask in masks:
             if 2 * (plane & mask).bit_count() > total:
-                fingerprint |= 1 << (position * 8 + bit)
+                fingerprint |= bit
+            bit <<= 1
     return fingerprint
+
+
+@functools.lru_cache(maxsize=1024)
+def _bit_masks(total: int) -> tuple[int, ...]:
+    """For each bit b of a byte, an integer with bit b set in each of ``total`` bytes."""
+    return tuple(int.from_bytes(bytes([1 << bit]) * total, "little") for bit in range(8))
 
 
 def hamming(a: int, b: int) -> int:
