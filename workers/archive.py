@@ -32,6 +32,7 @@ warcinfo record, once per file, is still written through warcio.
 
 from __future__ import annotations
 
+import functools
 import hashlib
 import io
 import json
@@ -124,6 +125,7 @@ def utc_now() -> datetime:
     return datetime.now(UTC)
 
 
+@functools.lru_cache(maxsize=4096)  # a page's time is written twice: WARC-Date, the log
 def warc_date(moment: datetime) -> str:
     """W3C-ISO8601 UTC timestamp with microseconds when present (WARC 1.1 s.5.4)."""
     if moment.tzinfo is None:

@@ -114,6 +114,9 @@ class ParsedPage:
     encoding: str = "utf-8"
 
 
+_BOM_PREFIXES = tuple(bom for bom, _ in _BOMS)
+
+
 def looks_binary(body: bytes) -> bool:
     """True if the first 1 KB holds a NUL or a high share of control bytes.
 
@@ -121,7 +124,7 @@ def looks_binary(body: bytes) -> bool:
     "rules for distinguishing if a resource is text or binary").
     """
     head = body[:SNIFF_BYTES]
-    if not head or any(head.startswith(bom) for bom, _ in _BOMS):
+    if not head or head.startswith(_BOM_PREFIXES):
         return False
     if b"\x00" in head:
         return True
