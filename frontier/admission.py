@@ -58,61 +58,85 @@ class Admission:
         # a crawl offers each URL many times (once per link to it)
         self._facts: dict[str, tuple[str, str, int] | str] = {}
 
-    def prepare(self, candidates: Iterable[Candidate]) -> dict[int, PartitionBatch]:
-        """Group candidates by partition and host; refusals keep their reason."""
+    def prepare(self, candidates: Iterable[Candidate],
+                linked: Iterable[tuple[str, str]] = ()) -> dict[int, PartitionBatch]:
+        """Group candidates by partition and host; refusals keep their reason.
+
+        ``linked`` holds (page host, URL) links to pages fetched already: no URL to look
+        up, but the link between the two hosts counts for the target's earned budget.
+        """
         batches: dict[int, PartitionBatch] = {}
         parts, max_length = self.partitions, self.max_length
-        places = self._places
         check = self.scope.check
         key_mode = self.key_mode
-        facts = self._facts
+        facts, places = self._facts, self._places
         for c in candidates:
-            raw, depth, cash, credit, source, fetched = c
+            raw, depth, cash, credit, source = c
             fact = facts.get(raw)
             if fact is None:
-                if len(facts) >= URL_MEMO_SIZE:
-                    facts.clear()
-                fact = facts[raw] = self._url_facts(raw)
+                fact = self._remember(raw)
             if type(fact) is str:  # the reason the URL was refused
                 raw = raw[: max_length * 2]
                 p = partition_of(raw, parts)
                 batches.setdefault(p, PartitionBatch()).refused.append((fingerprint(raw), fact))
                 continue
             url, host, fp = fact
-            place = places.get(host)
-            if place is None:
-                if len(places) > HOST_CACHE_SIZE:
-                    places.clear()
-                key = self._key(host)
-                place = places[host] = (key, partition_of(key, parts))
-            key, partition = place
+            key, partition = places.get(host) or self._place(host)
             batch = batches.get(partition)
             if batch is None:
                 batch = batches[partition] = PartitionBatch()
-            if not fetched:
-                reason = check(url, host, depth)
-                if reason is not None:
-                    batch.refused.append((fp, reason))
-                    continue
-                queue = batch.hosts.get(key)
-                if queue is None:
-                    queue = batch.hosts[key] = []
-                # the scores of frontier.model.encode_score and encode_credit, inlined
-                queue.append(QueuedUrl(
-                    url, fp,
-                    max(1, round(cash * CASH_SCALE)) * DEPTH_SCALE + min(max(depth, 0), MAX_DEPTH),
-                    max(0, round(credit * CASH_SCALE)) * DEPTH_SCALE))
-                if depth == 0:  # a seed, or where a seed redirects: the operator vouches
-                    batch.seeded.add(key)
+            reason = check(url, host, depth)
+            if reason is not None:
+                batch.refused.append((fp, reason))
+                continue
+            queue = batch.hosts.get(key)
+            if queue is None:
+                queue = batch.hosts[key] = []
+            # the scores of frontier.model.encode_score and encode_credit, inlined
+            queue.append(QueuedUrl(
+                url, fp,
+                max(1, round(cash * CASH_SCALE)) * DEPTH_SCALE + min(max(depth, 0), MAX_DEPTH),
+                max(0, round(credit * CASH_SCALE)) * DEPTH_SCALE))
+            if depth == 0:  # a seed, or where a seed redirects: the operator vouches
+                batch.seeded.add(key)
             if source is not None and source != host:
-                source_key = source if key_mode == "host" else self._key(source)
-                if source_key != key:
-                    linking = batch.sources.get(key)
-                    if linking is None:
-                        batch.sources[key] = {source_key}
-                    else:
-                        linking.add(source_key)
+                self._link_hosts(batch, key, source, key_mode)
+        for source, raw in linked:
+            fact = facts.get(raw) or self._remember(raw)
+            if type(fact) is str or source == fact[1]:
+                continue
+            key, partition = places.get(fact[1]) or self._place(fact[1])
+            batch = batches.get(partition)
+            if batch is None:
+                batch = batches[partition] = PartitionBatch()
+            self._link_hosts(batch, key, source, key_mode)
         return batches
+
+    def _link_hosts(self, batch: PartitionBatch, key: str, source: str, key_mode: str) -> None:
+        """Record that a page of host ``source`` links to politeness key ``key``."""
+        source_key = source if key_mode == "host" else self._key(source)
+        if source_key != key:
+            linking = batch.sources.get(key)
+            if linking is None:
+                batch.sources[key] = {source_key}
+            else:
+                linking.add(source_key)
+
+    def _remember(self, raw: str) -> tuple[str, str, int] | str:
+        facts = self._facts
+        if len(facts) >= URL_MEMO_SIZE:
+            facts.clear()
+        fact = facts[raw] = self._url_facts(raw)
+        return fact
+
+    def _place(self, host: str) -> tuple[str, int]:
+        """(politeness key, partition) of a host, remembered."""
+        places = self._places
+        if len(places) > HOST_CACHE_SIZE:
+            places.clear()
+        key = self._key(host)
+        place = places[host] = (key, partition_of(key, self.partitions))
+        return place
 
     def _url_facts(self, raw: str) -> tuple[str, str, int] | str:
         """(canonical URL, host, fingerprint) of an offered URL, or why it is refused."""
@@ -156,8 +180,11 @@ class Admission:
 
         await asyncio.gather(*(one(h) for h in hosts))
 
-    async def admit(self, candidates: Iterable[Candidate], now: int | None = None) -> AdmitResult:
+    async def admit(self, candidates: Iterable[Candidate], now: int | None = None, *,
+                    linked: Iterable[tuple[str, str]] = ()) -> AdmitResult:
+        """Admit candidates, and count ``linked`` links between hosts (see :meth:`prepare`)."""
         if self.key_mode == "ip":
-            candidates = list(candidates)
-            await self._resolve_new_hosts(candidates)
-        return await self.store.admit_batches(self.prepare(candidates), now)
+            candidates, linked = list(candidates), list(linked)
+            await self._resolve_new_hosts(
+                candidates + [Candidate(url, source_host=source) for source, url in linked])
+        return await self.store.admit_batches(self.prepare(candidates, linked), now)

@@ -54,9 +54,6 @@ class Candidate(NamedTuple):
     cash: float = 1.0  # initial priority of a new URL
     credit: float = 0.0  # cash added if the URL already waits in its host's queue
     source_host: str | None = None  # the host of the page that links here
-    # the URL was fetched already (the offering worker knows): only the link between the
-    # two hosts still counts (the target host's linking hosts, hence its budget)
-    fetched: bool = False
 
 
 @dataclass(frozen=True, slots=True)

@@ -31,7 +31,7 @@ from __future__ import annotations
 
 import functools
 import re
-from collections.abc import Callable, Iterable, Sequence
+from collections.abc import Callable, Container, Iterable, Sequence
 from dataclasses import dataclass, field
 
 from frontier.model import Candidate
@@ -221,6 +221,7 @@ def distribute(
     depth: int,
     links: Sequence[tuple[str, str]],
     settings: PrioritySettings,
+    known: Container[str] = (),
 ) -> list[Candidate]:
     """Hand a fetched page's cash on to its out-links, as candidates for the frontier.
 
@@ -228,6 +229,8 @@ def distribute(
     ``credit`` = its share (added if the URL already waits in the frontier) and
     ``cash`` = its share plus ``jump_floor`` (trap penalties on both), the priority of
     a URL the frontier has not seen. ``source_host`` is the fetched page's host.
+    A link to a URL in ``known`` (fetched already) takes its share but makes no
+    candidate: cash sent to a page that is not fetched again is lost, as in OPIC.
     """
     source = url_host(lease_url)
     found, total = _weights(lease_url, source, [u for u, _ in links], settings)
@@ -238,6 +241,8 @@ def distribute(
     child = depth + 1
     out = []
     for url, (weight, factor) in found.items():
+        if url in known:
+            continue
         share = spend * weight * factor
         out.append(Candidate(url, child, share + floor * factor, share, source))
     return out

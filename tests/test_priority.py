@@ -143,6 +143,18 @@ def test_cross_host_links_outweigh_same_host_links() -> None:
     assert all(c.depth == 3 and c.source_host == "a.test" for c in found)
 
 
+def test_links_to_fetched_pages_take_their_share_but_make_no_candidate() -> None:
+    # OPIC (Abiteboul et al. 2003): a page's cash is split over all its out-links; the
+    # share of a page that is not fetched again is lost, not given to the others.
+    s = no_traps(jump_share=0.15, cross_host_weight=4.0, jump_floor=0.0)
+    links = [("http://a.test/x", "x"), ("http://b.test/y", "y"), ("http://c.test/z", "z")]
+    every = {c.url: c for c in distribute("http://a.test/p", 1.0, 2, links, s)}
+    some = distribute("http://a.test/p", 1.0, 2, links, s, known={"http://b.test/y"})
+    assert [c.url for c in some] == ["http://a.test/x", "http://c.test/z"]
+    assert all(c == every[c.url] for c in some)  # the same shares as with nothing known
+    assert sum(c.credit for c in some) == pytest.approx(0.85 * 5 / 9)  # b's 4/9 is lost
+
+
 def test_dangling_page_hands_everything_to_the_pool() -> None:
     assert distribute("http://a.test/p", 1.0, 0, [], no_traps()) == []
     assert distribute("http://a.test/p", 1.0, 0, [("http://a.test/p", "self")], no_traps()) == []
@@ -262,17 +274,15 @@ async def test_a_link_to_a_fetched_page_still_counts_its_linking_host(
     adm = admission(store)
     res = await adm.admit(candidates("t.test", 6, "t.test"))
     assert (res.new, res.excluded) == (2, 4)
-    fetched = Candidate("http://t.test/0", depth=1, source_host="x.test", fetched=True)
-    res = await adm.admit([fetched])
+    res = await adm.admit([], linked=[("x.test", "http://t.test/0")])  # t.test/0 was fetched
     assert (res.new, res.credited, res.excluded, res.duplicates) == (0, 0, 0, 0)
     counts = await store.counts()
     assert counts.queued == 2 and counts.balanced  # nothing queued, nothing counted
     res = await adm.admit(candidates("t.test", 6, "t.test"))  # within the host: no growth
     assert res.new == 3  # 2 + 3 x 1 linking host: x.test counted
-    out_of_scope = Candidate("http://elsewhere.test/", depth=1, source_host="x.test", fetched=True)
-    scoped = Admission(store, Scope(allow=["t.test"]))
-    res = await scoped.admit([out_of_scope])  # fetched: scope was decided when it was queued
-    assert (res.new, res.excluded, res.duplicates) == (0, 0, 0)
+    res = await adm.admit([], linked=[("t.test", "http://t.test/1")])  # within the host
+    res = await adm.admit(candidates("t.test", 9, "t.test"))
+    assert res.new == 0  # still 5: a host does not link itself up
 
 
 async def test_absolute_budget_caps_the_earned_one(make_store: StoreFactory) -> None:

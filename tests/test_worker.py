@@ -116,10 +116,11 @@ async def test_links_back_to_fetched_pages_are_not_sent(
     offered: list[str] = []
     prepare = Admission.prepare
 
-    def spy(self: Admission, candidates: Any) -> Any:
-        candidates = list(candidates)
+    def spy(self: Admission, candidates: Any, linked: Any = ()) -> Any:
+        candidates, linked = list(candidates), list(linked)
         offered.extend(c.url for c in candidates)
-        return prepare(self, candidates)
+        offered.extend(url for _, url in linked)  # links between hosts: none on one site
+        return prepare(self, candidates, linked)
 
     monkeypatch.setattr(Admission, "prepare", spy)
     children = [f"/c{i}.html" for i in range(8)]

@@ -25,7 +25,7 @@ from frontier.budget import PageBudget
 from frontier.exceptions import AddressRefused, FetchError, SluiceError, StoreUnavailable
 from frontier.metrics import WorkerMetrics
 from frontier.model import Candidate, Completion, Lease, Outcome
-from frontier.priority import distribute
+from frontier.priority import distribute, url_host
 from frontier.robots import RobotsCache, RobotsFetchResult, RobotsRules, robots_url
 from frontier.settings import JobSettings
 from frontier.simhash import NearDuplicateIndex, simhash64
@@ -55,6 +55,7 @@ class Finished:
 
     completion: Completion
     links: list[Candidate] = field(default_factory=list)
+    linked: list[tuple[str, str]] = field(default_factory=list)  # (host, URL fetched already)
     entry: FetchEntry | None = None
     simhash: int | None = None  # checked against the near-duplicate index at flush time
     simhash_checked: bool = False  # a retried flush must not find the page itself
@@ -129,8 +130,8 @@ class Worker:
         self._finished: list[Finished] = []
         self._fetched: list[FetchedPage] = []  # HTML pages not yet parsed and archived
         # URLs this worker fetched (completion accepted): links to them are not offered as
-        # URLs again (no credit for a URL no longer queued); see _known_links. Cleared
-        # when full.
+        # URLs again (no credit for a URL no longer queued); see _links_to_fetched.
+        # Cleared when full.
         self._fetched_urls: set[str] = set()
         self._tasks: set[asyncio.Task[None]] = set()
         self._stop = asyncio.Event()
@@ -384,28 +385,22 @@ class Worker:
             follow = []
         else:
             follow = [(ln.url, ln.anchor) for ln in page.links if not ln.nofollow]
-        links = distribute(lease.url, lease.cash, lease.depth, follow, self.settings.priority)
-        if self._fetched_urls:
-            links = self._known_links(lease.url, links)
+        done = self._fetched_urls
+        links = distribute(lease.url, lease.cash, lease.depth, follow, self.settings.priority,
+                           known=done)
+        linked = self._links_to_fetched(lease, follow) if done else []
         entry = self._entry(lease, Outcome.FETCHED, p.reason, p.resp, p.fetched_at,
                             simhash=fingerprint, **ref)
-        return Finished(p.base, links, simhash=fingerprint), entry
+        return Finished(p.base, links, linked, simhash=fingerprint), entry
 
-    def _known_links(self, page_url: str, links: list[Candidate]) -> list[Candidate]:
-        """Links to pages this worker fetched: one from the same host changes nothing in
-        the frontier and is dropped; one from another host still counts for the target
-        host's linking hosts, so it goes as a link between hosts only."""
-        own = origin_of(page_url) + "/"
-        done = self._fetched_urls
-        kept = []
-        for c in links:
-            url = c.url
-            if url in done:
-                if url.startswith(own):
-                    continue
-                c = Candidate(url, c.depth, c.cash, c.credit, c.source_host, True)  # fetched
-            kept.append(c)
-        return kept
+    def _links_to_fetched(self, lease: Lease,
+                          follow: list[tuple[str, str]]) -> list[tuple[str, str]]:
+        """Links to pages this worker fetched get no candidate (see ``distribute``). One
+        from the same host changes nothing in the frontier; one from another host still
+        counts for the target host's linking hosts, so it goes as a link between hosts."""
+        own = origin_of(lease.url) + "/"
+        done, host = self._fetched_urls, url_host(lease.url)
+        return [(host, url) for url, _ in follow if url in done and not url.startswith(own)]
 
     def _archive(self, lease: Lease, resp: Response, outlinks: list[tuple[str, str]] | None,
                  at: datetime) -> dict[str, Any]:
@@ -461,9 +456,10 @@ class Worker:
             try:
                 await self._drop_near_duplicates(batch)
                 links = [c for f in batch for c in f.links]
-                if links:
-                    await self.admission.admit(links)
-                    self.metrics.links.inc(len(links))
+                linked = [pair for f in batch for pair in f.linked]
+                if links or linked:
+                    await self.admission.admit(links, linked=linked)
+                    self.metrics.links.inc(len(links) + len(linked))
                 statuses = await self.store.complete_many([f.completion for f in batch])
             except StoreUnavailable as exc:
                 self.metrics.store_errors.inc()
@@ -504,7 +500,7 @@ class Worker:
             f.simhash_checked = True
             if match is not None:
                 self.metrics.near_duplicates.inc()
-                f.links = []
+                f.links, f.linked = [], []
                 if f.entry is not None:
                     f.entry = dataclasses.replace(f.entry, reason="near_duplicate")
 
