@@ -8,7 +8,8 @@
     │   └── LeaseNotHeld       a lease was completed after it expired or was never held
     ├── RedisLaunchError       the embedded Redis server could not be started
     ├── AddressRefused         the SSRF guard refused a destination address
-    └── FetchError             a fetch ended without a usable response (carries a reason)
+    ├── FetchError             a fetch ended without a usable response (carries a reason)
+    └── DiskFault              the output folder cannot be written (full, gone, read-only)
 
 Third-party errors (redis-py, aiohttp) are translated at the boundary where they
 happen, so callers catch sluice errors only.
@@ -64,3 +65,11 @@ class FetchError(SluiceError):
         super().__init__(f"{reason}: {detail}" if detail else reason)
         self.reason = reason
         self.retryable = retryable
+
+
+class DiskFault(SluiceError):
+    """The output folder cannot take more writes (ENOSPC, EDQUOT, EROFS, vanished).
+
+    A worker that meets one stops leasing, hands what it holds back as retry-able, and
+    exits non-zero; nothing written before it is torn.
+    """

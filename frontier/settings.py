@@ -114,8 +114,24 @@ class FetchSettings(_Part):
     max_header_bytes: int = Field(default=32 * 1024, ge=1024)
     archive_other_types: bool = Field(default=True, description="archive non-HTML bodies")
     map_hosts: tuple[str, ...] = Field(default=(), description="'*.test=127.0.0.1[:PORT]' entries")
+    map_ports: tuple[int, ...] = Field(
+        default=(80, 443), description="ports a port-less map_hosts entry lets a URL keep")
+    map_remote: bool = Field(
+        default=False, description="allow map_hosts entries to non-loopback addresses (they "
+        "send traffic wherever they point)")
     allow_private: bool = Field(default=False, description="allow non-global addresses (unsafe)")
     follow_nofollow: bool = False
+    max_redirects: int = Field(default=10, ge=0, le=50, description="redirect hops per chain")
+    max_links_per_page: int = Field(
+        default=5000, ge=1, description="links kept from one page (the first ones, in order)")
+    parse_timeout_s: float = Field(
+        default=10.0, gt=0, description="a page whose processing takes longer ends as failed")
+    offload_bytes: int = Field(
+        default=512 * 1024, ge=0, description="pages larger than this are parsed, "
+        "fingerprinted and archived off the event loop")
+    stop_grace_s: float = Field(
+        default=10.0, ge=0, description="after the first stop signal, time to finish "
+        "in-flight fetches before handing them back")
 
     @field_validator("user_agent")
     @classmethod
