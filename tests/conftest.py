@@ -5,7 +5,11 @@ from __future__ import annotations
 from collections.abc import AsyncIterator, Callable, Iterator
 from typing import Any
 
+import os
+
 import pytest
+from hypothesis import HealthCheck
+from hypothesis import settings as hypothesis_settings
 from redis.asyncio.cluster import RedisCluster as AsyncRedisCluster
 
 from frontier.redis_client import connect
@@ -14,6 +18,15 @@ from frontier.store import FrontierStore, redis_tuning
 from tests.servers import RedisCluster, RedisServer
 
 TUNING = redis_tuning(JobSettings())
+
+# Fuzz tests take their example counts from a profile: "ci" (the default) keeps the suite
+# quick; HYPOTHESIS_PROFILE=fuzz runs 10,000 examples each (./test.sh -m fuzz).
+FUZZ_EXAMPLES = {"ci": 100, "fuzz": 10_000}
+for _name, _count in FUZZ_EXAMPLES.items():
+    hypothesis_settings.register_profile(
+        _name, max_examples=_count, deadline=None,
+        suppress_health_check=[HealthCheck.too_slow, HealthCheck.data_too_large])
+hypothesis_settings.load_profile(os.environ.get("HYPOTHESIS_PROFILE", "ci"))
 
 
 @pytest.fixture(scope="session")
