@@ -11,7 +11,9 @@ from collections.abc import Awaitable, Callable, Iterable
 
 from frontier.exceptions import ConfigError, UrlError
 from frontier.keys import partition_of
-from frontier.model import CASH_SCALE, DEPTH_SCALE, MAX_DEPTH, AdmitResult, Candidate
+from frontier.model import (
+    CASH_SCALE, CASH_UNIT, DEPTH_SCALE, MAX_DEPTH, MAX_HOPS, AdmitResult, Candidate,
+)
 from frontier.settings import JobSettings
 from frontier.store import FrontierStore, PartitionBatch, QueuedUrl
 from frontier.urls import Scope, canonicalize, fingerprint, host_of, politeness_key
@@ -71,7 +73,7 @@ class Admission:
         key_mode = self.key_mode
         facts, places = self._facts, self._places
         for c in candidates:
-            raw, depth, cash, credit, source = c
+            raw, depth, cash, credit, source, hops = c
             fact = facts.get(raw)
             if fact is None:
                 fact = self._remember(raw)
@@ -95,9 +97,11 @@ class Admission:
             # the scores of frontier.model.encode_score and encode_credit, inlined
             queue.append(QueuedUrl(
                 url, fp,
-                max(1, round(cash * CASH_SCALE)) * DEPTH_SCALE + min(max(depth, 0), MAX_DEPTH),
-                max(0, round(credit * CASH_SCALE)) * DEPTH_SCALE))
-            if depth == 0:  # a seed, or where a seed redirects: the operator vouches
+                max(1, round(cash * CASH_SCALE)) * CASH_UNIT
+                + (min(hops, MAX_HOPS) * DEPTH_SCALE if hops else 0)
+                + min(max(depth, 0), MAX_DEPTH),
+                max(0, round(credit * CASH_SCALE)) * CASH_UNIT))
+            if depth == 0:  # a seed (redirects and links are one depth further): the operator vouches
                 batch.seeded.add(key)
             if source is not None and source != host:
                 self._link_hosts(batch, key, source, key_mode)

@@ -17,7 +17,7 @@ import textwrap
 from typing import Any
 
 from frontier.exceptions import UrlError
-from frontier.model import CASH_SCALE, DEPTH_SCALE, decode_score
+from frontier.model import CASH_SCALE, CASH_UNIT, decode_score
 from frontier.priority import trap_factor, trap_signs
 from frontier.store import FrontierStore
 from frontier.urls import canonicalize, fingerprint, host_of, politeness_key
@@ -200,7 +200,7 @@ def format_explain(info: dict[str, Any]) -> str:
     lines.append(f"schedule: partition {sch['partition']}: {sch['place']}")
     if sch["priority"] is not None:
         lines.append(f"          host priority: best cash x boost = "
-                     f"{sch['priority'] / (DEPTH_SCALE * CASH_SCALE):.6f}")
+                     f"{sch['priority'] / (CASH_UNIT * CASH_SCALE):.6f}")
     trap = info["trap"]
     signs = ", ".join(trap["signs"]) or "none"
     lines.append(f"trap:     signs {signs}; cash factor {trap['factor']:g}")

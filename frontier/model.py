@@ -6,28 +6,39 @@ from dataclasses import dataclass, field
 from enum import StrEnum
 from typing import NamedTuple
 
-# A score packs an URL's cash (OPIC importance, in micro-units) and its link depth:
-# score = round(cash * CASH_SCALE) * DEPTH_SCALE + depth. Integer scores keep Redis
-# listpacks compact; 2**53 bounds cash at about 3.5e7.
+# A score packs an URL's cash (OPIC importance, in micro-units), the redirect hops that
+# led to it and its link depth:
+# score = round(cash * CASH_SCALE) * CASH_UNIT + hops * DEPTH_SCALE + depth.
+# Integer scores keep Redis listpacks compact; 2**53 bounds cash at about 2.2e6.
 CASH_SCALE = 1_000_000
 DEPTH_SCALE = 256
 MAX_DEPTH = DEPTH_SCALE - 1
+HOPS_SCALE = 16
+MAX_HOPS = HOPS_SCALE - 1
+CASH_UNIT = HOPS_SCALE * DEPTH_SCALE
 
 
-def encode_score(cash: float, depth: int) -> int:
-    """The sorted-set score of a URL with this cash at this depth (cash >= 1 micro-unit)."""
-    return max(1, round(cash * CASH_SCALE)) * DEPTH_SCALE + min(max(depth, 0), MAX_DEPTH)
+def encode_score(cash: float, depth: int, hops: int = 0) -> int:
+    """The sorted-set score of a URL with this cash at this depth, ``hops`` redirects
+    into a chain (cash >= 1 micro-unit)."""
+    return (max(1, round(cash * CASH_SCALE)) * CASH_UNIT
+            + min(max(hops, 0), MAX_HOPS) * DEPTH_SCALE + min(max(depth, 0), MAX_DEPTH))
 
 
 def encode_credit(cash: float) -> int:
-    """The score increment for extra cash (the depth bits stay as they are)."""
-    return max(0, round(cash * CASH_SCALE)) * DEPTH_SCALE
+    """The score increment for extra cash (the hop and depth bits stay as they are)."""
+    return max(0, round(cash * CASH_SCALE)) * CASH_UNIT
 
 
 def decode_score(score: float) -> tuple[float, int]:
     """(cash, depth) of a score."""
     whole = int(score)
-    return (whole // DEPTH_SCALE) / CASH_SCALE, whole % DEPTH_SCALE
+    return (whole // CASH_UNIT) / CASH_SCALE, whole % DEPTH_SCALE
+
+
+def score_hops(score: float) -> int:
+    """Redirect hops of the chain that led to a URL (0: not reached by a redirect)."""
+    return (int(score) // DEPTH_SCALE) % HOPS_SCALE
 
 
 class Outcome(StrEnum):
@@ -54,6 +65,7 @@ class Candidate(NamedTuple):
     cash: float = 1.0  # initial priority of a new URL
     credit: float = 0.0  # cash added if the URL already waits in its host's queue
     source_host: str | None = None  # the host of the page that links here
+    hops: int = 0  # redirects in a row that led here (0 for a link or a seed)
 
 
 @dataclass(frozen=True, slots=True)
@@ -84,6 +96,11 @@ class Lease:
     @property
     def depth(self) -> int:
         return decode_score(self.score)[1]
+
+    @property
+    def hops(self) -> int:
+        """Redirects in a row that led to this URL."""
+        return score_hops(self.score)
 
 
 @dataclass(frozen=True, slots=True)

@@ -121,7 +121,7 @@ class FetchSettings(_Part):
         "send traffic wherever they point)")
     allow_private: bool = Field(default=False, description="allow non-global addresses (unsafe)")
     follow_nofollow: bool = False
-    max_redirects: int = Field(default=10, ge=0, le=50, description="redirect hops per chain")
+    max_redirects: int = Field(default=10, ge=0, le=15, description="redirect hops per chain")
     max_links_per_page: int = Field(
         default=5000, ge=1, description="links kept from one page (the first ones, in order)")
     parse_timeout_s: float = Field(

@@ -298,19 +298,23 @@ async def test_absolute_budget_caps_the_earned_one(make_store: StoreFactory) -> 
 
 
 async def test_seed_hosts_have_only_the_absolute_budget(make_store: StoreFactory) -> None:
-    # the operator vouches for a seed's host (and where a seed redirects, still depth 0):
-    # a crawl of one site must not stop at the earned budget (common practice, no source)
+    # the operator vouches for a seed's host: a crawl of one site must not stop at the
+    # earned budget (common practice, no source). A host reached by a redirect from a seed
+    # is one depth further and earns its budget like any other host.
     store = make_store(budget={"max_pages_per_host": 8},
                        priority={"host_budget_base": 2, "host_budget_per_linking_host": 3})
     adm = admission(store)
     res = await adm.admit(candidates("s.test", 1, None, depth=0)
-                          + [Candidate("http://www.s.test/", depth=0, source_host="s.test")])
+                          + [Candidate("http://www.s.test/", depth=1, source_host="s.test",
+                                       hops=1)])
     assert res.new == 2
     res = await adm.admit(candidates("s.test", 12, "s.test") + candidates("www.s.test", 12, "s.test"))
-    # s.test/0 is the seed itself; 7 more fit on each host under the absolute cap of 8
-    assert (res.new, res.excluded, res.duplicates) == (7 + 7, 4 + 5, 1)
+    # s.test/0 is the seed itself; 7 more fit on it under the absolute cap of 8; www.s.test
+    # earned 2 + 3 x 1 linking host = 5, the redirect target already holds one of them
+    assert (res.new, res.excluded, res.duplicates) == (7 + 4, 4 + 8, 1)
     counts = await store.counts()
-    assert counts.reasons["excluded:host_budget"] == 9 and counts.balanced
+    assert counts.reasons["excluded:host_budget"] == 4
+    assert counts.reasons["excluded:host_link_budget"] == 8 and counts.balanced
 
 
 async def test_link_farm_budget_is_bounded_by_its_own_size(make_store: StoreFactory) -> None:

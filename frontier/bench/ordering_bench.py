@@ -133,8 +133,9 @@ async def sluice_order(
                 order.append(lease.url)
                 links, location = out_links(web, lease.url)
                 if location is not None:  # a redirect hands on all its cash, as the worker does
-                    found.append(Candidate(location, depth=lease.depth, cash=lease.cash,
-                                           credit=lease.cash, source_host=lease.host))
+                    found.append(Candidate(location, depth=lease.depth + 1, cash=lease.cash,
+                                           credit=lease.cash, source_host=lease.host,
+                                           hops=lease.hops + 1))
                 found += distribute(lease.url, lease.cash, lease.depth,
                                     [(u, "") for u in links], prio)
             await admission.admit(found)

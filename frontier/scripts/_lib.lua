@@ -1,8 +1,7 @@
 -- Shared helpers, prepended to every script by frontier/scripts.py.
 -- They touch only keys handed to them by the calling script (all from KEYS).
--- Scores are integers: cash in micro-units times 256, plus the link depth (0..255).
-
-local DEPTH_SCALE = 256
+-- Scores are integers: cash in micro-units times 4096, plus 256 times the redirect hops
+-- (0..15), plus the link depth (0..255); see frontier/model.py. Scripts only compare them.
 
 -- A host's queue: up to `cap` URLs sorted in `hot` (a listpack ZSET), the rest waiting in
 -- `cold` (a LIST of 'score url', arrival order). A URL goes hot while there is room, or
