@@ -314,9 +314,14 @@ class Worker:
     def _redirect(self, lease: Lease, resp: Response, base: Completion) -> tuple[Finished, FetchEntry]:
         location = resp.header("Location")
         links: list[Candidate] = []
-        if location:
-            links.append(Candidate(canonical_or_raw(location, lease.url), depth=lease.depth,
-                                   cash=lease.cash, credit=lease.cash, source_host=lease.host))
+        if location and lease.hops >= self.settings.fetch.max_redirects:
+            c = Completion(lease, Outcome.FAILED, "redirect_limit", response_s=resp.elapsed_s,
+                           crawl_delay_s=base.crawl_delay_s)
+            return Finished(c), self._entry(lease, Outcome.FAILED, "redirect_limit", resp)
+        if location:  # one more depth and one more hop: a chain's hosts are not seeded
+            links.append(Candidate(canonical_or_raw(location, lease.url), depth=lease.depth + 1,
+                                   cash=lease.cash, credit=lease.cash, source_host=lease.host,
+                                   hops=lease.hops + 1))
         at = datetime.now(UTC)
         ref = self._archive(lease, resp, [(c.url, "redirect") for c in links], at)
         return Finished(base, links), self._entry(
