@@ -116,7 +116,7 @@ async def _crawl_job(settings: JobSettings, out: Path, workers: int, registry: C
 
     async with open_job(settings) as job:
         if job.server is not None:  # a private server: leases of an earlier run are orphans
-            await job.store.reap(now=2**62)
+            await job.store.recover()
         await admit_seeds(job, settings.seeds)
         daemon = Daemon(job, registry)
         stop = asyncio.Event()

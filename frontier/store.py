@@ -31,6 +31,7 @@ HOST_ACTIONS = ("boost", "pause", "resume", "block", "unblock", "delay")
 PROMOTE_LIMIT = 1000  # due hosts moved to ready per lease_pick call
 REAP_BATCH = 500  # expired leases handled per reap call and partition
 CLAIM_TTL_MS = 10_000  # a picked host returns to due if not leased within this time
+ORPHAN_CUTOFF_MS = 2**62  # later than any lease's expiry
 LEASE_ROUNDS = 2
 COLD_SCAN_CHUNK = 1000  # cold-list entries read per call when looking for one URL
 COLD_SCAN_LIMIT = 200_000  # entries of one cold list searched before giving up
@@ -307,26 +308,53 @@ class FrontierStore:
                      int(c.extra_delay_s * 1000), crawl)
         return (self.scripts.complete, keys, args)
 
-    async def reap(self, now: int | None = None) -> dict[str, int]:
-        """Return expired leases to their hosts; counts of 'requeued', 'dead', 'excluded'."""
+    async def reap(self, now: int | None = None, *, orphans: bool = False) -> dict[str, int]:
+        """Return expired leases to their hosts; counts of 'requeued', 'dead', 'excluded'.
+
+        ``orphans=True`` returns every lease, expired or not (a resumed embedded job: the
+        process that held them is gone); hosts are still scheduled at ``now``.
+        """
         t = self._now(now)
+        cutoff = ORPHAN_CUTOFF_MS if orphans else t
         totals: dict[str, int] = {}
+        s = self.settings
         async with redis_boundary("reap"):
             for pk in self.keys.parts:
-                members = await self.redis.zrangebyscore(
-                    pk.leases, "-inf", f"({t}", 0, REAP_BATCH)
-                if not members:
-                    continue
-                keys = self._outcome_keys(pk)
-                for m in members:
-                    host = m.decode().split("\n", 2)[1]
-                    keys += (pk.host(host), pk.hot(host), pk.cold(host))
-                s = self.settings
-                flat = await self.scripts.reap(
-                    keys, [t, s.store.hot_capacity, s.lease.max_attempts, len(members), *members])
-                for result in flat[1::2]:
-                    r = result.decode() if isinstance(result, bytes) else result
-                    totals[r] = totals.get(r, 0) + 1
+                while True:
+                    members = await self.redis.zrangebyscore(
+                        pk.leases, "-inf", f"({cutoff}", 0, REAP_BATCH)
+                    if not members:
+                        break
+                    keys = self._outcome_keys(pk)
+                    for m in members:
+                        host = m.decode().split("\n", 2)[1]
+                        keys += (pk.host(host), pk.hot(host), pk.cold(host))
+                    flat = await self.scripts.reap(
+                        keys, [t, cutoff, s.store.hot_capacity, s.lease.max_attempts,
+                               len(members), *members])
+                    for result in flat[1::2]:
+                        r = result.decode() if isinstance(result, bytes) else result
+                        totals[r] = totals.get(r, 0) + 1
+                    if len(members) < REAP_BATCH:
+                        break
+        return totals
+
+    async def recover(self, now: int | None = None) -> dict[str, int]:
+        """Make a resumed embedded job runnable: every lease is an orphan of a process
+        that is gone (reaped as expired), and no host waits past ``now`` plus the longest
+        gap the settings allow (a schedule written by a faulty clock, say)."""
+        t = self._now(now)
+        totals = await self.reap(t, orphans=True)
+        latest = t + int(self.settings.politeness.max_delay_s * 1000)
+        pulled = 0
+        async with redis_boundary("recover"):
+            for pk in self.keys.parts:
+                late = await self.redis.zrangebyscore(pk.due, f"({latest}", "+inf")
+                if late:
+                    await self.redis.zadd(pk.due, {h: t for h in late}, xx=True)
+                    pulled += len(late)
+        if pulled:
+            totals["rescheduled"] = pulled
         return totals
 
     # -- operator controls -----------------------------------------------------------------
