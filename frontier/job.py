@@ -99,6 +99,7 @@ async def open_job(settings: JobSettings, *, stored: bool = False) -> AsyncItera
                     "partitions and buckets are fixed when a job is created")
             await save_settings(client, settings)
         store = FrontierStore(client, settings)
+        await store.sync_clock()  # leases and schedules on the server's clock
         if server is None:
             await store.tune_server()
         admission = Admission(store, scope_from_settings(settings, settings.seeds),

@@ -32,6 +32,8 @@ PROMOTE_LIMIT = 1000  # due hosts moved to ready per lease_pick call
 REAP_BATCH = 500  # expired leases handled per reap call and partition
 CLAIM_TTL_MS = 10_000  # a picked host returns to due if not leased within this time
 ORPHAN_CUTOFF_MS = 2**62  # later than any lease's expiry
+CLOCK_RESYNC_S = 60.0  # how often a store synced with the server's clock checks it again
+CLOCK_SKEW_WARN_MS = 1000  # a local clock this far off the server's is logged
 LEASE_ROUNDS = 2
 COLD_SCAN_CHUNK = 1000  # cold-list entries read per call when looking for one URL
 COLD_SCAN_LIMIT = 200_000  # entries of one cold list searched before giving up
@@ -125,6 +127,8 @@ class FrontierStore:
         self.buckets = seen_buckets(settings)
         self.scripts = Scripts.register(redis)
         self._next_partition = 0
+        self._offset_ms = 0  # server clock - local clock, once synced
+        self._synced_at: float | None = None  # time.monotonic() of the last sync
 
     @property
     def partitions(self) -> int:
@@ -145,7 +149,28 @@ class FrontierStore:
         return True
 
     def _now(self, now: int | None) -> int:
-        return now_ms(self.clock) if now is None else now
+        return now_ms(self.clock) + self._offset_ms if now is None else now
+
+    async def sync_clock(self) -> int:
+        """Take the Redis server's clock as this store's: lease expiries, schedules and
+        reaps then agree between machines whose own clocks differ. Returns the offset
+        (server - local, ms). A synced store checks again every ``CLOCK_RESYNC_S``."""
+        async with redis_boundary("clock"):
+            before = self.clock()
+            seconds, micros = await self.redis.execute_command("TIME")
+            after = self.clock()
+        server = int(seconds) + int(micros) / 1e6
+        offset = int((server - (before + after) / 2) * 1000)
+        if abs(offset) > CLOCK_SKEW_WARN_MS and abs(offset - self._offset_ms) > CLOCK_SKEW_WARN_MS:
+            log.warning("this machine's clock is %.1f s off the Redis server's; sluice uses the "
+                        "server's for leases and schedules", offset / 1000)
+        self._offset_ms = offset
+        self._synced_at = time.monotonic()
+        return offset
+
+    async def _resync_clock(self) -> None:
+        if self._synced_at is not None and time.monotonic() - self._synced_at > CLOCK_RESYNC_S:
+            await self.sync_clock()
 
     def bucket_of(self, fingerprint: int) -> int:
         return fingerprint % self.buckets
@@ -212,6 +237,7 @@ class FrontierStore:
         leased and the other claims handed back. A second round
         asks the partitions that gave all they were asked for, if ``n`` is not reached.
         """
+        await self._resync_clock()
         t = self._now(now)
         parts = list(range(self.partitions))
         leases: list[Lease] = []
