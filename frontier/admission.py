@@ -80,7 +80,8 @@ class Admission:
             if type(fact) is str:  # the reason the URL was refused
                 raw = raw[: max_length * 2]
                 p = partition_of(raw, parts)
-                batches.setdefault(p, PartitionBatch()).refused.append((fingerprint(raw), fact))
+                batches.setdefault(p, PartitionBatch()).refused.append(
+                    (fingerprint(raw), fact, raw))
                 continue
             url, host, fp = fact
             key, partition = places.get(host) or self._place(host)
@@ -89,7 +90,7 @@ class Admission:
                 batch = batches[partition] = PartitionBatch()
             reason = check(url, host, depth)
             if reason is not None:
-                batch.refused.append((fp, reason))
+                batch.refused.append((fp, reason, url))
                 continue
             queue = batch.hosts.get(key)
             if queue is None:

@@ -5,8 +5,10 @@ budget, the host's place in its partition's schedule) and what can be recomputed
 the URL alone (trap signs). :func:`format_explain` renders it as plain text; the dict
 itself is JSON-ready.
 
-What is *not* stored, and so not shown: the outcome of one URL after its lease ended
-(fetched, failed and excluded URLs are only counted per partition), and how many
+The outcome of one URL after its lease ended (fetched, failed, excluded) is counted per
+partition in Redis, and written with its reason to the fetch logs: given the logs
+(``sluice explain --log FILE``, or the crawl's own log next to its state folder),
+:func:`explain` shows the URL's lines from them. What is not kept anywhere: how many
 in-links and distinct hosts gave a queued URL its cash: keeping that per URL would cost
 more bytes per queued URL than the frontier's memory goal (mean URL length + 24 bytes).
 """
@@ -14,7 +16,11 @@ more bytes per queued URL than the frontier's memory goal (mean URL length + 24 
 from __future__ import annotations
 
 import textwrap
+from collections.abc import Iterable
+from pathlib import Path
 from typing import Any
+
+import orjson
 
 from frontier.exceptions import UrlError
 from frontier.model import CASH_SCALE, CASH_UNIT, decode_score
@@ -36,8 +42,8 @@ STATE_NOTES = {
     QUEUED_COLD: "waits beyond the host's hot window in arrival order; in-links found now add no credit",
     LEASED: "held by a worker until the lease expires",
     DEAD: "failed too often; kept in the dead letters",
-    SEEN: "admitted before and no longer queued: fetched, failed, excluded (blocked host, "
-          "absolute host budget, scope) or requeued later; per-URL outcomes are not stored",
+    SEEN: "admitted before and no longer queued: fetched, failed or excluded (blocked host, "
+          "absolute host budget, scope); the fetch log has its outcome and reason",
     UNKNOWN: "never admitted, or refused for its host's earned budget (such URLs are not "
              "remembered, so they may be admitted when offered again)",
 }
@@ -103,8 +109,32 @@ def _schedule(facts: dict[str, Any], now_ms: int) -> dict[str, Any]:
     }
 
 
-async def explain(store: FrontierStore, url: str) -> dict[str, Any]:
-    """What the frontier knows about ``url`` (JSON-ready)."""
+LOG_LINES_SHOWN = 5  # a URL's latest fetch-log lines shown by explain
+
+
+def logged_outcomes(url: str, logs: Iterable[Path]) -> list[dict[str, Any]]:
+    """The fetch-log lines of one canonical URL, oldest first (the last few)."""
+    needle = orjson.dumps(url)  # the URL as it appears in a line, quoted and escaped
+    found: list[dict[str, Any]] = []
+    for path in logs:
+        try:
+            with open(path, "rb") as lines:
+                for line in lines:
+                    if needle in line:
+                        try:
+                            entry = orjson.loads(line)
+                        except orjson.JSONDecodeError:
+                            continue  # a torn last line
+                        if entry.get("url") == url:
+                            found.append(entry)
+        except OSError:
+            continue
+    return found[-LOG_LINES_SHOWN:]
+
+
+async def explain(store: FrontierStore, url: str, logs: Iterable[Path] = ()) -> dict[str, Any]:
+    """What the frontier knows about ``url`` (JSON-ready); ``logs`` are fetch logs to
+    search for its outcomes."""
     s = store.settings
     try:
         canonical = canonicalize(url, max_length=s.scope.max_url_length,
@@ -156,6 +186,9 @@ async def explain(store: FrontierStore, url: str) -> dict[str, Any]:
     out["trap"] = {"signs": trap_signs(canonical, s.priority),
                    "factor": trap_factor(canonical, s.priority)}
     out["cash_sources"] = CASH_SOURCES_NOTE
+    out["logged"] = [{k: entry.get(k) for k in ("outcome", "reason", "fetched_at", "status",
+                                                "warc_file", "warc_offset")}
+                     for entry in logged_outcomes(canonical, logs)]
     return out
 
 
@@ -180,6 +213,11 @@ def format_explain(info: dict[str, Any]) -> str:
         lines.append(f"attempts: {info['attempts']} failed so far")
     if "dead_reason" in info:
         lines.append(f"dead:     {info['dead_reason']}")
+    for entry in info.get("logged", ()):
+        reason = f" ({entry['reason']})" if entry.get("reason") else ""
+        status = f" HTTP {entry['status']}" if entry.get("status") else ""
+        warc = f", {entry['warc_file']} @ {entry['warc_offset']}" if entry.get("warc_file") else ""
+        lines.append(f"logged:   {entry['fetched_at']} {entry['outcome']}{reason}{status}{warc}")
     h = info["host_fields"]
     b = h["budget"]
     limit = "none" if b["limit"] is None else str(b["limit"])

@@ -81,6 +81,13 @@ class PartitionKeys:
         """SET of the politeness keys known in this partition."""
         return f"{self.tag}:hosts"
 
+    @property
+    def ended(self) -> str:
+        """LIST of 'outcome reason url': URLs that reached a final state outside a worker's
+        own completion (excluded on admission, dead, dropped with a blocked host), waiting
+        for a worker to write them to its fetch log."""
+        return f"{self.tag}:ended"
+
     def seen(self, bucket: int) -> str:
         """SET of 64-bit URL fingerprints (intset encoded: ~8 bytes each)."""
         return f"{self.tag}:seen:{bucket}"

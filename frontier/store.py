@@ -32,6 +32,7 @@ PROMOTE_LIMIT = 1000  # due hosts moved to ready per lease_pick call
 REAP_BATCH = 500  # expired leases handled per reap call and partition
 CLAIM_TTL_MS = 10_000  # a picked host returns to due if not leased within this time
 ORPHAN_CUTOFF_MS = 2**62  # later than any lease's expiry
+ENDED_BATCH = 1000  # ended-journal entries taken per partition and call
 CLOCK_RESYNC_S = 60.0  # how often a store synced with the server's clock checks it again
 CLOCK_SKEW_WARN_MS = 1000  # a local clock this far off the server's is logged
 LEASE_ROUNDS = 2
@@ -73,7 +74,7 @@ class PartitionBatch:
 
     hosts: dict[str, list[QueuedUrl]] = field(default_factory=dict)  # those with URLs
     budgets: dict[str, int] = field(default_factory=dict)
-    refused: list[tuple[int, str]] = field(default_factory=list)  # (fingerprint, reason)
+    refused: list[tuple[int, str, str]] = field(default_factory=list)  # (fingerprint, reason, URL)
     # host -> distinct other politeness keys whose pages link to it in this batch (a host
     # with no URLs here, linked to only by pages fetched already, is a link-only host)
     sources: dict[str, set[str]] = field(default_factory=dict)
@@ -221,9 +222,10 @@ class FrontierStore:
             keys.append(pk.linking_hosts(host))
             linking = sources[host]
             args += (len(linking), *linking)
-        for fp, reason in batch.refused:
-            args += (slot(fp), fp, reason)
+        for fp, reason, url in batch.refused:
+            args += (slot(fp), fp, reason, url.encode("utf-8", "replace"))
         keys += [pk.seen(b) for b in slots]  # dicts keep insertion order: slot i is key i
+        keys.append(pk.ended)
         return (self.scripts.admit, keys, args)
 
     # -- lease ---------------------------------------------------------------------------
@@ -332,6 +334,7 @@ class FrontierStore:
                 min(c.crawl_delay_s, pol.crawl_delay_cap_s) * 1000)
             args += (c.lease.member, c.outcome.value, c.reason or "none", int(c.response_s * 1000),
                      int(c.extra_delay_s * 1000), crawl)
+        keys.append(pk.ended)
         return (self.scripts.complete, keys, args)
 
     async def reap(self, now: int | None = None, *, orphans: bool = False) -> dict[str, int]:
@@ -355,6 +358,7 @@ class FrontierStore:
                     for m in members:
                         host = m.decode().split("\n", 2)[1]
                         keys += (pk.host(host), pk.hot(host), pk.cold(host))
+                    keys.append(pk.ended)
                     flat = await self.scripts.reap(
                         keys, [t, cutoff, s.store.hot_capacity, s.lease.max_attempts,
                                len(members), *members])
@@ -490,6 +494,20 @@ class FrontierStore:
             if len(chunk) < COLD_SCAN_CHUNK:
                 break
         return None, None
+
+    async def take_ended(self, most: int = ENDED_BATCH) -> list[tuple[str, str, str]]:
+        """Take up to ``most`` entries of each partition's ended journal: (outcome, reason,
+        URL) of URLs that reached a final state outside a worker's completion (excluded
+        on admission, dead, dropped with a blocked host). The caller writes them to its
+        fetch log; an entry is taken once."""
+        async with redis_boundary("ended journal"):
+            rows = await asyncio.gather(*(self.redis.lpop(pk.ended, most) for pk in self.keys.parts))
+        out = []
+        for row in rows:
+            for raw in row or ():
+                outcome, reason, url = raw.decode("utf-8", "replace").split(" ", 2)
+                out.append((outcome, reason, url))
+        return out
 
     async def is_drained(self) -> bool:
         """True when nothing is queued or leased."""

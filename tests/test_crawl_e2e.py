@@ -194,3 +194,18 @@ def test_bad_inputs_end_as_recorded_outcomes(crawl_result: dict[str, Any]) -> No
     hops = [p for p in by_path if p.startswith("/endless-redirect/")]
     assert 0 < len(hops) <= HOST_BUDGET
     assert crawl_result["summary"]["balanced"]
+
+
+def test_fetch_log_accounts_for_every_url(crawl_result: dict[str, Any]) -> None:
+    # one line per final state (fetched, failed, excluded, dead): counting the log's lines
+    # by outcome and reason gives the frontier's counts, exclusions on admission (scope,
+    # host budget, malformed URLs) and dead URLs included
+    lines = [json.loads(x) for x in (crawl_result["out"] / "fetches.jsonl").read_text().splitlines()]
+    s = crawl_result["summary"]
+    by_outcome = Counter(ln["outcome"] for ln in lines)
+    assert {k: by_outcome.get(k, 0) for k in ("fetched", "failed", "excluded", "dead")} == {
+        k: s[k] for k in ("fetched", "failed", "excluded", "dead")}
+    by_reason = Counter(f"{ln['outcome']}:{ln['reason']}" for ln in lines
+                        if ln["outcome"] != "fetched")
+    assert dict(by_reason) == {k: v for k, v in s["reasons"].items() if v}
+    assert s["excluded"] > 0 and s["dead"] + s["failed"] > 0  # the web has both

@@ -7,6 +7,7 @@ queue is its rank by cash. Canonical forms follow RFC 3986 section 6.2.2.
 from __future__ import annotations
 
 import json
+from pathlib import Path
 
 import pytest
 
@@ -103,3 +104,27 @@ async def test_trap_signs_and_due_host(make_store: StoreFactory, clock: Clock) -
     # an endless calendar's page ends in a date (common practice, no source)
     assert DATE_PATH in cal["trap"]["signs"] and cal["trap"]["factor"] < 1
     assert "date_path" in format_explain(cal)
+
+
+async def test_an_ended_url_shows_its_outcome_from_the_fetch_log(
+        make_store: StoreFactory, tmp_path: Path) -> None:
+    from datetime import UTC, datetime
+
+    from workers.archive import FetchEntry, FetchLog
+
+    store = make_store(politeness=NO_DELAY)
+    await admission(store).admit([Candidate("http://e.test/a"), Candidate("http://f.test/b")])
+    log = FetchLog(tmp_path)
+    for lease in await store.lease(2):
+        await store.complete(Completion(lease, Outcome.FETCHED, "http_200"))
+        log.write(FetchEntry(url=lease.url, outcome="fetched", status=200,
+                             fetched_at=datetime(2026, 1, 2, tzinfo=UTC), warc_file="x.warc.gz",
+                             warc_offset=7))
+    log.close()
+    info = await explain(store, "HTTP://E.TEST/a", [tmp_path / "fetches.jsonl"])
+    assert info["state"] == SEEN
+    assert info["logged"] == [{"outcome": "fetched", "reason": None, "status": 200,
+                               "fetched_at": "2026-01-02T00:00:00Z", "warc_file": "x.warc.gz",
+                               "warc_offset": 7}]
+    assert "logged:   2026-01-02T00:00:00Z fetched HTTP 200, x.warc.gz @ 7" in format_explain(info)
+    assert (await explain(store, "http://e.test/a"))["logged"] == []  # no log given

@@ -47,6 +47,7 @@ IDLE_SLEEP_MIN_S = 0.01
 IDLE_SLEEP_MAX_S = 0.25  # a worker with nothing to lease looks again at least this often
 STORE_RETRY_S = 0.5
 FETCHED_MEMORY = 200_000  # URLs this worker fetched, remembered to skip links back to them
+ENDED_EVERY_S = 1.0  # how often the frontier's ended journal is copied to the fetch log
 
 
 @dataclass
@@ -142,6 +143,7 @@ class Worker:
         # lease in chunks: a call per freed slot would cost a round trip per page
         self._lease_chunk = max(1, min(s.lease.batch, s.fetch.concurrency) // LEASE_CHUNK_DIVISOR)
         self.pages = 0
+        self._ended_at = 0.0  # time.monotonic() of the last copy of the ended journal
         self.archive: WarcArchive | None = None
         self.fetch_log: FetchLog | None = None
 
@@ -169,6 +171,7 @@ class Worker:
             try:
                 await flusher  # re-raises what stopped it
                 await self._flush()
+                await self._log_ended(force=True)
             finally:
                 self.archive.close()
                 self.fetch_log.close()
@@ -485,10 +488,28 @@ class Worker:
                     released += 1
                 else:
                     self._remember_fetched(f.completion.lease.url)
+            await self._log_ended()
             if self.fetch_log is not None:
                 self.fetch_log.flush()
             await self.budget.release(released)
             self._finish_pages()  # pages fetched while this batch was written back
+
+    async def _log_ended(self, *, force: bool = False) -> None:
+        """Copy the frontier's ended journal (URLs excluded on admission, dead, dropped
+        with a blocked host) into the fetch log, at most once a second unless forced, so
+        that the log has a line for every URL's final state."""
+        now = time.monotonic()
+        if self.fetch_log is None or (not force and now - self._ended_at < ENDED_EVERY_S):
+            return
+        self._ended_at = now
+        try:
+            ended = await self.store.take_ended()
+        except StoreUnavailable:
+            return  # the journal keeps them for the next time
+        at = datetime.now(UTC)
+        for outcome, reason, url in ended:
+            self.fetch_log.write(FetchEntry(url=url, outcome=outcome, reason=reason,
+                                            fetched_at=at, host=url_host(url) or ""))
 
     def _remember_fetched(self, url: str) -> None:
         if len(self._fetched_urls) >= FETCHED_MEMORY:

@@ -148,14 +148,21 @@ local function flush_released(S, out)
   each_chunk(out.idle, 1000, function(...) redis.call('HDEL', S.prio, ...) end)
 end
 
+-- The journal of URLs that reached a final state outside a worker's own completion: a
+-- worker copies it into its fetch log, so the log accounts for every URL.
+local function journal(ended, outcome, reason, url)
+  redis.call('RPUSH', ended, outcome .. ' ' .. reason .. ' ' .. url)
+end
+
 -- A failed attempt: queue the URL again, or past the limit, move it to the dead letters.
 -- Returns 'requeued', 'dead' or 'excluded' (the host was blocked meanwhile).
--- C = {counts=, reasons=, attempts=, dead=}
+-- C = {counts=, reasons=, attempts=, dead=, ended=}
 local function retry_or_bury(C, hk, hot, cold, url, score, reason, cap, max_attempts)
   if redis.call('HGET', hk, 'state') == 'blocked' then
     redis.call('HDEL', C.attempts, url)
     redis.call('HINCRBY', C.counts, 'excluded', 1)
     redis.call('HINCRBY', C.reasons, 'excluded:host_blocked', 1)
+    journal(C.ended, 'excluded', 'host_blocked', url)
     return 'excluded'
   end
   local attempts = redis.call('HINCRBY', C.attempts, url, 1)
@@ -164,6 +171,7 @@ local function retry_or_bury(C, hk, hot, cold, url, score, reason, cap, max_atte
     redis.call('HSET', C.dead, url, reason)
     redis.call('HINCRBY', C.counts, 'dead', 1)
     redis.call('HINCRBY', C.reasons, 'dead:' .. reason, 1)
+    journal(C.ended, 'dead', reason, url)
     return 'dead'
   end
   push_url(hot, cold, url, score, cap)

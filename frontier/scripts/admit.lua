@@ -5,13 +5,14 @@
 --                  linking-hosts HyperLogLog (4 keys)
 -- then             per link-only host: its linking-hosts HyperLogLog (1 key)
 -- then             the URL-seen buckets this batch touches
+-- KEYS[#KEYS]      the ended journal (URLs excluded here)
 -- ARGV[1] now (ms)  ARGV[2] hot capacity  ARGV[3] number of host groups  ARGV[4] excluded count
 -- ARGV[5] budget base  ARGV[6] budget per linking host  ARGV[7] number of link-only hosts
 -- then per group:  host, absolute budget (0: none), seeded (1: a seed of this host is in
 --                  the batch), m, m linking hosts (other hosts whose pages link here), n,
 --                  and n times: seen slot, fingerprint, score, credit, url
 -- then per link-only host (only links to pages fetched already): m, m linking hosts
--- then per excluded URL: seen slot, fingerprint, reason
+-- then per excluded URL: seen slot, fingerprint, reason, url
 -- (a seen slot is a 1-based index into the seen-bucket part of KEYS)
 -- A new URL is queued on its host (or excluded: host blocked, host budget spent); a URL
 -- seen before that still waits in its host's hot window gains `credit` (OPIC cash).
@@ -29,12 +30,15 @@ local base, per = tonumber(ARGV[5]), tonumber(ARGV[6])
 local nlinked = tonumber(ARGV[7])
 local seen_base = 7 + 4 * ngroups + nlinked
 local S = {due = KEYS[3], ready = KEYS[4], prio = KEYS[5], claims = KEYS[6]}
+local ended = KEYS[#KEYS]
 local new, credited, excluded, dups = 0, 0, 0, 0
 local reasons = {}
+local journaled = {}  -- 'excluded reason url' lines for the ended journal
 
-local function exclude(reason)
+local function exclude(reason, url)
   excluded = excluded + 1
   reasons[reason] = (reasons[reason] or 0) + 1
+  journaled[#journaled + 1] = 'excluded ' .. reason .. ' ' .. url
 end
 
 -- The URLs this host may hold now, and whether that limit is earned (may still grow).
@@ -96,9 +100,9 @@ for g = 0, ngroups - 1 do
     end
     if fresh then
       if state == 'blocked' then
-        exclude('host_blocked')
+        exclude('host_blocked', url)
       elseif full then
-        exclude(earned and 'host_link_budget' or 'host_budget')
+        exclude(earned and 'host_link_budget' or 'host_budget', url)
       else
         if not q then
           q = queue_open(hot, cold, cap)
@@ -146,10 +150,10 @@ for l = 0, nlinked - 1 do
 end
 
 for _ = 1, nexcl do
-  local slot, fp, reason = ARGV[a], ARGV[a + 1], ARGV[a + 2]
-  a = a + 3
+  local slot, fp, reason, url = ARGV[a], ARGV[a + 1], ARGV[a + 2], ARGV[a + 3]
+  a = a + 4
   if redis.call('SADD', KEYS[seen_base + tonumber(slot)], fp) == 1 then
-    exclude(reason)
+    exclude(reason, url)
   else
     dups = dups + 1
   end
@@ -166,5 +170,6 @@ if excluded > 0 then
   for reason, count in pairs(reasons) do
     redis.call('HINCRBY', KEYS[2], 'excluded:' .. reason, count)
   end
+  each_chunk(journaled, 1000, function(...) redis.call('RPUSH', ended, ...) end)
 end
 return {new, credited, excluded, dups}

@@ -2,6 +2,7 @@
 -- KEYS[1] counts  KEYS[2] reasons  KEYS[3] leases  KEYS[4] attempts  KEYS[5] dead
 -- KEYS[6] due     KEYS[7] ready    KEYS[8] prio    KEYS[9] claims
 -- KEYS[10 ..] per lease i (0-based): host hash, hot ZSET, cold LIST of the lease's host
+-- KEYS[#KEYS] the ended journal (URLs that end dead here)
 -- ARGV[1] now (ms)  ARGV[2] hot capacity  ARGV[3] max attempts  ARGV[4] min delay (ms)
 -- ARGV[5] response-time factor  ARGV[6] cap on factor x response time (ms)  ARGV[7] n
 -- then per lease: lease member, outcome (fetched|failed|excluded|retry), reason,
@@ -14,7 +15,8 @@ local cap = tonumber(ARGV[2])
 local max_attempts = tonumber(ARGV[3])
 local min_delay, factor, rt_cap = tonumber(ARGV[4]), tonumber(ARGV[5]), tonumber(ARGV[6])
 local n = tonumber(ARGV[7])
-local C = {counts = KEYS[1], reasons = KEYS[2], attempts = KEYS[4], dead = KEYS[5]}
+local C = {counts = KEYS[1], reasons = KEYS[2], attempts = KEYS[4], dead = KEYS[5],
+           ended = KEYS[#KEYS]}
 local S = {due = KEYS[6], ready = KEYS[7], prio = KEYS[8], claims = KEYS[9]}
 local out = {}
 local tally = {}

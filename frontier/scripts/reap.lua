@@ -2,6 +2,7 @@
 -- KEYS[1] counts  KEYS[2] reasons  KEYS[3] leases  KEYS[4] attempts  KEYS[5] dead
 -- KEYS[6] due     KEYS[7] ready    KEYS[8] prio    KEYS[9] claims
 -- KEYS[10 ..] per lease i (0-based): host hash, hot ZSET, cold LIST of the lease's host
+-- KEYS[#KEYS] the ended journal (URLs that end dead here)
 -- ARGV[1] now (ms)  ARGV[2] cutoff (ms)  ARGV[3] hot capacity  ARGV[4] max attempts
 -- ARGV[5] n  ARGV[6 ..] lease members
 -- A lease expiring at or after `cutoff`, or already gone, is left alone. An earlier one
@@ -15,7 +16,8 @@ local cutoff = tonumber(ARGV[2])
 local cap = tonumber(ARGV[3])
 local max_attempts = tonumber(ARGV[4])
 local n = tonumber(ARGV[5])
-local C = {counts = KEYS[1], reasons = KEYS[2], attempts = KEYS[4], dead = KEYS[5]}
+local C = {counts = KEYS[1], reasons = KEYS[2], attempts = KEYS[4], dead = KEYS[5],
+           ended = KEYS[#KEYS]}
 local S = {due = KEYS[6], ready = KEYS[7], prio = KEYS[8], claims = KEYS[9]}
 local out = {}
 for i = 0, n - 1 do
