@@ -108,7 +108,7 @@ async def _crawl(settings: JobSettings, out: Path, workers: int, *, quiet: bool 
 
 async def _crawl_job(settings: JobSettings, out: Path, workers: int, registry: CollectorRegistry,
                      *, quiet: bool, admin: str | None) -> dict[str, Any]:
-    from frontier.daemon import Daemon, serve
+    from frontier.daemon import Daemon, serve_admin
     from frontier.job import admit_seeds, open_job
     from frontier.metrics import WorkerMetrics
     from frontier.progress import Progress
@@ -133,7 +133,7 @@ async def _crawl_job(settings: JobSettings, out: Path, workers: int, registry: C
                 w.stop()
 
         watch_signals(interrupt)
-        runner = await serve(daemon.app(), admin) if admin else None
+        runner = await serve_admin(daemon, admin) if admin else None
         background = asyncio.create_task(daemon.run(stop))
         started = time.monotonic()
         progress = Progress(daemon, quiet=quiet)
@@ -161,7 +161,7 @@ def cmd_crawl(a: argparse.Namespace) -> int:
 
 
 def cmd_daemon(a: argparse.Namespace) -> int:
-    from frontier.daemon import Daemon, serve
+    from frontier.daemon import Daemon, serve_admin
     from frontier.job import admit_seeds, open_job
 
     settings = _settings(a)
@@ -174,7 +174,7 @@ def cmd_daemon(a: argparse.Namespace) -> int:
             daemon = Daemon(job, CollectorRegistry())
             stop = asyncio.Event()
             watch_signals(stop.set)
-            runner = await serve(daemon.app(), a.admin) if a.admin else None
+            runner = await serve_admin(daemon, a.admin) if a.admin else None
             print(f"sluice daemon: job {settings.name} on {settings.redis.url or 'embedded Redis'}"
                   + (f", admin http://{a.admin}/" if a.admin else ""), flush=True)
             try:

@@ -17,6 +17,7 @@ from aiohttp import web
 from prometheus_client import CollectorRegistry, generate_latest
 from prometheus_client.exposition import CONTENT_TYPE_LATEST
 
+from frontier.admin_auth import admin_guard, allowed_host_headers, token_for
 from frontier.budget import PageBudget
 from frontier.exceptions import SluiceError, StoreUnavailable
 from frontier.job import Job
@@ -102,8 +103,9 @@ class Daemon:
 
     # -- admin API ------------------------------------------------------------------------
 
-    def app(self) -> web.Application:
-        app = web.Application()
+    def app(self, middlewares: tuple[Any, ...] = ()) -> web.Application:
+        """The admin API; :func:`serve_admin` serves it behind the admin guard."""
+        app = web.Application(middlewares=middlewares)
         app.router.add_get("/", self._status_page)
         app.router.add_get("/status", self._status)
         app.router.add_get("/metrics", self._metrics)
@@ -152,6 +154,15 @@ async def serve(app: web.Application, address: str) -> web.AppRunner:
     await runner.setup()
     await web.TCPSite(runner, host or "127.0.0.1", int(port)).start()
     return runner
+
+
+async def serve_admin(daemon: Daemon, address: str) -> web.AppRunner:
+    """Serve the daemon's admin API on HOST:PORT behind the admin guard
+    (frontier/admin_auth.py: token for changes, no cross-site posts, Host checked)."""
+    settings = daemon.job.settings
+    token = token_for(settings, address)
+    guard = admin_guard(token, allowed_host_headers(address, settings.admin.allowed_hosts))
+    return await serve(daemon.app((guard,)), address)
 
 
 def metrics_app(registry: CollectorRegistry) -> web.Application:

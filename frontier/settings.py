@@ -173,6 +173,18 @@ class OutputSettings(_Part):
     warc_prefix: str = "sluice"
 
 
+class AdminSettings(_Part):
+    """The admin HTTP API. Its token is never stored with the job: it comes from the
+    ``SLUICE_ADMIN_TOKEN`` variable or the file named here."""
+
+    token_file: Path | None = Field(
+        default=None, description="file holding the admin token (one line); without it and "
+        "without SLUICE_ADMIN_TOKEN, a loopback API makes one in the state folder")
+    allowed_hosts: tuple[str, ...] = Field(
+        default=(), description="names the API answers to in the Host header, besides its "
+        "own address and localhost (a guard against DNS rebinding)")
+
+
 class JobSettings(BaseSettings):
     """A crawl job: everything a daemon and its workers need to agree on."""
 
@@ -192,6 +204,7 @@ class JobSettings(BaseSettings):
     fetch: FetchSettings = FetchSettings()
     priority: PrioritySettings = PrioritySettings()
     output: OutputSettings = OutputSettings()
+    admin: AdminSettings = AdminSettings()
 
     @classmethod
     def settings_customise_sources(
