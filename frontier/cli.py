@@ -54,6 +54,11 @@ def _job_flags(p: argparse.ArgumentParser) -> None:
     p.add_argument("--user-agent", help="an honest User-Agent with a contact URL")
     p.add_argument("--map-hosts", action="append", default=[], metavar="PATTERN=ADDR",
                    help="send PATTERN's hosts to ADDR[:PORT] (e.g. '*.test=127.0.0.1:8080')")
+    p.add_argument("--map-port", action="append", type=int, default=[], metavar="PORT",
+                   help="a URL port a port-less --map-hosts entry keeps (repeatable; "
+                   "default 80 and 443)")
+    p.add_argument("--map-remote", action="store_true", default=None,
+                   help="allow --map-hosts entries to non-loopback addresses")
     p.add_argument("--allow-host", action="append", default=[], help="extra in-scope host pattern")
     p.add_argument("--state", type=Path, help="state folder of the embedded Redis")
 
@@ -80,6 +85,8 @@ def _overrides(a: argparse.Namespace) -> dict[str, Any]:
     put("politeness.min_delay_s", a.min_delay)
     put("fetch.user_agent", a.user_agent)
     put("fetch.map_hosts", a.map_hosts)
+    put("fetch.map_ports", a.map_port)
+    put("fetch.map_remote", a.map_remote)
     put("state_dir", str(a.state) if a.state else None)
     if a.seeds:
         from frontier.job import read_seeds

@@ -2,15 +2,20 @@
 
 Classification tests send no traffic. The fetch tests talk only to an aiohttp server
 on 127.0.0.1 that the test starts; every other destination is refused before a socket
-is opened (the server counts its hits to prove it).
+is opened (the server counts its hits to prove it). An audit hook watches every
+``socket.connect`` made while a test of this module runs and blocks (and records) any
+destination outside loopback, so a guard bug cannot send traffic elsewhere either.
 """
 
 from __future__ import annotations
 
+import argparse
 import ipaddress
 import socket
+import sys
 from collections import Counter
-from collections.abc import AsyncIterator
+from collections.abc import AsyncIterator, Iterator
+from typing import Any
 
 import aiohttp
 import pytest
@@ -19,18 +24,66 @@ from aiohttp.abc import AbstractResolver, ResolveResult
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
+from frontier.cli import _job_flags, _overrides
 from frontier.exceptions import AddressRefused, ConfigError, FetchError
+from frontier.settings import FetchSettings, load_settings
+from workers.fetcher import Fetcher
 from workers.guard import (
     GuardedConnector,
     GuardedResolver,
     HostMap,
     check_address,
+    host_map_from_settings,
     parse_host_map,
     parse_ip_literal,
 )
 
 LOOPBACK = "127.0.0.1"
 CLIENT_TIMEOUT = aiohttp.ClientTimeout(total=5)
+UA = "sluice-test/0.1 (+http://operator.test/contact)"
+# RFC 5737 s.3: TEST-NET-1, documentation only. Used as a non-loopback map target that
+# is parsed and refused, never connected to (the audit hook below blocks it regardless).
+TEST_NET = "192.0.2.1"
+# RFC 9110 s.4.2.1 / s.4.2.2: the default ports of http and https.
+DEFAULT_PORTS = (80, 443)
+
+# -- no connection leaves loopback while this module runs -------------------------------------
+
+_WATCHES: list[list[Any]] = []
+
+
+def _is_loopback(host: str) -> bool:
+    # RFC 1122 s.3.2.1.3 (127.0.0.0/8) and RFC 4291 s.2.5.3 (::1).
+    try:
+        addr = ipaddress.ip_address(host.split("%", 1)[0])
+    except ValueError:
+        return False
+    return addr.is_loopback and (addr.version == 4 or addr == ipaddress.IPv6Address("::1"))
+
+
+def _audit(event: str, args: tuple[Any, ...]) -> None:
+    """PEP 578 audit hook: record and block socket connects outside loopback."""
+    if event != "socket.connect" or not _WATCHES:
+        return
+    address = args[1]
+    if isinstance(address, tuple) and not _is_loopback(str(address[0])):
+        _WATCHES[-1].append(address)
+        raise PermissionError(f"test module refuses to connect to {address!r}")
+
+
+sys.addaudithook(_audit)
+
+
+@pytest.fixture(autouse=True)
+def outside_connects() -> Iterator[list[Any]]:
+    """Non-loopback connects this test attempted (each one blocked); must stay empty."""
+    seen: list[Any] = []
+    _WATCHES.append(seen)
+    try:
+        yield seen
+    finally:
+        _WATCHES.remove(seen)
+    assert seen == [], f"connects outside loopback were attempted: {seen}"
 
 # IANA IPv4 Special-Purpose Address Registry and IANA IPv6 Special-Purpose Address
 # Registry (RFC 6890, updated by RFC 8190): none of these is globally reachable.
@@ -100,9 +153,18 @@ def test_wrapped_ipv4_forms_are_refused(address: str, source: str) -> None:
 
 
 @pytest.mark.parametrize("address", PUBLIC)
-def test_public_addresses_pass(address: str) -> None:
-    # IANA registries: outside every special-purpose block, hence globally reachable.
-    check_address(address)
+async def test_public_addresses_pass(address: str) -> None:
+    # IANA registries: outside every special-purpose block, hence globally reachable;
+    # Python's ipaddress tables (a reference implementation of them) agree.
+    assert ipaddress.ip_address(address).is_global
+    check_address(address)  # raises AddressRefused on refusal
+    # A name answering with the address is handed back as it is, with the port asked
+    # for (classified only: the stub answers, nothing is contacted).
+    stub = StubResolver({"public.site.com": [address]})
+    guard = GuardedResolver(HostMap(), resolver=stub)
+    [answer] = await guard.resolve("public.site.com", 443)
+    assert (answer["host"], answer["port"]) == (address, 443)
+    assert stub.asked == ["public.site.com"]
 
 
 @pytest.mark.parametrize("spelling", LOOPBACK_SPELLINGS)
@@ -187,12 +249,195 @@ def test_host_map_entries_and_lookup() -> None:
         "site.test=[::1]x",
         "bad host.test=127.0.0.1",
         "*.=127.0.0.1",
+        "site.test=127.0.0.1:\u00b2",  # a superscript two: str.isdigit() but not a port
+        "site.test=127.0.0.1:\u0661\u0662",  # Arabic-Indic: RFC 3986 s.3.2.3 port = *DIGIT
+        "site.test=127.0.0.1:08080x",
+        "site.test=[::1%eth0]:8080",  # a zone id names an interface, not a destination
+        "ab\n.test=127.0.0.1",  # RFC 1035 s.2.3.1: letters, digits, hyphen only
+        "site.test=0.0.0.0:8080",  # unspecified: no destination (RFC 1122 s.3.2.1.3)
+        "site.test=[::]:8080",
     ],
 )
 def test_invalid_host_map_entries_name_the_entry(entry: str) -> None:
     with pytest.raises(ConfigError) as info:
         parse_host_map([entry])
     assert repr(entry) in str(info.value)
+
+
+@pytest.mark.parametrize(
+    "value",
+    # RFC 1122 s.3.2.1.3: all of 127.0.0.0/8 is loopback; RFC 4291 s.2.5.3: ::1.
+    ["127.0.0.1:8080", "127.0.0.2", "127.255.255.254:1", "[::1]:8080", "::1", "[::1]"],
+)
+def test_loopback_targets_need_no_opt_in(value: str) -> None:
+    target = parse_host_map([f"a.test={value}"]).lookup("a.test")
+    assert target is not None and _is_loopback(target[0])
+
+
+@pytest.mark.parametrize(
+    "value",
+    [
+        f"{TEST_NET}:8080",  # RFC 5737 TEST-NET-1
+        TEST_NET,
+        "[2001:db8::1]:8080",  # RFC 3849 documentation prefix
+        "10.0.0.5:8080",  # RFC 1918 private-use: still not loopback
+        "[::ffff:127.0.0.1]:8080",  # IPv4-mapped: loopback only as 127.0.0.0/8 or ::1
+        "128.0.0.1:8080",  # just past 127.0.0.0/8
+    ],
+)
+def test_remote_map_needs_the_opt_in(value: str) -> None:
+    entry = f"far.test={value}"
+    with pytest.raises(ConfigError) as info:
+        parse_host_map([entry])
+    message = str(info.value)
+    assert repr(entry) in message and "fetch.map_remote" in message and "loopback" in message
+    allowed = parse_host_map([entry], remote=True).lookup("far.test")
+    assert allowed is not None and not _is_loopback(allowed[0])
+
+
+async def test_remote_map_is_refused_before_any_connection() -> None:
+    # The fetcher is never built, so nothing can connect; the audit hook (autouse
+    # fixture) would also block and record any connect outside loopback.
+    entry = f"far.test={TEST_NET}:8080"
+    with pytest.raises(ConfigError) as info:
+        Fetcher(FetchSettings(map_hosts=(entry,)), UA)
+    assert repr(entry) in str(info.value) and "fetch.map_remote" in str(info.value)
+    with pytest.raises(ConfigError):
+        host_map_from_settings(load_settings(None, {"fetch": {"map_hosts": [entry]}}).fetch)
+
+
+async def test_remote_map_with_the_opt_in_still_keeps_the_port_rule(
+    outside_connects: list[Any],
+) -> None:
+    # With fetch.map_remote the entry parses; a URL port outside fetch.map_ports is still
+    # refused before a connection (none is attempted: the audit list stays empty).
+    fetch = FetchSettings(map_hosts=(f"far.test={TEST_NET}",), map_remote=True)
+    host_map = host_map_from_settings(fetch)
+    assert host_map.lookup("far.test") == (TEST_NET, None)
+    resolver = GuardedResolver.from_settings(fetch, resolver=StubResolver())
+    async with aiohttp.ClientSession(
+        connector=GuardedConnector(resolver), timeout=CLIENT_TIMEOUT, trust_env=False
+    ) as session:
+        with pytest.raises(AddressRefused) as info:
+            async with session.get("http://far.test:8080/"):
+                pass
+    assert info.value.reason == "map_port"
+    assert outside_connects == []
+
+
+@pytest.mark.parametrize("ports", [(0,), (65536,), (80, -1)])
+def test_bad_map_ports_name_the_setting(ports: tuple[int, ...]) -> None:
+    with pytest.raises(ConfigError) as info:
+        host_map_from_settings(FetchSettings(map_hosts=("*.test=127.0.0.1",), map_ports=ports))
+    assert "fetch.map_ports" in str(info.value)
+
+
+def test_settings_reach_the_host_map() -> None:
+    fetch = load_settings(
+        None, {"fetch": {"map_hosts": ["*.test=127.0.0.1"], "map_ports": [8401]}}
+    ).fetch
+    host_map = host_map_from_settings(fetch)
+    assert host_map.ports == frozenset({8401})
+    assert host_map.lookup("a.test") == (LOOPBACK, None)
+    assert host_map_from_settings(FetchSettings()).ports == frozenset(DEFAULT_PORTS)
+
+
+# --------------------------------------------------------------------------- flags
+
+
+def _flags(*argv: str) -> dict[str, Any]:
+    p = argparse.ArgumentParser()
+    _job_flags(p)
+    return _overrides(p.parse_args(list(argv)))
+
+
+def test_map_flags_set_the_settings() -> None:
+    overrides = _flags(
+        "--map-hosts", f"far.test={TEST_NET}", "--map-port", "8401", "--map-port", "8402",
+        "--map-remote",
+    )
+    assert overrides["fetch"]["map_ports"] == [8401, 8402]
+    assert overrides["fetch"]["map_remote"] is True
+    fetch = load_settings(None, overrides).fetch
+    assert (fetch.map_ports, fetch.map_remote) == ((8401, 8402), True)
+    assert host_map_from_settings(fetch).ports == frozenset({8401, 8402})
+
+
+def test_without_map_flags_the_settings_keep_their_defaults() -> None:
+    overrides = _flags("--map-hosts", "*.test=127.0.0.1")
+    assert set(overrides["fetch"]) == {"map_hosts"}  # a job file's values are not overridden
+    fetch = load_settings(None, overrides).fetch
+    assert (fetch.map_ports, fetch.map_remote) == (DEFAULT_PORTS, False)
+    remote = load_settings(None, _flags("--map-hosts", f"x.test={TEST_NET}")).fetch
+    with pytest.raises(ConfigError) as info:  # a remote map without --map-remote
+        host_map_from_settings(remote)
+    assert "--map-remote" in str(info.value)
+
+
+def test_map_port_flag_takes_only_numbers() -> None:
+    p = argparse.ArgumentParser()
+    _job_flags(p)
+    with pytest.raises(SystemExit):
+        p.parse_args(["--map-port", "http"])
+
+
+# --------------------------------------------------------------------------- fuzz
+
+_MAP_PIECES = st.sampled_from(
+    ["*.", "site", ".", "test", "=", "127.0.0.1", "127.0.0.9", "::1", "[", "]", ":", "8080",
+     "0", "65536", TEST_NET, "%25", "%", " ", "\n", "-", "_", "x", "\u00b2", "0x7f000001"]
+)
+
+
+def _check_entry(entry: str, remote: bool) -> None:
+    """Any entry is either a valid map whose target follows the rules, or a ConfigError
+    naming the entry; no other exception escapes."""
+    try:
+        host_map = parse_host_map([entry], remote=remote)
+    except ConfigError as exc:
+        assert repr(entry) in str(exc)
+        return
+    pattern = entry.strip().partition("=")[0].strip()
+    name = pattern[2:] if pattern.startswith("*.") else pattern
+    target = host_map.lookup(name)
+    assert target is not None
+    ip, port = target
+    addr = ipaddress.ip_address(ip)  # a plain address, no zone id
+    assert not addr.is_unspecified
+    assert remote or _is_loopback(ip)
+    assert port is None or 1 <= port <= 65535
+
+
+@pytest.mark.fuzz
+@given(entry=st.text(), remote=st.booleans())
+def test_fuzz_any_text_is_a_map_or_a_config_error(entry: str, remote: bool) -> None:
+    _check_entry(entry, remote)
+
+
+_LABELS = st.from_regex(r"[a-zA-Z0-9_]([a-zA-Z0-9_-]{0,8}[a-zA-Z0-9_])?", fullmatch=True)
+_ADDRESSES = st.one_of(
+    st.ip_addresses(v=4, network="127.0.0.0/8").map(str),
+    st.ip_addresses(v=6, network="::1/128").map(lambda a: f"[{a}]"),
+    st.sampled_from([TEST_NET, "[2001:db8::1]", "[::ffff:127.0.0.1]", "0.0.0.0", "[::1%1]"]),
+)
+_PORTS = st.one_of(st.just(""), st.integers(min_value=-1, max_value=70_000).map(lambda n: f":{n}"))
+_GRAMMAR_ENTRIES = st.builds(
+    lambda wild, labels, addr, port, pad: f"{pad}{wild}{'.'.join(labels)}{pad}={pad}{addr}{port}",
+    st.sampled_from(["", "*."]),
+    st.lists(_LABELS, min_size=1, max_size=4),
+    _ADDRESSES,
+    _PORTS,
+    st.sampled_from(["", " ", "\t"]),
+)
+
+
+@pytest.mark.fuzz
+@given(
+    entry=st.one_of(_GRAMMAR_ENTRIES, st.lists(_MAP_PIECES, max_size=12).map("".join)),
+    remote=st.booleans(),
+)
+def test_fuzz_entry_shaped_text_is_a_map_or_a_config_error(entry: str, remote: bool) -> None:
+    _check_entry(entry, remote)
 
 
 # --------------------------------------------------------------------------- resolver
@@ -287,9 +532,46 @@ async def test_host_map_bypasses_the_global_check_and_sets_the_port() -> None:
     guard = GuardedResolver(host_map, resolver=stub)
     [mapped] = await guard.resolve("exact.test", 80)
     assert (mapped["host"], mapped["port"], mapped["family"]) == ("::1", 9000, socket.AF_INET6)
-    [wild] = await guard.resolve("site.test", 8080)
-    assert (wild["host"], wild["port"], wild["family"]) == (LOOPBACK, 8080, socket.AF_INET)
+    [wild] = await guard.resolve("site.test", 80)
+    assert (wild["host"], wild["port"], wild["family"]) == (LOOPBACK, 80, socket.AF_INET)
     assert stub.asked == []
+
+
+async def test_port_less_map_keeps_only_the_listed_ports() -> None:
+    # Project contract: a port-less entry keeps the URL's port only if fetch.map_ports
+    # lists it; by default the http and https ports (RFC 9110 s.4.2.1, s.4.2.2).
+    stub = StubResolver()
+    guard = GuardedResolver(parse_host_map(["*.test=127.0.0.1"]), resolver=stub)
+    for port in DEFAULT_PORTS:
+        [answer] = await guard.resolve("site.test", port)
+        assert (answer["host"], answer["port"]) == (LOOPBACK, port)
+    for port in (8080, 6379, 18402, 1, 65535):
+        with pytest.raises(AddressRefused) as info:
+            await guard.resolve("site.test", port)
+        assert info.value.reason == "map_port"
+        assert str(port) in str(info.value) and "fetch.map_ports" in str(info.value)
+    listed = GuardedResolver(parse_host_map(["*.test=127.0.0.1"], ports=(8401,)), resolver=stub)
+    [answer] = await listed.resolve("a.site.test", 8401)
+    assert (answer["host"], answer["port"]) == (LOOPBACK, 8401)
+    with pytest.raises(AddressRefused) as info:
+        await listed.resolve("a.site.test", 80)  # the list replaces the default
+    assert info.value.reason == "map_port"
+    assert stub.asked == []
+
+
+async def test_a_map_with_a_port_sends_every_url_port_there() -> None:
+    # Project contract: 'host=ADDR:PORT' connects to PORT whatever port the URL names.
+    guard = GuardedResolver(parse_host_map(["*.test=127.0.0.1:8080"], ports=()))
+    for url_port in (80, 443, 8080, 18402, 1):
+        [answer] = await guard.resolve("x.test", url_port)
+        assert (answer["host"], answer["port"]) == (LOOPBACK, 8080)
+
+
+async def test_address_only_question_is_not_a_port() -> None:
+    # Port 0 asks for the address only (the 'ip' politeness key); it opens nothing.
+    guard = GuardedResolver(parse_host_map(["*.test=127.0.0.2"]))
+    [answer] = await guard.resolve("x.test", 0, socket.AF_UNSPEC)
+    assert answer["host"] == "127.0.0.2"
 
 
 async def test_check_url_host() -> None:
@@ -346,15 +628,18 @@ async def site() -> AsyncIterator[LoopbackSite]:
     await server.stop()
 
 
-def _session(entries: list[str], stub: StubResolver | None = None) -> aiohttp.ClientSession:
-    resolver = GuardedResolver(parse_host_map(entries), resolver=stub or StubResolver())
+def _session(
+    entries: list[str], stub: StubResolver | None = None, ports: tuple[int, ...] = DEFAULT_PORTS
+) -> aiohttp.ClientSession:
+    host_map = parse_host_map(entries, ports=ports)
+    resolver = GuardedResolver(host_map, resolver=stub or StubResolver())
     return aiohttp.ClientSession(
         connector=GuardedConnector(resolver), timeout=CLIENT_TIMEOUT, trust_env=False
     )
 
 
 async def test_mapped_name_reaches_the_loopback_server(site: LoopbackSite) -> None:
-    async with _session(["*.test=127.0.0.1"]) as session:
+    async with _session(["*.test=127.0.0.1"], ports=(site.port,)) as session:
         async with session.get(f"http://site.test:{site.port}/page") as resp:
             assert resp.status == 200
             # RFC 9110 s.7.2: the Host header keeps the name, not the mapped address.
@@ -366,7 +651,41 @@ async def test_mapped_port_overrides_the_url_port(site: LoopbackSite) -> None:
     async with _session([f"*.test=127.0.0.1:{site.port}"]) as session:
         async with session.get("http://site.test/ported") as resp:
             assert resp.status == 200
-    assert site.hits["/ported"] == 1
+        async with session.get("http://site.test:1/ported") as resp:  # any URL port: site.port
+            assert resp.status == 200
+    assert site.hits["/ported"] == 2
+
+
+async def test_port_less_map_does_not_reach_another_loopback_port(site: LoopbackSite) -> None:
+    # The server listens on a free port that no map names; a page linking to it through
+    # a port-less map is refused by the fetcher before any connection is opened.
+    assert site.port not in DEFAULT_PORTS
+    settings = FetchSettings(map_hosts=("*.test=127.0.0.1",))
+    async with Fetcher(settings, UA) as fetcher:
+        for url in (f"http://x.test:{site.port}/secret", f"http://deep.x.test:{site.port}/"):
+            with pytest.raises(AddressRefused) as info:
+                await fetcher.get(url)
+            assert info.value.reason == "map_port"
+            assert str(site.port) in str(info.value)
+    assert sum(site.hits.values()) == 0
+
+
+async def test_listed_port_reaches_the_server_through_a_port_less_map(site: LoopbackSite) -> None:
+    fetch = FetchSettings(map_hosts=("*.test=127.0.0.1",), map_ports=(80, 443, site.port))
+    resolver = GuardedResolver.from_settings(fetch, resolver=StubResolver())
+    async with aiohttp.ClientSession(
+        connector=GuardedConnector(resolver), timeout=CLIENT_TIMEOUT, trust_env=False
+    ) as session:
+        async with session.get(f"http://x.test:{site.port}/listed") as resp:
+            assert resp.status == 200
+        with pytest.raises(AddressRefused) as info:
+            async with session.get(f"http://x.test:{site.port + 1}/unlisted"):
+                pass
+        assert info.value.reason == "map_port"
+        with pytest.raises(AddressRefused):  # port 0 names no port; never connected to
+            async with session.get("http://x.test:0/zero"):
+                pass
+    assert site.hits == Counter({"/listed": 1})
 
 
 async def test_unmapped_names_and_literals_do_not_reach_the_server(site: LoopbackSite) -> None:
@@ -392,7 +711,7 @@ async def test_unmapped_names_and_literals_do_not_reach_the_server(site: Loopbac
 async def test_a_followed_redirect_to_a_refused_address_is_refused(site: LoopbackSite) -> None:
     # RFC 9110 s.15.4: a redirect names a new target; each hop opens its own connection,
     # which passes the guard again.
-    async with _session(["site.test=127.0.0.1"]) as session:
+    async with _session(["site.test=127.0.0.1"], ports=(site.port,)) as session:
         for target in (
             f"http://127.0.0.1:{site.port}/secret",
             f"http://other.test:{site.port}/secret",

@@ -5,7 +5,8 @@ Three layers, all raising :class:`~frontier.exceptions.AddressRefused`:
 * :func:`check_address` classifies one IP address (IPv4-mapped, IPv4-compatible,
   6to4 and NAT64 forms are unwrapped and their IPv4 address is checked too).
 * :class:`GuardedResolver` is the aiohttp resolver: a host-map entry wins (the only way
-  to reach loopback), an IP literal in any spelling is checked without DNS, a
+  to reach loopback; see :class:`HostMap` for its port rule), an IP literal in any
+  spelling is checked without DNS, a
   special-use name (``.test``, ``.localhost`` ...) is refused without DNS, and any other
   name is resolved and *every* address checked. Only checked addresses are handed back,
   so aiohttp connects to exactly what was checked (no DNS-rebinding window).
@@ -42,6 +43,7 @@ import aiohttp
 from aiohttp.abc import AbstractResolver, ResolveResult
 
 from frontier.exceptions import AddressRefused, ConfigError, FetchError
+from frontier.settings import FetchSettings
 
 IPAddress = ipaddress.IPv4Address | ipaddress.IPv6Address
 
@@ -50,6 +52,14 @@ REASON_NON_GLOBAL = "non_global_address"
 REASON_RESERVED_NAME = "reserved_name"
 REASON_INVALID = "invalid_address"
 REASON_PROXY = "proxy_not_allowed"
+REASON_MAP_PORT = "map_port"
+
+# RFC 9110 s.4.2.1 and s.4.2.2: the default ports of http and https; the ports a
+# port-less host-map entry lets a URL keep unless fetch.map_ports says otherwise.
+DEFAULT_MAP_PORTS = (80, 443)
+# What a host map may point at without fetch.map_remote: RFC 1122 s.3.2.1.3 (127.0.0.0/8)
+# and RFC 4291 s.2.5.3 (::1).
+LOOPBACK_NETWORKS = (ipaddress.IPv4Network("127.0.0.0/8"), ipaddress.IPv6Network("::1/128"))
 
 # Special-use names that must never reach DNS unless the host map names them.
 # RFC 6761 s.6.2 (test), s.6.3 (localhost), s.6.4 (invalid), s.6.5 (example);
@@ -87,7 +97,8 @@ IPV4_PARTS_MAX = 4
 IPV4_OCTET_MAX = 255
 OCTET_BITS = 8
 
-_LABEL = re.compile(r"^[a-z0-9_](?:[a-z0-9_-]{0,61}[a-z0-9_])?$")
+_LABEL = re.compile(r"[a-z0-9_](?:[a-z0-9_-]{0,61}[a-z0-9_])?")
+_PORT = re.compile(r"[0-9]{1,5}")  # ASCII digits only (RFC 3986 s.3.2.3)
 _HEX_PART = re.compile(r"^0[xX][0-9a-fA-F]*$")
 _OCTAL_PART = re.compile(r"^0[0-7]*$")
 _DECIMAL_PART = re.compile(r"^[1-9][0-9]*$")
@@ -103,11 +114,25 @@ def _normalise_host(host: str) -> str:
 
 
 def _valid_hostname(name: str) -> bool:
-    return bool(name) and all(_LABEL.match(label) for label in name.split("."))
+    return bool(name) and all(_LABEL.fullmatch(label) for label in name.split("."))
 
 
-def _parse_map_value(entry: str, value: str) -> tuple[str, int | None]:
-    """``127.0.0.1``, ``127.0.0.1:8401``, ``[::1]``, ``[::1]:9000`` or ``::1``."""
+def is_loopback(addr: IPAddress) -> bool:
+    """True for 127.0.0.0/8 and ::1 only (an IPv4-mapped or zoned form is not)."""
+    if isinstance(addr, ipaddress.IPv6Address) and addr.scope_id:
+        return False
+    return any(addr in net for net in LOOPBACK_NETWORKS if net.version == addr.version)
+
+
+def _valid_port(text: str) -> bool:
+    return bool(_PORT.fullmatch(text)) and PORT_MIN <= int(text) <= PORT_MAX
+
+
+def _parse_map_value(entry: str, value: str, remote: bool) -> tuple[str, int | None]:
+    """``127.0.0.1``, ``127.0.0.1:8401``, ``[::1]``, ``[::1]:9000`` or ``::1``.
+
+    A target outside loopback is refused unless ``remote`` (fetch.map_remote) allows it.
+    """
     port_text: str | None = None
     if value.startswith("["):
         inner, sep, rest = value[1:].partition("]")
@@ -124,19 +149,34 @@ def _parse_map_value(entry: str, value: str) -> tuple[str, int | None]:
         raise ConfigError(
             f"host map entry {entry!r}: {address_text!r} is not an IP address"
         ) from None
+    if isinstance(address, ipaddress.IPv6Address) and address.scope_id:
+        raise ConfigError(f"host map entry {entry!r}: a zone id names no destination")
+    if address.is_unspecified or address.is_multicast:
+        raise ConfigError(f"host map entry {entry!r}: {address} is not a destination")
+    if not remote and not is_loopback(address):
+        raise ConfigError(
+            f"host map entry {entry!r}: {address} is not a loopback address (127.0.0.0/8, "
+            "::1); set fetch.map_remote = true (--map-remote) to send traffic there"
+        )
     if port_text is None:
         return str(address), None
-    if not port_text.isdigit() or not PORT_MIN <= int(port_text) <= PORT_MAX:
+    if not _valid_port(port_text):
         raise ConfigError(f"host map entry {entry!r}: bad port {port_text!r}")
     return str(address), int(port_text)
 
 
 @dataclass(frozen=True)
 class HostMap:
-    """Host name -> (IP, optional port); ``*.suffix`` covers the suffix and its subdomains."""
+    """Host name -> (IP, optional port); ``*.suffix`` covers the suffix and its subdomains.
+
+    An entry with a port sends every URL of its hosts to that port. A port-less entry
+    keeps the URL's port only if it is one of ``ports`` (fetch.map_ports), so a page
+    cannot reach any other service listening on the mapped address.
+    """
 
     exact: dict[str, tuple[str, int | None]] = field(default_factory=dict)
     suffixes: dict[str, tuple[str, int | None]] = field(default_factory=dict)
+    ports: frozenset[int] = frozenset(DEFAULT_MAP_PORTS)
 
     def lookup(self, host: str) -> tuple[str, int | None] | None:
         """The mapped address of ``host``; an exact entry beats the longest suffix."""
@@ -150,12 +190,46 @@ class HostMap:
                 return self.suffixes[suffix]
         return None
 
+    def destination(self, host: str, port: int) -> tuple[str, int] | None:
+        """Where a request to ``host:port`` goes, or None when ``host`` is not mapped.
+
+        ``port`` 0 asks for the address only (no connection is made with it). Raises
+        ``AddressRefused("map_port")`` for a port-less entry and a port not in ``ports``.
+        """
+        mapped = self.lookup(host)
+        if mapped is None:
+            return None
+        ip, mapped_port = mapped
+        if mapped_port is not None:
+            return ip, mapped_port
+        if port and port not in self.ports:
+            allowed = ", ".join(str(p) for p in sorted(self.ports)) or "none"
+            raise AddressRefused(
+                REASON_MAP_PORT,
+                f"{host!r} is mapped to {ip} without a port; port {port} is not in "
+                f"fetch.map_ports ({allowed})",
+            )
+        return ip, port
+
     def __bool__(self) -> bool:
         return bool(self.exact or self.suffixes)
 
 
-def parse_host_map(entries: Sequence[str]) -> HostMap:
-    """Build a :class:`HostMap` from ``pattern=address[:port]`` entries."""
+def parse_host_map(
+    entries: Sequence[str],
+    *,
+    ports: Sequence[int] = DEFAULT_MAP_PORTS,
+    remote: bool = False,
+) -> HostMap:
+    """Build a :class:`HostMap` from ``pattern=address[:port]`` entries.
+
+    ``ports`` are the URL ports a port-less entry keeps (fetch.map_ports); ``remote``
+    (fetch.map_remote) allows targets outside loopback. Raises ConfigError naming the
+    entry or the setting at fault.
+    """
+    bad = [p for p in ports if not PORT_MIN <= p <= PORT_MAX]
+    if bad:
+        raise ConfigError(f"fetch.map_ports: {bad} are not ports ({PORT_MIN}-{PORT_MAX})")
     exact: dict[str, tuple[str, int | None]] = {}
     suffixes: dict[str, tuple[str, int | None]] = {}
     for entry in entries:
@@ -163,13 +237,18 @@ def parse_host_map(entries: Sequence[str]) -> HostMap:
         pattern, value = pattern.strip(), value.strip()
         if not sep or not pattern or not value:
             raise ConfigError(f"host map entry {entry!r}: expected 'host=address[:port]'")
-        target = _parse_map_value(entry, value)
+        target = _parse_map_value(entry, value, remote)
         wildcard = pattern.startswith("*.")
         name = _normalise_host(pattern[2:] if wildcard else pattern)
         if not _valid_hostname(name):
             raise ConfigError(f"host map entry {entry!r}: {pattern!r} is not a host name")
         (suffixes if wildcard else exact)[name] = target
-    return HostMap(exact, suffixes)
+    return HostMap(exact, suffixes, frozenset(ports))
+
+
+def host_map_from_settings(fetch: FetchSettings) -> HostMap:
+    """The host map of a job's fetch settings (map_hosts, map_ports, map_remote)."""
+    return parse_host_map(fetch.map_hosts, ports=fetch.map_ports, remote=fetch.map_remote)
 
 
 # --------------------------------------------------------------------------- addresses
@@ -324,6 +403,14 @@ class GuardedResolver(AbstractResolver):
         self._allow_private = allow_private
         self._inner = resolver
 
+    @classmethod
+    def from_settings(
+        cls, fetch: FetchSettings, *, resolver: AbstractResolver | None = None
+    ) -> GuardedResolver:
+        """The guard for a job's fetch settings; raises ConfigError for a bad host map."""
+        return cls(host_map_from_settings(fetch), allow_private=fetch.allow_private,
+                   resolver=resolver)
+
     def _check(self, addr: IPAddress | str) -> None:
         if not self._allow_private:
             check_address(addr)
@@ -331,12 +418,13 @@ class GuardedResolver(AbstractResolver):
     def precheck(self, host: str, port: int = 0) -> list[ResolveResult] | None:
         """Decide ``host`` without DNS: the mapped or literal address, or None for a name.
 
-        Raises AddressRefused for a refused literal or an unmapped special-use name.
+        Raises AddressRefused for a refused literal, an unmapped special-use name, or a
+        port a port-less host-map entry does not allow.
         """
-        mapped = self._host_map.lookup(host)
+        mapped = self._host_map.destination(host, port)
         if mapped is not None:
             ip, mapped_port = mapped
-            return [_result(host, ip, mapped_port if mapped_port is not None else port)]
+            return [_result(host, ip, mapped_port)]
         literal = parse_ip_literal(host)
         if literal is not None:
             self._check(literal)
@@ -390,5 +478,8 @@ class GuardedConnector(aiohttp.TCPConnector):
     async def connect(self, req: Any, *args: Any, **kwargs: Any) -> Any:
         if req.proxy is not None:
             raise AddressRefused(REASON_PROXY, str(req.proxy))
-        self._guard.precheck(req.url.raw_host or "", req.url.port or 0)
+        port = req.url.port
+        if not port:  # 0 means "address only" to precheck; a request always names a port
+            raise AddressRefused(REASON_INVALID, f"{req.url.host!r}: no port to connect to")
+        self._guard.precheck(req.url.raw_host or "", port)
         return await super().connect(req, *args, **kwargs)
