@@ -15,7 +15,7 @@ from typing import Any
 
 from prometheus_client import CollectorRegistry
 
-from frontier.exceptions import SluiceError
+from frontier.exceptions import ConfigError, SluiceError
 from frontier.process import crawl_process
 from frontier.process import run as run_loop
 from frontier.settings import JobSettings, load_settings
@@ -240,15 +240,30 @@ def _admin_flags(p: argparse.ArgumentParser) -> None:
 
 
 def cmd_host(a: argparse.Namespace) -> int:
+    """`sluice host HOST ACTION [VALUE]` or `sluice host list`; frontier.controls checks input."""
+    from frontier import controls
     from frontier.job import open_job
 
+    listing = a.host == "list" and a.action is None
+    if not listing and a.action is None:
+        raise ConfigError(f"action: one is needed ({', '.join(controls.HOST_ACTIONS)}), "
+                          "or 'sluice host list'")
+    if not listing and a.only is not None:
+        raise ConfigError("--only goes with 'sluice host list'")
+    if listing and a.new:
+        raise ConfigError("--new goes with a host action")
+    which = controls.list_filter(a.only) if listing else None
     base = _stored_job(a)
 
     async def run() -> None:
         async with open_job(base, stored=True) as job:
-            state = await job.store.control(a.host, a.action, a.value)
-            info = await job.store.host_info(a.host)
-            print(json.dumps({"host": a.host, "state": state, **info}, indent=2, default=str))
+            if listing:
+                rows = await job.store.controlled_hosts(which)
+                print(json.dumps(rows, indent=2) if a.json else controls.format_host_list(rows))
+                return
+            command = controls.host_command(job.store.settings, a.host, a.action, a.value,
+                                            new=a.new)
+            print(json.dumps(await controls.apply(job.store, command), indent=2, default=str))
 
     run_loop(run())
     return 0
@@ -329,11 +344,19 @@ def parser() -> argparse.ArgumentParser:
     w.add_argument("--drain", action="store_true", help="exit once nothing is queued or leased")
     w.set_defaults(func=cmd_worker)
 
-    h = sub.add_parser("host", help="boost, pause, resume, block, unblock or delay a host")
+    h = sub.add_parser("host", help="pause, resume, block, unblock, boost, delay or clear a "
+                       "host; 'sluice host list' shows the hosts under control")
     _admin_flags(h)
-    h.add_argument("host")
-    h.add_argument("action", choices=["boost", "pause", "resume", "block", "unblock", "delay"])
-    h.add_argument("value", nargs="?", type=float, help="boost multiplier or delay seconds")
+    h.add_argument("host", help="a host name or a URL of the host (or 'list')")
+    h.add_argument("action", nargs="?", help="pause, resume, block, unblock, boost VALUE, "
+                   "delay VALUE or clear")
+    h.add_argument("value", nargs="?", help="boost: priority multiplier (0.001 to 1000); "
+                   "delay: seconds (0 to politeness.max_delay_s)")
+    h.add_argument("--new", action="store_true",
+                   help="act on a host the frontier has no record of yet")
+    h.add_argument("--only", metavar="STATE",
+                   help="host list: only paused, blocked, boosted or delayed hosts")
+    h.add_argument("--json", action="store_true", help="host list: as JSON")
     h.set_defaults(func=cmd_host)
 
     s = sub.add_parser("status", help="URL counts by state")

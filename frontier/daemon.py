@@ -19,10 +19,10 @@ from prometheus_client.exposition import CONTENT_TYPE_LATEST
 
 from frontier.admin_auth import admin_guard, allowed_host_headers, token_for
 from frontier.budget import PageBudget
-from frontier.exceptions import SluiceError, StoreUnavailable
+from frontier import controls
+from frontier.exceptions import ConfigError, SluiceError, StoreUnavailable, UrlError
 from frontier.job import Job
 from frontier.metrics import FrontierMetrics
-from frontier.store import HOST_ACTIONS
 
 log = logging.getLogger(__name__)
 
@@ -109,6 +109,7 @@ class Daemon:
         app.router.add_get("/", self._status_page)
         app.router.add_get("/status", self._status)
         app.router.add_get("/metrics", self._metrics)
+        app.router.add_get("/hosts", self._hosts)
         app.router.add_get("/hosts/{host}", self._host)
         app.router.add_post("/hosts/{host}/{action}", self._control)
         return app
@@ -120,20 +121,38 @@ class Daemon:
         return web.Response(body=generate_latest(self.registry),
                             headers={"Content-Type": CONTENT_TYPE_LATEST})
 
+    async def _hosts(self, request: web.Request) -> web.Response:
+        """GET /hosts[?state=paused|blocked|boosted|delayed]: the hosts under control."""
+        try:
+            which = controls.list_filter(request.query.get("state"))
+            return web.json_response(await self.job.store.controlled_hosts(which))
+        except SluiceError as exc:
+            return error_response(exc)
+
     async def _host(self, request: web.Request) -> web.Response:
-        return web.json_response(await self.job.store.host_info(request.match_info["host"]))
+        """GET /hosts/{host}: one host's stored fields (404 if the frontier has none)."""
+        store = self.job.store
+        try:
+            key = controls.lookup_key(store.settings, request.match_info["host"])
+            if not await store.host_known(key):
+                return web.json_response(
+                    {"error": f"unknown host {controls.echo(key)}"}, status=404)
+            return web.json_response({"host": key, **await store.host_info(key)})
+        except SluiceError as exc:
+            return error_response(exc)
 
     async def _control(self, request: web.Request) -> web.Response:
-        host, action = request.match_info["host"], request.match_info["action"]
-        if action not in HOST_ACTIONS:
-            raise web.HTTPBadRequest(text=f"action must be one of {', '.join(HOST_ACTIONS)}")
-        raw = request.query.get("value")
+        """POST /hosts/{host}/{action}[?value=V][&new=1] (or value and new in a JSON body)."""
+        store = self.job.store
         try:
-            value = float(raw) if raw is not None else None
-            state = await self.job.store.control(host, action, value)
-        except (ValueError, SluiceError) as exc:
-            raise web.HTTPBadRequest(text=str(exc)) from exc
-        return web.json_response({"host": host, "action": action, "state": state})
+            fields = await control_fields(request)
+            command = controls.host_command(
+                store.settings, request.match_info["host"], request.match_info["action"],
+                fields.get("value"), new=fields.get("new", False))
+            return web.json_response(await controls.apply(store, command))
+        except SluiceError as exc:
+            return error_response(exc)
+
 
     async def _status_page(self, request: web.Request) -> web.Response:
         data = await self.stats_once()
@@ -145,6 +164,27 @@ class Daemon:
                 f"<h2>Reasons</h2><table>{reasons}</table>"
                 f"<p><a href='/metrics'>metrics</a> · <a href='/status'>JSON</a></p>")
         return web.Response(text=html, content_type="text/html")
+
+
+async def control_fields(request: web.Request) -> dict[str, Any]:
+    """``value`` and ``new`` of a control request: from the query, or a JSON object body."""
+    fields: dict[str, Any] = {k: request.query[k] for k in ("value", "new") if k in request.query}
+    if request.can_read_body and request.content_type == "application/json":
+        try:
+            body = await request.json()
+        except ValueError:
+            raise ConfigError("the request body is not JSON") from None
+        if not isinstance(body, dict) or set(body) - {"value", "new"}:
+            raise ConfigError('the request body is a JSON object with "value" and "new" only')
+        fields.update(body)
+    return fields
+
+
+def error_response(exc: SluiceError) -> web.Response:
+    """A JSON error of one line: 400 for refused input, 503 while Redis is unavailable."""
+    status = 400 if isinstance(exc, (ConfigError, UrlError)) else (
+        503 if isinstance(exc, StoreUnavailable) else 500)
+    return web.json_response({"error": " ".join(str(exc).split())}, status=status)
 
 
 async def serve(app: web.Application, address: str) -> web.AppRunner:

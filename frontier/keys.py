@@ -116,6 +116,20 @@ class PartitionKeys:
         """HyperLogLog of the other hosts that link to this host (budget growth)."""
         return f"{self.tag}:in-hosts:{host}"
 
+    @property
+    def controlled(self) -> str:
+        """SET of this partition's politeness keys under operator control: paused, blocked,
+        boosted or delayed (kept by the control script)."""
+        return f"{self.tag}:controlled"
+
+    def held_hot(self, host: str) -> str:
+        """ZSET: a blocked host's hot window, set aside until it is unblocked."""
+        return f"{self.tag}:held-hot:{host}"
+
+    def held_cold(self, host: str) -> str:
+        """LIST: a blocked host's cold list, set aside until it is unblocked."""
+        return f"{self.tag}:held-cold:{host}"
+
 
 @dataclass(frozen=True)
 class Keys:

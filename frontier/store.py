@@ -19,6 +19,7 @@ from typing import Any, NamedTuple
 from redis import exceptions as redis_errors
 from redis.asyncio.cluster import RedisCluster
 
+from frontier.controls import MAX_BOOST, MIN_BOOST, echo
 from frontier.exceptions import LeaseNotHeld, StoreError, StoreUnavailable
 from frontier.keys import Keys, PartitionKeys
 from frontier.model import AdmitResult, Completion, Counts, Lease, Outcome, STATES
@@ -27,7 +28,7 @@ from frontier.settings import JobSettings
 
 log = logging.getLogger(__name__)
 
-HOST_ACTIONS = ("boost", "pause", "resume", "block", "unblock", "delay")
+CONTROL_REFUSED = "control refused:"  # how the control script starts a refusal
 PROMOTE_LIMIT = 1000  # due hosts moved to ready per lease_pick call
 REAP_BATCH = 500  # expired leases handled per reap call and partition
 CLAIM_TTL_MS = 10_000  # a picked host returns to due if not leased within this time
@@ -42,6 +43,40 @@ COLD_SCAN_LIMIT = 200_000  # entries of one cold list searched before giving up
 
 def _text(value: Any) -> str:
     return value.decode() if isinstance(value, bytes) else str(value)
+
+
+def _encodable(text: str) -> bool:
+    """True if ``text`` can be sent to Redis (UTF-8: no lone surrogates)."""
+    try:
+        text.encode("utf-8")
+    except UnicodeEncodeError:
+        return False
+    return True
+
+
+def _in_control_state(row: dict[str, Any], which: str) -> bool:
+    """Whether a host-list row is paused, blocked, boosted or delayed (``which``)."""
+    if which in ("paused", "blocked"):
+        return bool(row["state"] == which)
+    if which == "boosted":
+        return bool(row["boost"] != 1.0)
+    return bool(which == "delayed" and row["delay_s"] > 0)
+
+
+def _control_value(action: str, value: Any) -> str:
+    """A control value as the control script reads it: a delay in whole ms, a boost as
+    given. Values that are not finite pass as text for the script to refuse."""
+    if value is None:
+        return ""
+    if isinstance(value, bool) or not isinstance(value, (int, float)):
+        raise StoreError(f"host control refused: {action} value {echo(value)} is not a number")
+    try:
+        number = float(value)
+    except OverflowError:
+        number = math.inf if value > 0 else -math.inf
+    if action == "delay" and math.isfinite(number) and abs(number) < 1e12:
+        return str(round(number * 1000))
+    return repr(number)
 
 
 def now_ms(clock: Callable[[], float] = time.time) -> int:
@@ -390,20 +425,66 @@ class FrontierStore:
     # -- operator controls -----------------------------------------------------------------
 
     async def control(self, host: str, action: str, value: float | None = None,
-                      now: int | None = None) -> str:
-        """Apply an operator's action to one politeness key; returns its state."""
-        if action not in HOST_ACTIONS:
-            raise StoreError(f"unknown host action {action!r}; expected one of {HOST_ACTIONS}")
-        if action in ("boost", "delay") and (value is None or value < 0):
-            raise StoreError(f"{action} needs a value >= 0")
-        arg = "" if value is None else (str(int(value * 1000)) if action == "delay" else repr(value))
+                      now: int | None = None, *, create: bool = True) -> str:
+        """Apply an operator's action (one of ``HOST_ACTIONS``) to one politeness key;
+        returns its state. ``value``: the boost multiplier, or the delay in seconds.
+
+        The control script checks every argument before its first write and refuses with
+        nothing changed (StoreError): an unknown action, a value that is missing, not
+        finite or out of range, an odd key, or (``create=False``) a key the frontier has
+        no record of. Operator input is validated before this by frontier.controls.
+        """
+        for text in (host, action):
+            if not isinstance(text, str) or not _encodable(text):
+                raise StoreError(f"host control refused: {echo(text)} is not text")
         pk = self.keys.part_for(host)
+        pol = self.settings.politeness
         keys = [pk.counts, pk.reasons, pk.due, pk.ready, pk.prio, pk.claims, pk.hosts,
-                pk.host(host), pk.hot(host), pk.cold(host)]
-        async with redis_boundary("control"):
-            state = await self.scripts.control(
-                keys, [self._now(now), host, action, arg, self.settings.store.hot_capacity])
-        return state.decode() if isinstance(state, bytes) else str(state)
+                pk.controlled, pk.host(host), pk.hot(host), pk.cold(host), pk.held_hot(host),
+                pk.held_cold(host)]
+        args = [self._now(now), host, action, _control_value(action, value),
+                self.settings.store.hot_capacity, 1 if create else 0, repr(MIN_BOOST),
+                repr(MAX_BOOST), int(pol.max_delay_s * 1000), int(pol.min_delay_s * 1000),
+                repr(float(pol.response_time_factor)), int(pol.max_delay_s * 1000)]
+        try:
+            async with redis_boundary("control"):
+                state = await self.scripts.control(keys, args)
+        except StoreError as exc:
+            cause = exc.__cause__
+            if isinstance(cause, redis_errors.ResponseError) and str(cause).startswith(
+                    CONTROL_REFUSED):
+                raise StoreError(f"host {echo(host)}: {cause}") from None
+            raise
+        return _text(state)
+
+    async def host_known(self, host: str) -> bool:
+        """True if the frontier has a record of this politeness key (found by admission,
+        or made by an operator's control). Records are never removed."""
+        if not _encodable(host):
+            return False
+        async with redis_boundary("host info"):
+            return bool(await self.redis.exists(self.keys.part_for(host).host(host)))
+
+    async def controlled_hosts(self, which: str | None = None) -> list[dict[str, Any]]:
+        """The hosts under operator control (paused, blocked, boosted or delayed), by name;
+        ``which`` (one of those four words) keeps the hosts in that state."""
+        async with redis_boundary("host list"):
+            members = await asyncio.gather(
+                *(self.redis.smembers(pk.controlled) for pk in self.keys.parts))
+            hosts = sorted(_text(h) for row in members for h in row)
+            rows = await asyncio.gather(*(self._control_row(h) for h in hosts))
+        return [r for r in rows if which is None or _in_control_state(r, which)]
+
+    async def _control_row(self, host: str) -> dict[str, Any]:
+        pk = self.keys.part_for(host)
+        state, boost, delay, held = await self.redis.hmget(
+            pk.host(host), "state", "boost", "delay_ms", "held")
+        queued = await self.redis.zcard(pk.hot(host)) + await self.redis.llen(pk.cold(host))
+        due = await self.redis.zscore(pk.due, host)
+        return {"host": host, "state": _text(state) if state is not None else None,
+                "boost": float(boost or 1), "delay_s": int(delay or 0) / 1000,
+                "queued": queued, "held": int(held or 0),
+                "due_ms": None if due is None else int(due)}
 
     # -- reading ---------------------------------------------------------------------------
 
