@@ -71,7 +71,10 @@ class Daemon:
     async def observe(self) -> None:
         """The stats loop's step: :meth:`stats_once`, then a sample for the status board."""
         data = await self.stats_once()
-        await self.board.refresh(data["fetched"], data["reasons"])
+        try:
+            await self.board.refresh(data["fetched"], data["reasons"])
+        except SluiceError as exc:  # the board waits for the next step; the loop goes on
+            log.warning("status board not refreshed: %s", exc)
 
     async def _reconcile_budget(self, expected: int) -> None:
         """Fix the page-budget counter: up at once; down only when it sat still twice.
@@ -126,7 +129,10 @@ class Daemon:
 
     async def _status(self, request: web.Request) -> web.Response:
         """GET /status: what the status page shows (frontier/status_board.py), as JSON."""
-        return web.json_response(await self.board.snapshot())
+        try:
+            return web.json_response(await self.board.snapshot())
+        except SluiceError as exc:
+            return error_response(exc)
 
     async def _metrics(self, request: web.Request) -> web.Response:
         return web.Response(body=generate_latest(self.registry),

@@ -130,6 +130,17 @@ def _text(value: Any) -> str:
     return value.decode() if isinstance(value, bytes) else str(value)
 
 
+def _record(raw: Any) -> dict[str, Any] | None:
+    """A stored JSON object; None for a missing or unreadable one (it is skipped)."""
+    if raw is None:
+        return None
+    try:
+        record = orjson.loads(raw)
+    except orjson.JSONDecodeError:
+        return None
+    return record if isinstance(record, dict) else None
+
+
 async def read_workers(redis: Any, keys: Keys, limit: int = WORKERS_READ) -> list[dict[str, Any]]:
     """Heartbeats that have not expired, most recent first (at most ``limit``); ids whose
     record expired leave the index."""
@@ -145,7 +156,7 @@ async def read_workers(redis: Any, keys: Keys, limit: int = WORKERS_READ) -> lis
         gone = [i for i, raw in zip(ids, raws) if raw is None]
         if gone:
             await redis.zrem(keys.workers, *gone)
-    return [orjson.loads(raw) for raw in raws if raw is not None]
+    return [record for raw in raws if (record := _record(raw)) is not None]
 
 
 async def read_robots(redis: Any, keys: Keys, limit: int = ROBOTS_FAILURES_KEPT) -> dict[str, Any]:
@@ -154,4 +165,4 @@ async def read_robots(redis: Any, keys: Keys, limit: int = ROBOTS_FAILURES_KEPT)
         counts = await redis.hgetall(keys.robots_outcomes)
         failures = await redis.lrange(keys.robots_failures, 0, limit - 1)
     return {"policies": {_text(k): int(v) for k, v in counts.items()},
-            "failures": [orjson.loads(f) for f in failures]}
+            "failures": [record for f in failures if (record := _record(f)) is not None]}

@@ -396,3 +396,32 @@ async def test_host_table_ranks_and_stays_bounded(plain_job: Job) -> None:
     small = await read_hosts(store, limit=4, top=5)
     assert small.known == 12 and small.scanned <= 4 + 1  # the paused host is always read
     assert len(small.busiest) <= 5
+
+
+async def test_an_unreadable_heartbeat_is_skipped(make_store: StoreFactory) -> None:
+    store = make_store()
+    report = WorkerReport(store, WorkerMetrics(CollectorRegistry()), machine="a.test")
+    assert await report.beat(pages=1, in_flight=0)
+    await store.redis.zadd(store.keys.workers, {"broken": 1})
+    await store.redis.set(store.keys.worker("broken"), b"{not json")
+    assert [w["id"] for w in await read_workers(store.redis, store.keys)] == [report.id]
+
+
+async def test_status_answers_503_while_redis_is_down(tmp_path: Path) -> None:
+    """RFC 9110 s.15.6.4: 503, the server cannot handle the request for now."""
+    with RedisServer(tmp_path / "redis", appendonly=False) as redis_server:
+        settings = load_settings(None, {"name": "down", "redis": {"url": redis_server.url},
+                                        "state_dir": str(tmp_path / "state"),
+                                        "fetch": {"user_agent": UA}})
+        async with open_job(settings) as job:
+            address = f"127.0.0.1:{free_port()}"
+            runner = await serve_admin(Daemon(job, CollectorRegistry()), address)
+            try:
+                async with aiohttp.ClientSession() as http:
+                    async with http.get(f"http://{address}/status") as r:
+                        assert r.status == 200 and (await r.json())["job"] == "down"
+                    redis_server.stop()
+                    async with http.get(f"http://{address}/status") as r:
+                        assert r.status == 503 and "error" in await r.json()
+            finally:
+                await runner.cleanup()
