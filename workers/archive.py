@@ -23,35 +23,76 @@ compresses these small records about three times as fast as zlib for a similar s
 (measured: 10 vs 29 microseconds for a 1 KB record, 0.56 vs 0.55 of the input);
 warcio's record builder re-reads and re-serialises every record, which dominated a
 worker's CPU. HTTP heads are serialised as warcio's ``StatusAndHeaders`` does
-(its own code handles the rare non-ASCII head and raw request bytes), and the
-warcinfo record, once per file, is still written through warcio.
+(its own code encodes the rare non-ASCII value), a raw request head is stored as given
+(warcio's request parser finds its payload), and the warcinfo record, once per file,
+is still written through warcio.
+
+Any text is written and reads back. URLs (WARC-Target-URI, outlinks, the request
+target) are written as URIs: an IRI's other characters become percent-encoded UTF-8
+octets (RFC 3987 s.3.1), whitespace and controls too; a lone surrogate standing for an
+undecodable byte (PEP 383) goes back to that octet, any other becomes U+FFFD. HTTP heads
+are ASCII: values as warcio writes them (RFC 8187), then names, the first line and what
+is still not ASCII as percent-encoded UTF-8. Header text loses its line breaks, so
+nothing is injected into a head. A response or request record carries a payload digest
+only under an http(s) target, the only one whose block readers parse as HTTP.
+
+Disk faults. An exchange's records go to the file in one positioned write; when that
+fails the file is cut back (ftruncate) to where the exchange began, the end of the last
+whole gzip member, and an OSError meaning the folder takes no more writes
+(``DISK_FAULT_ERRNOS``) is raised as ``DiskFault``. A file whose folder vanished (no
+link left, or the folder made anew) is a ``DiskFault`` at the next write or close,
+never written on silently.
+
+Repair on open. A crash can leave half a gzip member at the end of a WARC file. The
+first file an archive opens in a folder repairs every WARC file there that no live
+writer holds (a writer keeps an exclusive ``flock`` on its open file): it is cut back
+to the end of its last whole member, or removed when none is whole.
 
 ``FetchLog`` appends one JSON object per final fetch outcome to
-``out_dir/fetches.jsonl``; reopening appends (resume).
+``out_dir/fetches.jsonl``; reopening appends (resume). Lines wait in memory until
+``flush``, which appends them in one write under an exclusive ``flock`` (the workers of
+one crawl share the file), cuts the file back to its last whole line when the write
+fails, and then fsyncs. Opening the log cuts off a torn last line.
 """
 
 from __future__ import annotations
 
+import contextlib
+import errno
+import fcntl
 import functools
 import hashlib
 import io
 import json
+import logging
 import math
-import re
+import mmap
 import os
+import re
 import socket
+import threading
 import zlib
-from collections.abc import Callable, Iterable, Sequence
+from collections.abc import Callable, Iterable, Iterator, Sequence
 from dataclasses import dataclass
 from datetime import UTC, datetime
 from pathlib import Path
-from typing import IO, Any
+from stat import S_ISREG
+from typing import Any
+from urllib.parse import quote
 
 import orjson
 from isal import isal_zlib
 from warcio.recordloader import ArcWarcRecordLoader
-from warcio.statusandheaders import StatusAndHeaders
+from warcio.statusandheaders import (
+    StatusAndHeaders,
+    StatusAndHeadersParser,
+    StatusAndHeadersParserException,
+)
 from warcio.warcwriter import GzippingWrapper, WARCWriter
+
+from frontier.exceptions import DiskFault
+
+log = logging.getLogger(__name__)
 
 WARC_VERSION = "1.1"
 WARC_SUBDIR = "warc"
@@ -84,6 +125,26 @@ _URI_UNSAFE = {c: f"%{c:02X}" for c in (*range(0x21), 0x7F)}
 """Whitespace and controls percent-encoded in WARC URIs (ISO 28500 s.5,
 WARC-Target-URI: "written with no internal whitespace")."""
 _URI_UNSAFE_SEARCH = re.compile(r"[\x00-\x20\x7f]").search
+_URI_KEEP = "".join(map(chr, range(0x21, 0x7F)))  # printable ASCII: '%' escapes stay
+_ASCII = "".join(map(chr, range(0x80)))
+_HTTP_SCHEMES = ("http:", "https:")
+"""Targets whose request and response blocks readers parse as HTTP (warcio's rule)."""
+_REQUEST_PARSER = StatusAndHeadersParser(ArcWarcRecordLoader.HTTP_VERBS)
+"""The parser warcio reads request records with."""
+DISK_FAULT_ERRNOS = frozenset({
+    errno.ENOSPC, errno.EDQUOT, errno.EFBIG,  # full: no space, quota, file size limit
+    errno.EROFS, errno.EACCES, errno.EPERM,  # read-only, or refused to this process
+    errno.EIO,  # the device failed
+    errno.ENOENT, errno.ESTALE,  # gone: the folder vanished (ESTALE on NFS)
+})
+"""OSError numbers meaning the output folder takes no more writes."""
+_LINE_ESCAPES = {ord(c): c.encode("unicode_escape").decode("ascii")
+                 for c in "\n\r\x0b\x0c\x1c\x1d\x1e\x85\u2028\u2029"}
+"""Every character str.splitlines breaks at, escaped."""
+_MEMBER_MAGIC = b"\x1f\x8b\x08"  # RFC 1952 s.2.3.1: ID1 ID2, CM 8 (deflate)
+_RECORD_START = b"WARC/"  # ISO 28500 s.4: a record opens with its version line
+_INFLATE_CHUNK = 1 << 14  # compressed bytes read at a time while checking a member
+_TAIL_CHUNK = 1 << 16  # bytes read at a time while looking for the log's last newline
 UUID_BYTES = 16
 _UUID_KEEP = ~((0xF000 << 64) | (0xC000 << 48))  # version and variant bits cleared
 _UUID_SET = (4 << 76) | (0x8000 << 48)  # version 4, RFC variant
@@ -134,8 +195,35 @@ def warc_date(moment: datetime) -> str:
     return naive.isoformat() + "Z"
 
 
+def _without_surrogates(text: str) -> str:
+    """``text`` with every lone surrogate replaced by U+FFFD (RFC 3629 s.3)."""
+    return text.encode("utf-16", "surrogatepass").decode("utf-16", "replace")
+
+
+def _utf8(text: str) -> bytes:
+    """UTF-8 of any text: undecodable bytes kept as surrogates (PEP 383) go back to
+    those bytes; when other lone surrogates are present, every one becomes U+FFFD."""
+    try:
+        return text.encode("utf-8")
+    except UnicodeEncodeError:
+        pass
+    try:
+        return text.encode("utf-8", "surrogateescape")
+    except UnicodeEncodeError:
+        return _without_surrogates(text).encode("utf-8")
+
+
 def _uri(url: str) -> str:
-    return url.translate(_URI_UNSAFE) if _URI_UNSAFE_SEARCH(url) else url
+    """``url`` as a URI: whitespace, controls and (RFC 3987 s.3.1) the UTF-8 octets of
+    other characters percent-encoded; '%' escapes already there stay."""
+    if url.isascii():
+        return url.translate(_URI_UNSAFE) if _URI_UNSAFE_SEARCH(url) else url
+    return quote(_utf8(url), safe=_URI_KEEP)
+
+
+def _percent(text: str) -> str:
+    """ASCII ``text`` as it is; other characters as percent-encoded UTF-8 octets."""
+    return text if text.isascii() else quote(_utf8(text), safe=_ASCII)
 
 
 def _clean(text: str) -> str:
@@ -150,12 +238,219 @@ def _clean(text: str) -> str:
         try:  # undecodable bytes kept as surrogates: give them back as bytes
             text = text.encode("utf-8", "surrogateescape").decode("latin-1")
         except UnicodeEncodeError:  # any other lone surrogate: U+FFFD (RFC 3629 s.3)
-            text = text.encode("utf-16", "surrogatepass").decode("utf-16", "replace")
+            text = _without_surrogates(text)
     return text
 
 
+def _one_line(text: str) -> str:
+    """``text`` on one printable line: line breaks and lone surrogates escaped."""
+    return text.translate(_LINE_ESCAPES).encode("utf-8", "backslashreplace").decode("utf-8")
+
+
+# -- disk faults and whole writes ----------------------------------------------------
+
+
+def disk_fault(exc: BaseException, path: Path | str) -> DiskFault | None:
+    """The ``DiskFault`` for an OSError meaning the folder takes no more writes, else None.
+
+    The message is one line naming the path and the cause.
+    """
+    if not isinstance(exc, OSError) or exc.errno not in DISK_FAULT_ERRNOS:
+        return None
+    cause = exc.strerror or os.strerror(exc.errno)
+    return DiskFault(_one_line(f"cannot write {os.fspath(path)}: {cause} "
+                               f"({errno.errorcode[exc.errno]})"))
+
+
+def _vanished(path: Path) -> DiskFault:
+    return DiskFault(_one_line(f"cannot write {path}: the output folder vanished"))
+
+
+@contextlib.contextmanager
+def _disk_faults(path: Path) -> Iterator[None]:
+    """Raise the OSErrors of the block that mean a disk fault as ``DiskFault``."""
+    try:
+        yield
+    except OSError as exc:
+        fault = disk_fault(exc, path)
+        if fault is None:
+            raise
+        raise fault from exc
+
+
+@contextlib.contextmanager
+def _locked(fd: int) -> Iterator[None]:
+    """An exclusive flock(2) on ``fd`` for the block."""
+    fcntl.flock(fd, fcntl.LOCK_EX)
+    try:
+        yield
+    finally:
+        fcntl.flock(fd, fcntl.LOCK_UN)
+
+
+def _write_all(fd: int, data: bytes, offset: int | None = None) -> None:
+    """Write all of ``data`` at ``offset`` (or at the end of an O_APPEND file), going on
+    after short writes. An error can leave part of it written."""
+    view = memoryview(data)
+    while True:
+        written = os.write(fd, view) if offset is None else os.pwrite(fd, view, offset)
+        if written == len(view):
+            return
+        if written <= 0:
+            raise OSError(errno.EIO, "a write made no progress")
+        view = view[written:]
+        if offset is not None:
+            offset += written
+
+
+def _cut_back(fd: int, end: int) -> bool:
+    """Truncate the file to ``end``; False when that failed too."""
+    try:
+        os.ftruncate(fd, end)
+    except OSError:
+        return False
+    return True
+
+
+# -- repair on open --------------------------------------------------------------------
+
+
+def _member_end(data: mmap.mmap | bytes, start: int) -> int | None:
+    """End of the whole gzip member at ``start`` holding one WARC record, else None.
+
+    zlib checks the deflate stream and the member's CRC-32 and length (RFC 1952 s.2.3.1);
+    the record must open with its version line and end with CRLF CRLF (ISO 28500 s.4).
+    """
+    inflater = zlib.decompressobj(GZIP_WBITS)
+    head = tail = b""
+    pos = start
+    while not inflater.eof:
+        chunk = data[pos:pos + _INFLATE_CHUNK]
+        if not chunk:
+            return None  # the file ends inside the member
+        pos += len(chunk)
+        try:
+            out = inflater.decompress(chunk)
+        except zlib.error:
+            return None
+        if len(head) < len(_RECORD_START):
+            head = (head + out)[:len(_RECORD_START)]
+            if not _RECORD_START.startswith(head):
+                return None
+        if out:
+            tail = (tail + out)[-len(_RECORD_END):]
+    if head != _RECORD_START or tail != _RECORD_END:
+        return None
+    return pos - len(inflater.unused_data)
+
+
+def whole_members_end(data: mmap.mmap | bytes) -> int:
+    """Where the last whole gzip member (one WARC record) of ``data`` ends; 0 if none.
+
+    Searches back from the end for a member start whose member inflates whole. A writer
+    only ever appends, so everything before that member is whole too; this costs about
+    one record's inflation, not the whole file's.
+    """
+    limit = len(data)
+    while (start := data.rfind(_MEMBER_MAGIC, 0, limit)) >= 0:
+        end = _member_end(data, start)
+        if end is not None:
+            return end
+        limit = start
+    return 0
+
+
+def repair_warc(path: Path) -> int | None:
+    """Cut a WARC file left by a crash back to the end of its last whole gzip member,
+    or remove it when no member is whole.
+
+    A file a live writer holds (its exclusive flock), or no regular file, is left
+    alone: returns None.
+    Otherwise returns the file's length afterwards (0: removed).
+    """
+    try:
+        fd = os.open(path, os.O_RDONLY | os.O_CLOEXEC)
+    except FileNotFoundError:
+        return 0
+    try:
+        if not S_ISREG(os.fstat(fd).st_mode):
+            return None
+        try:
+            fcntl.flock(fd, fcntl.LOCK_EX | fcntl.LOCK_NB)
+        except BlockingIOError:
+            return None
+        held = os.fstat(fd)  # read under the lock: no writer is at work now
+        try:
+            named = os.stat(path)
+        except FileNotFoundError:
+            return 0  # another repair removed it meanwhile
+        if (named.st_dev, named.st_ino) != (held.st_dev, held.st_ino):
+            return None
+        size, end = held.st_size, 0
+        if size:
+            with mmap.mmap(fd, size, access=mmap.ACCESS_READ) as data:
+                end = whole_members_end(data)
+        if end == 0:
+            os.unlink(path)  # a writer that made it a moment ago sees no link and moves on
+        elif end < size:
+            writable = os.open(path, os.O_WRONLY | os.O_CLOEXEC)
+            try:
+                os.ftruncate(writable, end)
+                os.fsync(writable)
+            finally:
+                os.close(writable)
+        if end < size:
+            log.warning("repaired %s: cut %d torn bytes off its end%s", path, size - end,
+                        " (nothing whole: removed)" if end == 0 else "")
+        return end
+    finally:
+        os.close(fd)
+
+
+def repair_warc_folder(directory: Path) -> None:
+    """``repair_warc`` every WARC file of ``directory``."""
+    for path in sorted(directory.glob(f"*{WARC_SUFFIX}")):
+        repair_warc(path)
+
+
+def _cut_torn_line(fd: int) -> int:
+    """Cut the file back to the end of its last whole line; returns its length.
+
+    The caller holds the file's lock, so no writer is in the middle of a line.
+    """
+    size = os.fstat(fd).st_size
+    if size == 0 or os.pread(fd, 1, size - 1) == b"\n":
+        return size
+    end, keep = size, 0
+    while end > 0:
+        start = max(0, end - _TAIL_CHUNK)
+        newline = os.pread(fd, end - start, start).rfind(b"\n")
+        if newline >= 0:
+            keep = start + newline + 1
+            break
+        end = start
+    os.ftruncate(fd, keep)
+    log.warning("repaired the fetch log: cut a torn line of %d bytes off its end", size - keep)
+    return keep
+
+
+def repair_fetch_log(path: Path) -> int:
+    """Cut a torn last line (one without its newline) off a fetch log; returns the
+    log's length (0 when there is none)."""
+    try:
+        fd = os.open(path, os.O_RDWR | os.O_CLOEXEC)
+    except FileNotFoundError:
+        return 0
+    try:
+        with _locked(fd):
+            return _cut_torn_line(fd)
+    finally:
+        os.close(fd)
+
+
 _RANDOM_BATCH = 256  # UUIDs' worth of random bytes drawn from the OS at a time
-_random_pool = bytearray()
+_random = threading.local()  # a pool per thread: two writers never take the same bytes
+os.register_at_fork(after_in_child=lambda: setattr(_random, "pool", bytearray()))
 
 
 def _record_ids(count: int) -> list[str]:
@@ -163,13 +458,16 @@ def _record_ids(count: int) -> list[str]:
 
     Same bits as ``uuid.uuid4()`` (RFC 9562 s.5.4: version 4, variant 10x); the bytes come
     from ``os.urandom``, drawn for many IDs at once (a system call each time cost more
-    than formatting the IDs).
+    than formatting the IDs), into a pool of the calling thread's own.
     """
     need = UUID_BYTES * count
-    if len(_random_pool) < need:
-        _random_pool.extend(os.urandom(UUID_BYTES * max(count, _RANDOM_BATCH)))
-    raw = bytes(_random_pool[:need])
-    del _random_pool[:need]
+    pool: bytearray | None = getattr(_random, "pool", None)
+    if pool is None:
+        pool = _random.pool = bytearray()
+    if len(pool) < need:
+        pool.extend(os.urandom(UUID_BYTES * max(count, _RANDOM_BATCH)))
+    raw = bytes(pool[:need])
+    del pool[:need]
     ids = []
     for start in range(0, len(raw), UUID_BYTES):
         number = int.from_bytes(raw[start:start + UUID_BYTES], "big") & _UUID_KEEP | _UUID_SET
@@ -197,31 +495,39 @@ _EMPTY_DIGEST = _digest()
 
 
 def _http_head(protocol: str, statusline: str, headers: HeaderList) -> bytes:
-    """An HTTP head as warcio's ``StatusAndHeaders.to_ascii_bytes`` writes it.
+    """An HTTP head in ASCII, as warcio's ``StatusAndHeaders.to_ascii_bytes`` writes it.
 
-    ASCII heads are joined here; anything else goes through warcio, which
-    percent-encodes non-ASCII values (RFC 8187) or refuses the head.
+    ASCII heads are joined here. Otherwise values are encoded as warcio encodes them
+    (RFC 8187), and the names, the first line and any value warcio leaves non-ASCII
+    become percent-encoded UTF-8 (field names are ASCII tokens, RFC 9110 s.5.1), where
+    warcio would refuse the head. The text must have been through ``_clean``.
     """
     first = f"{protocol} {statusline}" if protocol and statusline else protocol or statusline
     lines = [f"{first}{_CRLF}"] if first else []
     lines += [f"{name}: {value}{_CRLF}" for name, value in headers]
     lines.append(_CRLF)
-    try:
-        return "".join(lines).encode("ascii")
-    except UnicodeEncodeError:
-        fallback = StatusAndHeaders(statusline, list(headers), protocol=protocol)
-        return bytes(fallback.to_ascii_bytes())
+    text = "".join(lines)
+    if text.isascii():
+        return text.encode("ascii")
+    head = StatusAndHeaders(_percent(statusline), [(_percent(n), v) for n, v in headers],
+                            protocol=_percent(protocol))
+    head.percent_encode_non_ascii_headers()
+    head.headers = [(name, _percent(value)) for name, value in head.headers]
+    return bytes(head.to_ascii_bytes())
 
 
-def _raw_request_block(target: str, head: bytes) -> tuple[bytes, bytes]:
-    """(block, payload) for a raw request head, parsed and re-serialised by warcio."""
+def _raw_request_block(head: bytes) -> tuple[bytes, bytes]:
+    """(block, payload) for a raw request head: stored as given, its payload where
+    warcio's request parser finds it. ValueError for a head that parser refuses."""
     raw = head if head.endswith(_RECORD_END) else head.rstrip(b"\r\n") + _RECORD_END
     stream = io.BytesIO(raw)
-    parsed = ArcWarcRecordLoader().load_http_headers("request", target, stream, len(raw))
-    if not parsed:
-        return raw, raw
-    payload = stream.read()
-    return bytes(parsed.to_ascii_bytes()) + payload, payload
+    try:
+        parsed = _REQUEST_PARSER.parse(stream)
+    except (StatusAndHeadersParserException, EOFError) as exc:
+        raise ValueError(_one_line(f"not an HTTP request head: {exc}")[:200]) from None
+    if not parsed.protocol:
+        raise ValueError("not an HTTP request head: no request line")
+    return raw, stream.read()
 
 
 def _gzip_record(
@@ -235,7 +541,7 @@ def _gzip_record(
     head = [
         f"WARC/{WARC_VERSION}{_CRLF}WARC-Type: {warc_type}{_CRLF}",
         f"WARC-Record-ID: {record_id}{_CRLF}WARC-Date: {date}{_CRLF}",
-        f"WARC-Target-URI: {target}{_CRLF}" if target else "",
+        f"WARC-Target-URI: {target}{_CRLF}",  # shall be present (ISO 28500 s.5.6)
         f"{fields}Content-Type: {content_type}{_CRLF}",
         f"WARC-Block-Digest: {_digest(*block)}{_CRLF}",
     ]
@@ -266,6 +572,16 @@ def rewrite_response_headers(
     return kept + originals
 
 
+@dataclass(slots=True)
+class _OpenWarc:
+    """The WARC file being written."""
+
+    path: Path
+    fd: int
+    end: int  # the end of its last whole exchange: where the next one goes
+    torn: bool = False  # a failed write left bytes past ``end`` that could not be cut
+
+
 @dataclass(frozen=True, slots=True)
 class RecordRef:
     """Where a response record lies: file name, gzip member offset and length."""
@@ -281,6 +597,7 @@ class WarcArchive:
 
     Files open lazily on the first write; ``close()`` finishes the current
     file, and a later write starts a new one. One asyncio loop, no locking.
+    The first open repairs the folder's WARC files left by a crash.
     """
 
     def __init__(
@@ -305,13 +622,13 @@ class WarcArchive:
         self.clock = clock
         self.files: list[Path] = []
         self._serial = 0
-        self._file: IO[bytes] | None = None
-        self._position = 0  # bytes in the current file (tell() costs a system call)
+        self._file: _OpenWarc | None = None
+        self._folder: tuple[int, int] | None = None  # (device, inode) once the folder is made
 
     @property
     def current_path(self) -> Path | None:
         """The file being written, or None between files."""
-        return self.files[-1] if self._file is not None else None
+        return self._file.path if self._file is not None else None
 
     def write_exchange(
         self,
@@ -336,20 +653,24 @@ class WarcArchive:
         A metadata record is written only for a non-empty ``outlinks``.
         Returns the location of the response record. Rotates afterwards when
         the file has grown past ``max_file_bytes``.
+
+        The exchange is written whole or not at all. Raises ``DiskFault`` when the
+        folder takes no more writes (the file is then cut back to the exchange before),
+        and ValueError, writing nothing, for a raw request head readers cannot parse.
         """
-        out = self._open()
         target = _uri(url)
+        http = target.startswith(_HTTP_SCHEMES)
         date = warc_date(fetched_at)
         request_id, response_id, metadata_id = _record_ids(3)
-        ip_field = f"WARC-IP-Address: {remote_ip}{_CRLF}" if remote_ip else ""
+        ip_field = f"WARC-IP-Address: {_uri(remote_ip)}{_CRLF}" if remote_ip else ""
 
-        request_block, request_payload = self._request_block(target, request_line_and_headers)
-        self._write(out, _gzip_record(
+        request_block, request_payload = self._request_block(request_line_and_headers)
+        request_digest = _digest(request_payload) if request_payload else _EMPTY_DIGEST
+        request = _gzip_record(
             "request", request_id, date, target,
             f"{ip_field}WARC-Concurrent-To: {response_id}{_CRLF}", REQUEST_CONTENT_TYPE,
-            request_block, _digest(request_payload) if request_payload else _EMPTY_DIGEST,
-        ))
-
+            (request_block,), request_digest if http else None,
+        )
         http_head = _http_head(
             HTTP_VERSION, _clean(f"{response_status} {response_reason}"),
             rewrite_response_headers(response_headers, len(body), body_decoded=body_decoded),
@@ -357,27 +678,36 @@ class WarcArchive:
         response = _gzip_record(
             "response", response_id, date, target,
             f"{ip_field}WARC-Concurrent-To: {request_id}{_CRLF}", RESPONSE_CONTENT_TYPE,
-            (http_head, body), _digest(body), truncated,
+            (http_head, body), _digest(body) if http else None,
+            _uri(truncated) if truncated else None,
         )
-        offset = self._position
-        self._write(out, response)
-        ref = RecordRef(self.files[-1].name, offset, len(response), response_id)
-
+        members = [request, response]
         if outlinks:
-            self._write(out, self._metadata_record(target, date, metadata_id, response_id,
-                                                   outlinks))
-
-        if self._position >= self.max_file_bytes:
+            members.append(self._metadata_record(target, date, metadata_id, response_id,
+                                                 outlinks))
+        file = self._open()
+        offset = self._append(file, b"".join(members))
+        ref = RecordRef(file.path.name, offset + len(request), len(response), response_id)
+        if file.end >= self.max_file_bytes:
             self.close()
         return ref
 
     def close(self) -> None:
-        """Flush and close the current file, if any."""
-        if self._file is not None:
-            self._file.flush()
-            os.fsync(self._file.fileno())
-            self._file.close()
-        self._file = None
+        """Make the current file durable (fsync) and close it, if any.
+
+        Raises ``DiskFault`` when that failed or the folder vanished; the file is
+        closed either way.
+        """
+        file, self._file = self._file, None
+        if file is None:
+            return
+        with _disk_faults(file.path):
+            try:
+                if os.fstat(file.fd).st_nlink == 0:
+                    raise _vanished(file.path)
+                os.fsync(file.fd)
+            finally:
+                os.close(file.fd)
 
     def __enter__(self) -> WarcArchive:
         return self
@@ -387,22 +717,63 @@ class WarcArchive:
 
     # -- internals -------------------------------------------------------------------
 
-    def _open(self) -> IO[bytes]:
+    def _open(self) -> _OpenWarc:
         if self._file is not None:
             return self._file
-        self.directory.mkdir(parents=True, exist_ok=True)
-        now = self.clock()
-        stamp = now.astimezone(UTC).strftime(FILE_TIMESTAMP_FORMAT)
-        while True:
-            serial = f"{self._serial:0{SERIAL_WIDTH}d}"
-            name = f"{self.prefix}-{stamp}-{serial}-{os.getpid()}{WARC_SUFFIX}"
-            self._serial += 1
-            try:
-                out = open(self.directory / name, "xb")  # noqa: SIM115 - kept open across writes
-            except FileExistsError:
-                continue
-            break
-        writer = _Writer(out, gzip=True, warc_version=WARC_VERSION)
+        with _disk_faults(self.directory):
+            self._check_folder()
+            now = self.clock()
+            stamp = now.astimezone(UTC).strftime(FILE_TIMESTAMP_FORMAT)
+            while True:
+                serial = f"{self._serial:0{SERIAL_WIDTH}d}"
+                name = f"{self.prefix}-{stamp}-{serial}-{os.getpid()}{WARC_SUFFIX}"
+                self._serial += 1
+                path = self.directory / name
+                try:
+                    fd = os.open(path, os.O_WRONLY | os.O_CREAT | os.O_EXCL | os.O_CLOEXEC,
+                                 0o644)
+                except FileExistsError:
+                    continue
+                try:  # held while the file is open: repairs leave it alone
+                    fcntl.flock(fd, fcntl.LOCK_EX)
+                    if os.fstat(fd).st_nlink:
+                        break
+                except BaseException:
+                    os.close(fd)
+                    raise
+                os.close(fd)  # a repair took it for a crash's leftover: take the next name
+        file = _OpenWarc(path, fd, 0)
+        try:
+            self._append(file, self._warcinfo(name, now))
+        except BaseException:
+            os.close(fd)
+            with contextlib.suppress(OSError):
+                os.unlink(path)
+            raise
+        self._file = file
+        self.files.append(path)
+        return file
+
+    def _check_folder(self) -> None:
+        """Make the folder and repair its files the first time; later, make sure it is
+        still the same folder (a vanished one is not made again)."""
+        if self._folder is None:
+            self.directory.mkdir(parents=True, exist_ok=True)
+            repair_warc_folder(self.directory)
+            stat = os.stat(self.directory)
+            self._folder = (stat.st_dev, stat.st_ino)
+            return
+        try:
+            stat = os.stat(self.directory)
+        except FileNotFoundError:
+            raise _vanished(self.directory) from None
+        if (stat.st_dev, stat.st_ino) != self._folder:
+            raise _vanished(self.directory)
+
+    def _warcinfo(self, name: str, now: datetime) -> bytes:
+        """The warcinfo record opening file ``name`` (ISO 28500 s.6.2), through warcio."""
+        buffer = io.BytesIO()
+        writer = _Writer(buffer, gzip=True, warc_version=WARC_VERSION)
         info: dict[str, Any] = {
             "software": self.software,
             "operator": self.operator,
@@ -414,24 +785,41 @@ class WarcArchive:
         warcinfo = writer.create_warcinfo_record(name, info)
         warcinfo.rec_headers.replace_header("WARC-Date", warc_date(now))
         writer.write_record(warcinfo)
-        self._position = out.tell()
-        self._file = out
-        self.files.append(self.directory / name)
-        return out
-
-    def _write(self, out: IO[bytes], data: bytes) -> None:
-        out.write(data)
-        self._position += len(data)
+        return buffer.getvalue()
 
     @staticmethod
-    def _request_block(target: str, head: RequestHead) -> tuple[tuple[bytes, ...], bytes]:
-        """(block parts, HTTP payload) of the request record."""
+    def _append(file: _OpenWarc, data: bytes) -> int:
+        """Write ``data`` at the end of the file's whole records; returns where it went.
+
+        On any error the file is cut back to where ``data`` began.
+        """
+        start = file.end
+        try:
+            if os.fstat(file.fd).st_nlink == 0:
+                raise _vanished(file.path)
+            if file.torn:
+                os.ftruncate(file.fd, start)
+                file.torn = False
+            _write_all(file.fd, data, start)
+        except DiskFault:
+            raise
+        except BaseException as exc:
+            file.torn = not _cut_back(file.fd, start)
+            fault = disk_fault(exc, file.path)
+            if fault is None:
+                raise
+            raise fault from exc
+        file.end = start + len(data)
+        return start
+
+    @staticmethod
+    def _request_block(head: RequestHead) -> tuple[bytes, bytes]:
+        """(block, HTTP payload) of the request record."""
         if isinstance(head, bytes):
-            block, payload = _raw_request_block(target, head)
-            return (block,), payload
+            return _raw_request_block(head)
         method, path, headers = head
-        protocol, _, statusline = _clean(f"{method} {path} {HTTP_VERSION}").partition(" ")
-        return (_http_head(protocol, statusline, [(_clean(n), _clean(v)) for n, v in headers]),), b""
+        return _http_head(_uri(method), f"{_uri(path)} {HTTP_VERSION}",
+                          [(_clean(n), _clean(v)) for n, v in headers]), b""
 
     @staticmethod
     def _metadata_record(
@@ -442,8 +830,8 @@ class WarcArchive:
         links = "".join([link for link, _ in outlinks])
         anchors = [anchor for _, anchor in outlinks]
         joined = "".join(anchors)
-        if (all(anchors) and joined.isascii() and "\r" not in joined and "\n" not in joined
-                and not _URI_UNSAFE_SEARCH(links)):  # the usual page: nothing to escape
+        if (all(anchors) and joined.isascii() and links.isascii() and "\r" not in joined
+                and "\n" not in joined and not _URI_UNSAFE_SEARCH(links)):  # nothing to escape
             text = _CRLF.join([f"{OUTLINK_FIELD}: {link} {anchor}" for link, anchor in outlinks])
             block = (text + _CRLF).encode("ascii")
         else:
@@ -489,53 +877,74 @@ class FetchEntry:
 class FetchLog:
     """JSON-lines log of fetch outcomes; appends when reopened.
 
-    Lines are buffered until :meth:`flush` (the worker flushes after each write-back
-    batch, before it awaits anything), so a batch costs one system call, not one a line.
+    Lines wait in memory until :meth:`flush` (the worker flushes after each write-back
+    batch, before it awaits anything), which appends the batch in one write and fsyncs.
+    Several logs (the workers of one crawl) may share the file: each append holds an
+    exclusive flock, so lines never interleave. Opening cuts off a torn last line.
     """
 
     def __init__(self, out_dir: Path) -> None:
         self.path = Path(out_dir) / FETCH_LOG_NAME
-        self.path.parent.mkdir(parents=True, exist_ok=True)
-        torn = self._ends_mid_line(self.path)
-        self._out: IO[bytes] | None = open(self.path, "ab")  # noqa: SIM115 - kept open
-        if torn:
-            self._out.write(b"\n")
-
-    @staticmethod
-    def _ends_mid_line(path: Path) -> bool:
-        try:
-            with open(path, "rb") as existing:
-                existing.seek(0, os.SEEK_END)
-                if existing.tell() == 0:
-                    return False
-                existing.seek(-1, os.SEEK_END)
-                return existing.read(1) != b"\n"
-        except FileNotFoundError:
-            return False
+        self._lines: list[bytes] = []
+        with _disk_faults(self.path):
+            self.path.parent.mkdir(parents=True, exist_ok=True)
+            fd = os.open(self.path, os.O_RDWR | os.O_APPEND | os.O_CREAT | os.O_CLOEXEC,
+                         0o644)
+            try:
+                with _locked(fd):
+                    _cut_torn_line(fd)
+            except BaseException:
+                os.close(fd)
+                raise
+        self._fd: int | None = fd
 
     def write(self, entry: FetchEntry) -> None:
-        """Append one line for ``entry``."""
-        if self._out is None:
+        """Buffer one line for ``entry``."""
+        if self._fd is None:
             raise ValueError("fetch log is closed")
         data = entry.to_json()
         try:
             line = orjson.dumps(data, option=orjson.OPT_APPEND_NEWLINE)
         except orjson.JSONEncodeError:  # a lone surrogate in some text: write it escaped
             line = json.dumps(data, separators=(",", ":")).encode("ascii") + b"\n"
-        self._out.write(line)
+        self._lines.append(line)
 
     def flush(self) -> None:
-        """Hand the buffered lines to the operating system."""
-        if self._out is not None:
-            self._out.flush()
+        """Append the buffered lines in one write and make them durable (fsync).
+
+        Raises ``DiskFault`` when the folder takes no more writes or vanished; the file
+        then still ends with a whole line, and the lines stay buffered for a later flush.
+        """
+        fd = self._fd
+        if fd is None:
+            return
+        with _disk_faults(self.path):
+            if os.fstat(fd).st_nlink == 0:
+                raise _vanished(self.path)
+            if self._lines:
+                data = b"".join(self._lines)
+                with _locked(fd):
+                    end = _cut_torn_line(fd)  # what another writer's failure may have left
+                    try:
+                        _write_all(fd, data)
+                    except BaseException:
+                        _cut_back(fd, end)
+                        raise
+                self._lines.clear()
+            os.fsync(fd)
 
     def close(self) -> None:
-        """Flush and close the log."""
-        if self._out is not None:
-            self._out.flush()
-            os.fsync(self._out.fileno())
-            self._out.close()
-            self._out = None
+        """Flush and close the log; the file is closed even when the flush fails."""
+        fd = self._fd
+        if fd is None:
+            return
+        try:
+            self.flush()
+        finally:
+            self._fd = None
+            self._lines.clear()
+            with _disk_faults(self.path):
+                os.close(fd)
 
     def __enter__(self) -> FetchLog:
         return self
