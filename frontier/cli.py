@@ -15,12 +15,18 @@ from typing import Any
 
 from prometheus_client import CollectorRegistry
 
-from frontier.exceptions import ConfigError, SluiceError
+from frontier.exceptions import ConfigError, DiskFault, SluiceError
 from frontier.process import crawl_process
 from frontier.process import run as run_loop
 from frontier.settings import JobSettings, load_settings
 
 log = logging.getLogger("sluice")
+
+# Exit status of sluice crawl and sluice worker (and every command): 0 done (or stopped
+# by a signal, resumable), 2 an error (a bad setting, Redis unreachable), 3 the output
+# folder cannot be written (disk full, quota, read-only, gone): the worker stopped leasing
+# and handed its leases back; free space and run the same command again to resume.
+EXIT_DISK_FAULT = 3
 
 
 def dump_tasks() -> None:
@@ -30,12 +36,20 @@ def dump_tasks() -> None:
     sys.stderr.flush()
 
 
-def watch_signals(on_stop: Any) -> None:
-    """SIGINT/SIGTERM stop cleanly; SIGUSR1 dumps the tasks."""
+def watch_signals(on_stop: Any, on_cancel: Any = None) -> None:
+    """The first SIGINT/SIGTERM stops cleanly (``on_stop``), a second one calls
+    ``on_cancel`` (stop at once), if given; SIGUSR1 dumps the tasks."""
     loop = asyncio.get_running_loop()
+    signals = 0
+
+    def received() -> None:
+        nonlocal signals
+        signals += 1
+        (on_cancel if signals > 1 and on_cancel is not None else on_stop)()
+
     with contextlib.suppress(NotImplementedError):
-        loop.add_signal_handler(signal.SIGINT, on_stop)
-        loop.add_signal_handler(signal.SIGTERM, on_stop)
+        loop.add_signal_handler(signal.SIGINT, received)
+        loop.add_signal_handler(signal.SIGTERM, received)
         loop.add_signal_handler(signal.SIGUSR1, dump_tasks)
 
 
@@ -132,21 +146,36 @@ async def _crawl_job(settings: JobSettings, out: Path, workers: int, registry: C
                 for _ in range(workers)]
         interrupted = False
 
-        def interrupt() -> None:
+        def interrupt() -> None:  # lease no more; in-flight work gets fetch.stop_grace_s
             nonlocal interrupted
             interrupted = True
             stop.set()
             for w in crew:
                 w.stop()
 
-        watch_signals(interrupt)
+        def cancel() -> None:  # a second signal: hand back what is in flight, at once
+            for w in crew:
+                w.abandon()
+
+        async def run_worker(w: Worker) -> None:
+            try:
+                await w.run()
+            except BaseException:  # a full disk, a bug: the others stop at once too
+                cancel()
+                raise
+
+        watch_signals(interrupt, cancel)
         runner = await serve_admin(daemon, admin) if admin else None
         background = asyncio.create_task(daemon.run(stop))
         started = time.monotonic()
         progress = Progress(daemon, quiet=quiet)
         try:
             async with progress:
-                await asyncio.gather(*(w.run() for w in crew))
+                ends = await asyncio.gather(*(run_worker(w) for w in crew),
+                                            return_exceptions=True)
+                for end in ends:
+                    if isinstance(end, BaseException):
+                        raise end
         finally:
             stop.set()
             await background
@@ -210,7 +239,7 @@ def cmd_worker(a: argparse.Namespace) -> int:
             registry = CollectorRegistry()
             worker = Worker(job.store, job.admission, Path(a.out),
                             metrics=WorkerMetrics(registry), drain=a.drain)
-            watch_signals(worker.stop)
+            watch_signals(worker.stop, worker.abandon)
             runner = await serve(metrics_app(registry), a.metrics) if a.metrics else None
             try:
                 with crawl_process():
@@ -396,6 +425,9 @@ def main(argv: list[str] | None = None) -> int:
                         format="%(asctime)s %(levelname)s %(name)s: %(message)s")
     try:
         return int(a.func(a))
+    except DiskFault as exc:  # the worker handed back what it held; one line says what to do
+        print(f"sluice: {exc}", file=sys.stderr)
+        return EXIT_DISK_FAULT
     except SluiceError as exc:
         print(f"sluice: {exc}", file=sys.stderr)
         return 2

@@ -20,7 +20,7 @@ from redis.exceptions import NoScriptError, RedisError, ResponseError
 ScriptCall = tuple[AsyncScript, list[Any], list[Any]]
 
 SCRIPT_NAMES = (
-    "admit", "lease_pick", "lease_take", "unclaim", "complete", "reap", "control",
+    "admit", "lease_pick", "lease_take", "unclaim", "complete", "reap", "control", "extend",
 )
 
 
@@ -44,6 +44,7 @@ class Scripts:
     complete: AsyncScript
     reap: AsyncScript
     control: AsyncScript
+    extend: AsyncScript
 
     @classmethod
     def register(cls, client: Any) -> Scripts:

@@ -39,6 +39,7 @@ CLOCK_SKEW_WARN_MS = 1000  # a local clock this far off the server's is logged
 LEASE_ROUNDS = 2
 COLD_SCAN_CHUNK = 1000  # cold-list entries read per call when looking for one URL
 COLD_SCAN_LIMIT = 200_000  # entries of one cold list searched before giving up
+RELEASE = "release"  # the complete script's outcome for a lease handed back unfinished
 
 
 def _text(value: Any) -> str:
@@ -371,6 +372,66 @@ class FrontierStore:
                      int(c.extra_delay_s * 1000), crawl)
         keys.append(pk.ended)
         return (self.scripts.complete, keys, args)
+
+    # -- extend and release (a worker's held leases) -------------------------------------
+
+    async def extend(self, leases: Iterable[Lease], now: int | None = None) -> list[str]:
+        """Push the expiry of held leases to ``now + lease.ttl_s`` (a worker's heartbeat).
+
+        One status per lease, in order: 'ok', 'not_held' (completed, reaped or unknown) or
+        'expired' (past its expiry: the reaper's now, so it is not extended).
+        """
+        t = self._now(now)
+        expires = t + int(self.settings.lease.ttl_s * 1000)
+
+        def call(partition: int, items: list[Lease]) -> ScriptCall:
+            return (self.scripts.extend, [self.keys.part(partition).leases],
+                    [t, expires, *(lease.member for lease in items)])
+
+        return await self._per_partition("extend", list(leases), call)
+
+    async def release(self, leases: Iterable[Lease], now: int | None = None) -> list[str]:
+        """Hand held leases back unfinished (a worker stopping, or one that cannot write).
+
+        Each URL is queued again as it was: no attempt is counted and no ended state, so
+        ``admitted = queued + leased + fetched + failed + excluded + dead`` still holds
+        (leased - 1, queued + 1). The host is scheduled as after any completion. Statuses
+        as :meth:`complete_many`.
+        """
+        t = self._now(now)
+        pol = self.settings.politeness
+
+        def call(partition: int, items: list[Lease]) -> ScriptCall:
+            pk = self.keys.part(partition)
+            keys = self._outcome_keys(pk)
+            args: list[Any] = [
+                t, self.settings.store.hot_capacity, self.settings.lease.max_attempts,
+                int(pol.min_delay_s * 1000), pol.response_time_factor,
+                int(pol.max_delay_s * 1000), len(items)]
+            for lease in items:
+                keys += (pk.host(lease.host), pk.hot(lease.host), pk.cold(lease.host))
+                args += (lease.member, RELEASE, RELEASE, 0, 0, "")
+            keys.append(pk.ended)
+            return (self.scripts.complete, keys, args)
+
+        return await self._per_partition("release", list(leases), call)
+
+    async def _per_partition(
+        self, what: str, leases: list[Lease], call: Callable[[int, list[Lease]], ScriptCall]
+    ) -> list[str]:
+        """One script call per partition of ``leases`` (all in one go); their statuses in
+        the order of ``leases``."""
+        by_part: dict[int, list[int]] = {}
+        for i, lease in enumerate(leases):
+            by_part.setdefault(lease.partition, []).append(i)
+        statuses = [""] * len(leases)
+        async with redis_boundary(what):
+            results = await run_many(self.redis, [
+                call(p, [leases[i] for i in idx]) for p, idx in by_part.items()])
+        for idx, res in zip(by_part.values(), results):
+            for i, status in zip(idx, res):
+                statuses[i] = _text(status)
+        return statuses
 
     async def reap(self, now: int | None = None, *, orphans: bool = False) -> dict[str, int]:
         """Return expired leases to their hosts; counts of 'requeued', 'dead', 'excluded'.

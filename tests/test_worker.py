@@ -3,6 +3,7 @@ archived but not followed, nofollow is honoured, Retry-After slows the host down
 
 from __future__ import annotations
 
+import inspect
 import json
 import time
 from pathlib import Path
@@ -29,7 +30,12 @@ def page(body: str, links: list[str], nofollow: list[str] | None = None) -> str:
 times: list[float] = []
 
 
-async def run_site(tmp_path: Path, redis_url: str, pages: dict[str, Any]) -> tuple[list[str], list[dict[str, Any]]]:
+async def run_site(tmp_path: Path, redis_url: str, pages: dict[str, Any], *,
+                   fresh: bool = True, summaries: list[dict[str, Any]] | None = None,
+                   **extra: dict[str, Any]) -> tuple[list[str], list[dict[str, Any]]]:
+    """Crawl ``pages`` (path -> HTML, or a function of the request count giving a
+    response, or an awaitable one) from http://site.test/; ``extra`` settings by part,
+    ``fresh=False`` resumes the job in Redis, ``summaries`` collects the crawl's summary."""
     requests: list[str] = []
 
     async def handle(request: web.Request) -> web.StreamResponse:
@@ -39,7 +45,8 @@ async def run_site(tmp_path: Path, redis_url: str, pages: dict[str, Any]) -> tup
         if item is None:
             return web.Response(status=404)
         if callable(item):
-            return item(len([p for p in requests if p == request.path]))
+            answer = item(len([p for p in requests if p == request.path]))
+            return await answer if inspect.isawaitable(answer) else answer
         return web.Response(text=item, content_type="text/html")
 
     app = web.Application()
@@ -51,15 +58,20 @@ async def run_site(tmp_path: Path, redis_url: str, pages: dict[str, Any]) -> tup
     port = site._server.sockets[0].getsockname()[1]  # type: ignore[union-attr]
     try:
         from frontier.redis_client import connect
-        client = connect(redis_url)
-        await client.flushall()
-        await client.aclose()
-        settings = load_settings(None, {
+        if fresh:
+            client = connect(redis_url)
+            await client.flushall()
+            await client.aclose()
+        data: dict[str, Any] = {
             "name": "w", "seeds": ["http://site.test/"], "redis": {"url": redis_url},
             "politeness": {"min_delay_s": 0.0, "response_time_factor": 0.0, "max_delay_s": 5.0},
             "fetch": {"user_agent": UA, "map_hosts": [f"site.test=127.0.0.1:{port}"]},
-        })
-        await _crawl(settings, tmp_path, 1, quiet=True)
+        }
+        for part, values in extra.items():
+            data.setdefault(part, {}).update(values)
+        summary = await _crawl(load_settings(None, data), tmp_path, 1, quiet=True)
+        if summaries is not None:
+            summaries.append(summary)
     finally:
         await runner.cleanup()
     log = [json.loads(x) for x in (tmp_path / "fetches.jsonl").read_text().splitlines()]
@@ -137,8 +149,9 @@ async def test_links_back_to_fetched_pages_are_not_sent(
 
 async def test_a_page_whose_archive_write_fails_is_fetched_again(
         tmp_path: Path, redis_server: RedisServer, monkeypatch: Any) -> None:
-    # The first attempt to archive /b.html fails (a full disk, say). Its lease ends as a
-    # retry, the other pages of the batch go on, and the next attempt archives it.
+    # The first attempt to archive /b.html fails with an unexpected error (a bug, not a
+    # disk fault). Its lease ends as a retry, the other pages of the batch go on, and the
+    # next attempt archives it.
     from workers.archive import WarcArchive
 
     write = WarcArchive.write_exchange
@@ -147,7 +160,7 @@ async def test_a_page_whose_archive_write_fails_is_fetched_again(
     def flaky(self: WarcArchive, url: str, *args: Any, **kw: Any) -> Any:
         if url.endswith("/b.html") and not failed:
             failed.append(url)
-            raise OSError(28, "No space left on device")
+            raise RuntimeError("a bug while building a record")
         return write(self, url, *args, **kw)
 
     monkeypatch.setattr(WarcArchive, "write_exchange", flaky)
@@ -195,3 +208,86 @@ async def test_a_crawl_on_the_cluster(tmp_path: Path, redis_cluster: Any) -> Non
     assert sorted(requests) == sorted(["/robots.txt", "/", *children])
     assert sum(e["outcome"] == "fetched" for e in log) == len(children) + 1
     assert [e["reason"] for e in log].count("near_duplicate") == 1  # c0 and c1 are twins
+
+
+async def test_a_slow_page_keeps_its_lease(
+        tmp_path: Path, redis_server: RedisServer, monkeypatch: Any) -> None:
+    # A 1.5 s lease and a page that takes 4 s to answer: the worker extends the leases it
+    # holds every ttl/3, so the reaper (every second) leaves this one alone. Without the
+    # heartbeat it was reaped mid-fetch, leased and fetched a second time meanwhile, and
+    # the first completion came back expired.
+    import asyncio
+
+    from frontier.store import FrontierStore
+
+    statuses: list[str] = []
+    complete_many = FrontierStore.complete_many
+
+    async def spy(self: FrontierStore, completions: Any, now: Any = None) -> list[str]:
+        got = await complete_many(self, completions, now)
+        statuses.extend(got)
+        return got
+
+    async def slow(n: int) -> web.Response:
+        await asyncio.sleep(4.0)
+        return web.Response(text=page("slow " * 40, []), content_type="text/html")
+
+    monkeypatch.setattr(FrontierStore, "complete_many", spy)
+    pages = {"/": page("home " * 50, ["/slow.html"]), "/slow.html": slow}
+    summaries: list[dict[str, Any]] = []
+    requests, log = await run_site(tmp_path, redis_server.url, pages, summaries=summaries,
+                                   lease={"ttl_s": 1.5},
+                                   fetch={"read_timeout_s": 10.0, "total_timeout_s": 20.0})
+    assert requests.count("/slow.html") == 1
+    assert statuses and set(statuses) == {"ok"}
+    assert [e["outcome"] for e in log if e["url"].endswith("/slow.html")] == ["fetched"]
+    assert summaries[0]["balanced"] and summaries[0]["fetched"] == 2
+
+
+async def test_a_full_disk_stops_the_worker_and_hands_back_its_leases(
+        tmp_path: Path, redis_server: RedisServer, monkeypatch: Any) -> None:
+    # Archiving /b.html meets a disk fault: the worker leases no more, hands back what it
+    # holds (queued again, no attempt counted: not dead however often it happens) and the
+    # crawl ends with DiskFault. Resumed with room on the disk, the job completes: /b.html
+    # is fetched again and every page has one fetch-log line.
+    import pytest
+
+    from frontier.exceptions import DiskFault
+    from frontier.redis_client import connect
+    from frontier.settings import JobSettings
+    from frontier.store import FrontierStore
+    from workers.archive import WarcArchive
+
+    write = WarcArchive.write_exchange
+    faults: list[str] = []
+
+    def full(self: WarcArchive, url: str, *args: Any, **kw: Any) -> Any:
+        if url.endswith("/b.html") and len(faults) < 2:
+            faults.append(url)
+            raise DiskFault(f"{self.directory}: No space left on device")
+        return write(self, url, *args, **kw)
+
+    monkeypatch.setattr(WarcArchive, "write_exchange", full)
+    pages = {"/": page("home " * 50, ["/a.html", "/b.html", "/c.html"]),
+             "/a.html": page("alpha " * 40, []), "/b.html": page("bravo " * 40, []),
+             "/c.html": page("charlie " * 40, [])}
+    settings = {"lease": {"max_attempts": 2}}
+    for run in range(2):  # twice: a handed-back page is not an attempt (max_attempts 2)
+        with pytest.raises(DiskFault, match="handed back [1-9][0-9]* unfinished lease"):
+            await run_site(tmp_path, redis_server.url, pages, fresh=run == 0, **settings)
+        client = connect(redis_server.url)
+        store = FrontierStore(client, JobSettings.model_validate({"name": "w"}))
+        counts = await store.counts()
+        attempts = [await client.hgetall(pk.attempts) for pk in store.keys.parts]
+        await client.aclose()
+        assert counts.balanced and counts.leased == 0 and counts.dead == 0
+        assert counts.queued >= 1 and not any(attempts)
+    assert faults == ["http://site.test/b.html"] * 2
+    summaries: list[dict[str, Any]] = []
+    requests, log = await run_site(tmp_path, redis_server.url, pages, fresh=False,
+                                   summaries=summaries, **settings)
+    assert requests.count("/b.html") == 1  # this run's server saw it once more
+    fetched = sorted(e["url"] for e in log if e["outcome"] == "fetched")
+    assert fetched == [f"http://site.test/{p}" for p in ("", "a.html", "b.html", "c.html")]
+    s = summaries[0]
+    assert s["balanced"] and (s["queued"], s["leased"], s["dead"], s["fetched"]) == (0, 0, 0, 4)

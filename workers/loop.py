@@ -11,8 +11,10 @@ import asyncio
 import dataclasses
 import email.utils
 import logging
+import os
 import time
 from collections.abc import Callable
+from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass, field
 from datetime import UTC, datetime
 from pathlib import Path
@@ -22,7 +24,8 @@ from prometheus_client import CollectorRegistry
 
 from frontier.admission import Admission
 from frontier.budget import PageBudget
-from frontier.exceptions import AddressRefused, FetchError, SluiceError, StoreUnavailable
+from frontier.exceptions import (
+    AddressRefused, DiskFault, FetchError, SluiceError, StoreUnavailable)
 from frontier.metrics import WorkerMetrics
 from frontier.model import Candidate, Completion, Lease, Outcome
 from frontier.priority import distribute, url_host
@@ -34,6 +37,7 @@ from frontier.urls import canonicalize
 from frontier.worker_report import WorkerReport
 from workers.archive import FetchEntry, FetchLog, WarcArchive
 from workers.fetcher import Fetcher, Response
+from workers.offload import PagePool
 from workers.parser import ParsedPage, looks_binary, parse_html
 
 log = logging.getLogger(__name__)
@@ -49,6 +53,10 @@ IDLE_SLEEP_MAX_S = 0.25  # a worker with nothing to lease looks again at least t
 STORE_RETRY_S = 0.5
 FETCHED_MEMORY = 200_000  # URLs this worker fetched, remembered to skip links back to them
 ENDED_EVERY_S = 1.0  # how often the frontier's ended journal is copied to the fetch log
+HEARTBEATS_PER_TTL = 3  # held leases are extended every lease.ttl_s / this
+CANCEL_WAIT_S = 2.0  # how long cancelled leases get to end before they are handed back
+# child processes for big pages: half the cores (the event loop and Redis want the rest)
+PAGE_PROCESSES = max(1, (os.cpu_count() or 2) // 2)
 
 
 @dataclass
@@ -92,6 +100,22 @@ def origin_of(url: str) -> str:
     """scheme://host[:port] of a canonical URL."""
     end = url.find("/", url.find("://") + 3)
     return url if end < 0 else url[:end]
+
+
+async def _set_within(event: asyncio.Event, seconds: float) -> bool:
+    """Wait until ``event`` is set or ``seconds`` pass; True if it was set."""
+    try:
+        await asyncio.wait_for(event.wait(), seconds)
+    except TimeoutError:
+        return False
+    return True
+
+
+def join_reasons(*reasons: str | None) -> str | None:
+    """Several reasons for one fetch-log line, comma-separated (e.g.
+    ``truncated_length,links_capped``); None if there are none."""
+    kept = [r for r in reasons if r]
+    return ",".join(kept) if kept else None
 
 
 class Worker:
@@ -149,44 +173,182 @@ class Worker:
         self._ended_at = 0.0  # time.monotonic() of the last copy of the ended journal
         self.archive: WarcArchive | None = None
         self.fetch_log: FetchLog | None = None
+        # leases taken and not yet completed or handed back, by member (the stored string)
+        self._held: dict[str, Lease] = {}
+        self._stop_requested: float | None = None  # time.monotonic() of stop()
+        self._abandon = asyncio.Event()  # hand back what is in flight now
+        self._drained = asyncio.Event()  # nothing in flight any more: last write-back
+        self._done = asyncio.Event()  # the worker has returned everything it held
+        self._fault: DiskFault | None = None  # the output folder stopped taking writes
+        self.handed_back = 0  # leases handed back unfinished
+        # pages over fetch.offload_bytes: parsed in child processes, archived in a thread
+        # of their own (to their own WARC files: one writer per WarcArchive)
+        self._pages: PagePool | None = None
+        self._big_archive: WarcArchive | None = None
+        self._archive_thread: ThreadPoolExecutor | None = None
 
     def stop(self) -> None:
-        """Ask the worker to finish what it holds and return."""
+        """Lease no more; in-flight leases get ``fetch.stop_grace_s`` to finish and be
+        written back, then what is still in flight is handed back (see :meth:`abandon`)."""
+        if self._stop_requested is None:
+            self._stop_requested = time.monotonic()
         self._stop.set()
+        self._lease_wanted.set()
+
+    def abandon(self) -> None:
+        """Stop at once: what is finished is written back, what is in flight is handed
+        back to the frontier (queued again without counting an attempt)."""
+        self.stop()
+        self._abandon.set()
 
     # -- the main loop -------------------------------------------------------------------
 
     async def run(self) -> None:
-        s = self.settings
-        self.archive = WarcArchive(
-            self.out_dir, prefix=s.output.warc_prefix, max_file_bytes=s.output.warc_max_bytes,
-            software="sluice/0.1", operator=self.user_agent, job=s.name)
-        self.fetch_log = FetchLog(self.out_dir)
+        """Lease and fetch until stopped (with ``drain``: until the frontier is done).
+
+        On the way out, what is finished is written back and every lease still held is
+        handed back to the frontier. Raises DiskFault, after handing back, when the
+        output folder stopped taking writes.
+        """
+        self.archive = self._new_archive()
+        try:
+            self.fetch_log = FetchLog(self.out_dir)
+        except DiskFault as exc:
+            self._fault = exc
+            raise self._fault_report() from exc
         self.metrics.watch_archive(self.archive)
-        flusher = asyncio.create_task(self._flush_loop())
-        flusher.add_done_callback(self._flusher_ended)
+        flusher = asyncio.create_task(self._flush_loop(), name="write-back")
+        flusher.add_done_callback(self._loop_ended)
+        heartbeat = asyncio.create_task(self._heartbeat_loop(), name="lease heartbeat")
+        heartbeat.add_done_callback(self._loop_ended)
         try:
             async with self._fetcher:
-                await self._lease_loop()
-                if self._tasks:
-                    await asyncio.gather(*self._tasks, return_exceptions=True)
+                try:
+                    await self._lease_loop()
+                except BaseException:
+                    self.abandon()  # an error, or cancelled: what is in flight goes back
+                    raise
+                finally:
+                    await self._finish_in_flight()
         finally:
             self._stop.set()
+            self._drained.set()
             try:
                 await flusher  # re-raises what stopped it
                 await self._flush()
                 await self._log_ended(force=True)
                 await self.report.beat(self.pages, 0, force=True)  # the final figures
             finally:
-                self.archive.close()
-                self.fetch_log.close()
+                try:
+                    await self._hand_back()
+                finally:
+                    self._done.set()
+                    await heartbeat
+                    self._close_outputs()
+        if self._fault is not None:
+            raise self._fault_report() from self._fault
 
-    def _flusher_ended(self, flusher: asyncio.Task[None]) -> None:
-        """A write-back loop that died of a bug stops the worker (loudly) instead of
-        leaving it to lease pages that are never written back."""
-        if not flusher.cancelled() and flusher.exception() is not None:
-            log.error("write-back failed; stopping this worker", exc_info=flusher.exception())
-            self.stop()
+    def _new_archive(self) -> WarcArchive:
+        s = self.settings
+        return WarcArchive(
+            self.out_dir, prefix=s.output.warc_prefix, max_file_bytes=s.output.warc_max_bytes,
+            software="sluice/0.1", operator=self.user_agent, job=s.name)
+
+    def _loop_ended(self, loop_task: asyncio.Task[None]) -> None:
+        """A write-back or heartbeat loop that died of a bug stops the worker (loudly) at
+        once instead of leaving it to lease pages that are never written back."""
+        if not loop_task.cancelled() and loop_task.exception() is not None:
+            log.error("%s failed; stopping this worker", loop_task.get_name(),
+                      exc_info=loop_task.exception())
+            self.abandon()
+
+    async def _finish_in_flight(self) -> None:
+        """After a stop, leases in flight get what is left of ``fetch.stop_grace_s`` to
+        finish (and be written back); then those still running are cancelled, to be
+        handed back. :meth:`abandon` ends the wait at once."""
+        grace = self.settings.fetch.stop_grace_s
+        since = self._stop_requested if self._stop_requested is not None else time.monotonic()
+        abandon = asyncio.create_task(self._abandon.wait())
+        try:
+            while self._tasks and not self._abandon.is_set():
+                left = since + grace - time.monotonic()
+                if left <= 0:
+                    break
+                await asyncio.wait({*self._tasks, abandon}, timeout=left,
+                                   return_when=asyncio.FIRST_COMPLETED)
+        finally:
+            abandon.cancel()
+        if self._tasks:
+            log.info("handing back %d leases still in flight", len(self._tasks))
+            for task in self._tasks:
+                task.cancel()
+            await asyncio.wait(set(self._tasks), timeout=CANCEL_WAIT_S)
+
+    async def _hand_back(self) -> None:
+        """Return every lease still held to the frontier: queued again as it was, no
+        attempt counted (the complete script's release)."""
+        held = list(self._held.values())
+        self._held.clear()
+        if not held:
+            return
+        try:
+            statuses = await self.store.release(held)
+            await self.budget.release(len(held))
+        except StoreUnavailable as exc:
+            log.warning("could not hand back %d leases (they return to the frontier when "
+                        "they expire, within %.0f s): %s", len(held),
+                        self.settings.lease.ttl_s, exc)
+            return
+        self.handed_back += statuses.count("ok")
+
+    async def _heartbeat_loop(self) -> None:
+        """Extend the held leases every ``lease.ttl_s / 3`` until the worker has returned
+        them all: a lease still worked on (a slow server, a big page, the stop grace) is
+        not reaped and fetched again elsewhere."""
+        every = self.settings.lease.ttl_s / HEARTBEATS_PER_TTL
+        while not await _set_within(self._done, every):
+            held = list(self._held.values())
+            if not held:
+                continue
+            try:
+                statuses = await self.store.extend(held)
+            except StoreUnavailable as exc:
+                self.metrics.store_errors.inc()
+                log.warning("could not extend %d leases, trying again: %s", len(held), exc)
+                continue
+            for lease, status in zip(held, statuses):
+                if status != "ok" and self._held.pop(lease.member, None) is not None:
+                    log.info("lease %s for %s was %s when extended", lease.id, lease.url, status)
+
+    def _disk_fault(self, exc: DiskFault) -> None:
+        """The output folder stopped taking writes: lease no more, hand back what is held."""
+        if self._fault is None:
+            self._fault = exc
+        self.abandon()
+
+    def _fault_report(self) -> DiskFault:
+        """The one line an operator needs: what happened, what was done, what to do."""
+        n = self.handed_back
+        return DiskFault(
+            f"cannot write to {self.out_dir} ({self._fault}); stopped leasing and handed back "
+            f"{n} unfinished {'lease' if n == 1 else 'leases'} to the frontier (queued again, "
+            f"no attempt counted). Free space or repair the folder, then run the same command "
+            f"again to resume the job")
+
+    def _close_outputs(self) -> None:
+        """Close the page pool, the archive thread (after its last write), the WARC
+        files and the fetch log; a disk fault on the way is kept for the report."""
+        if self._pages is not None:
+            self._pages.close()
+        if self._archive_thread is not None:
+            self._archive_thread.shutdown(wait=True)
+        for out in (self._big_archive, self.archive, self.fetch_log):
+            try:
+                if out is not None:
+                    out.close()
+            except DiskFault as exc:
+                if self._fault is None:
+                    self._fault = exc
 
     async def _lease_loop(self) -> None:
         s = self.settings
@@ -201,6 +363,7 @@ class Worker:
                     self.metrics.store_errors.inc()
                     log.warning("lease failed, retrying: %s", exc)
             for lease in leases:
+                self._held[lease.member] = lease
                 task = asyncio.create_task(self._handle(lease))
                 self._tasks.add(task)
                 task.add_done_callback(self._tasks.discard)
@@ -244,6 +407,12 @@ class Worker:
         started = time.monotonic()
         try:
             result = await self._process(lease)
+            if (isinstance(result, FetchedPage)
+                    and len(result.resp.body) > self.settings.fetch.offload_bytes):
+                result = await self._finish_big_page(result)
+        except DiskFault as exc:  # the lease stays held: it is handed back, not ended
+            self._disk_fault(exc)
+            return
         except Exception as exc:  # a bug must not lose the lease: end it as a retry
             result = self._internal_error(lease, exc)
         self.metrics.duration.observe(time.monotonic() - started)
@@ -313,14 +482,15 @@ class Worker:
                            extra_delay_s=min(wait, pol.max_delay_s), crawl_delay_s=crawl_delay)
             return Finished(c), self._entry(lease, Outcome.RETRY, c.reason, resp)
         if 300 <= resp.status < 400:
-            return self._redirect(lease, resp, base)
+            return await self._redirect(lease, resp, base)
         if resp.status >= 400:
             c = Completion(lease, Outcome.FAILED, f"http_{resp.status}", response_s=resp.elapsed_s,
                            crawl_delay_s=crawl_delay)
             return Finished(c), self._entry(lease, Outcome.FAILED, c.reason, resp)
-        return self._page(lease, resp, base)
+        return await self._page(lease, resp, base)
 
-    def _redirect(self, lease: Lease, resp: Response, base: Completion) -> tuple[Finished, FetchEntry]:
+    async def _redirect(self, lease: Lease, resp: Response,
+                        base: Completion) -> tuple[Finished, FetchEntry]:
         location = resp.header("Location")
         links: list[Candidate] = []
         if location and lease.hops >= self.settings.fetch.max_redirects:
@@ -332,12 +502,12 @@ class Worker:
                                    cash=lease.cash, credit=lease.cash, source_host=lease.host,
                                    hops=lease.hops + 1))
         at = datetime.now(UTC)
-        ref = self._archive(lease, resp, [(c.url, "redirect") for c in links], at)
+        ref = await self._archive_any(lease, resp, [(c.url, "redirect") for c in links], at)
         return Finished(base, links), self._entry(
             lease, Outcome.FETCHED, f"redirect_{resp.status}", resp, at, **ref)
 
-    def _page(self, lease: Lease, resp: Response,
-              base: Completion) -> tuple[Finished, FetchEntry] | FetchedPage:
+    async def _page(self, lease: Lease, resp: Response,
+                    base: Completion) -> tuple[Finished, FetchEntry] | FetchedPage:
         fetch = self.settings.fetch
         ctype = resp.content_type
         reason = f"truncated_{resp.truncated}" if resp.truncated else None
@@ -347,7 +517,7 @@ class Worker:
                                crawl_delay_s=base.crawl_delay_s)
                 return Finished(c), self._entry(lease, Outcome.EXCLUDED, "content_type", resp)
             at = datetime.now(UTC)
-            ref = self._archive(lease, resp, None, at)
+            ref = await self._archive_any(lease, resp, None, at)
             kind = "binary" if looks_binary(resp.body[:1024]) else "not_html"
             return Finished(base), self._entry(lease, Outcome.FETCHED, reason or kind, resp, at,
                                                **ref)
@@ -359,15 +529,17 @@ class Worker:
         Each step runs over the whole batch before the next begins, so its code and data
         stay hot in the CPU caches: a page's steps run one after another, interleaved
         with the event loop's network and Redis code, cost about a third more (measured).
-        A page whose step raises ends as a retry; the others go on.
+        A page whose step raises ends as a retry; the others go on. Once the output
+        folder stopped taking writes, pages are left held, to be handed back.
         """
         pending, self._fetched = self._fetched, []
-        if not pending:
+        if not pending or self._fault is not None:
             return
+        max_links = self.settings.fetch.max_links_per_page
         parsed = []
         for p in pending:
             try:
-                page = parse_html(p.resp.body, p.lease.url,
+                page = parse_html(p.resp.body, p.lease.url, max_links=max_links,
                                   content_type=p.resp.header("Content-Type"))
             except Exception as exc:  # parse_html never raises; kept for a bug
                 self._record(*self._internal_error(p.lease, exc))
@@ -382,17 +554,42 @@ class Worker:
                 continue
             fingerprinted.append((p, page, fingerprint))
         for p, page, fingerprint in fingerprinted:
+            if self._fault is not None:
+                break  # left held: handed back when the worker stops
             try:
-                self._record(*self._finish_page(p, page, fingerprint))
-            except Exception as exc:  # a full disk, say: fetch it again later
+                outlinks = [(ln.url, ln.anchor) for ln in page.links]
+                ref = self._archive(p.lease, p.resp, outlinks, p.fetched_at)
+                self._record(*self._finish_page(p, page, fingerprint, outlinks, ref))
+            except DiskFault as exc:
+                self._disk_fault(exc)
+            except Exception as exc:  # a bug must not stop the batch: fetch it again later
                 self._record(*self._internal_error(p.lease, exc))
 
-    def _finish_page(self, p: FetchedPage, page: ParsedPage,
-                     fingerprint: int | None) -> tuple[Finished, FetchEntry]:
-        """Archive one parsed page and hand its cash on to the links it follows."""
-        fetch, lease = self.settings.fetch, p.lease
+    async def _finish_big_page(self, p: FetchedPage) -> tuple[Finished, FetchEntry]:
+        """A page over ``fetch.offload_bytes``: parsed and fingerprinted in a child
+        process and archived in the archive thread, while the event loop goes on with
+        the other leases. Past ``fetch.parse_timeout_s`` it ends as failed
+        (``parse_timeout``), unarchived, and its child is replaced."""
+        fetch = self.settings.fetch
+        if self._pages is None:
+            self._pages = PagePool(PAGE_PROCESSES, fetch.parse_timeout_s)
+        try:
+            page, fingerprint = await self._pages.digest(
+                p.resp.body, p.lease.url, p.resp.header("Content-Type"), fetch.max_links_per_page)
+        except TimeoutError:
+            c = Completion(p.lease, Outcome.FAILED, "parse_timeout", response_s=p.resp.elapsed_s,
+                           crawl_delay_s=p.base.crawl_delay_s)
+            return Finished(c), self._entry(p.lease, Outcome.FAILED, "parse_timeout", p.resp,
+                                            p.fetched_at)
         outlinks = [(ln.url, ln.anchor) for ln in page.links]
-        ref = self._archive(lease, p.resp, outlinks, p.fetched_at)
+        ref = await self._archive_any(p.lease, p.resp, outlinks, p.fetched_at)
+        return self._finish_page(p, page, fingerprint, outlinks, ref)
+
+    def _finish_page(self, p: FetchedPage, page: ParsedPage, fingerprint: int | None,
+                     outlinks: list[tuple[str, str]],
+                     ref: dict[str, Any]) -> tuple[Finished, FetchEntry]:
+        """Hand an archived page's cash on to the links it follows."""
+        fetch, lease = self.settings.fetch, p.lease
         if fetch.follow_nofollow:
             follow = outlinks
         elif page.meta_nofollow:
@@ -403,7 +600,8 @@ class Worker:
         links = distribute(lease.url, lease.cash, lease.depth, follow, self.settings.priority,
                            known=done)
         linked = self._links_to_fetched(lease, follow) if done else []
-        entry = self._entry(lease, Outcome.FETCHED, p.reason, p.resp, p.fetched_at,
+        reason = join_reasons(p.reason, "links_capped" if page.links_capped else None)
+        entry = self._entry(lease, Outcome.FETCHED, reason, p.resp, p.fetched_at,
                             simhash=fingerprint, **ref)
         return Finished(p.base, links, linked, simhash=fingerprint), entry
 
@@ -416,11 +614,25 @@ class Worker:
         done, host = self._fetched_urls, url_host(lease.url)
         return [(host, url) for url, _ in follow if url in done and not url.startswith(own)]
 
+    async def _archive_any(self, lease: Lease, resp: Response,
+                           outlinks: list[tuple[str, str]] | None, at: datetime) -> dict[str, Any]:
+        """Archive a response: one over ``fetch.offload_bytes`` in the archive thread (to
+        WARC files of its own), any other at once."""
+        if len(resp.body) <= self.settings.fetch.offload_bytes:
+            return self._archive(lease, resp, outlinks, at)
+        if self._archive_thread is None or self._big_archive is None:
+            self._archive_thread = ThreadPoolExecutor(1, thread_name_prefix="sluice-archive")
+            self._big_archive = self._new_archive()
+            self.metrics.watch_archive(self._big_archive)
+        return await asyncio.get_running_loop().run_in_executor(
+            self._archive_thread, self._archive, lease, resp, outlinks, at, self._big_archive)
+
     def _archive(self, lease: Lease, resp: Response, outlinks: list[tuple[str, str]] | None,
-                 at: datetime) -> dict[str, Any]:
-        assert self.archive is not None
+                 at: datetime, archive: WarcArchive | None = None) -> dict[str, Any]:
+        archive = archive or self.archive
+        assert archive is not None
         path = "/" + lease.url.split("/", 3)[3] if lease.url.count("/") >= 3 else "/"
-        ref = self.archive.write_exchange(
+        ref = archive.write_exchange(
             lease.url, ("GET", path, resp.request_headers), resp.status, resp.reason,
             resp.headers, resp.body, at, remote_ip=resp.remote_ip,
             outlinks=outlinks, truncated=resp.truncated)
@@ -448,9 +660,11 @@ class Worker:
     # -- writing back -------------------------------------------------------------------
 
     async def _flush_loop(self) -> None:
-        stop = asyncio.create_task(self._stop.wait())
+        """Write back finished leases until nothing is in flight any more (a stopped worker
+        still writes back what finishes within its grace)."""
+        stop = asyncio.create_task(self._drained.wait())
         try:
-            while not self._stop.is_set():
+            while not self._drained.is_set():
                 wanted = asyncio.create_task(self._to_flush.wait())
                 await asyncio.wait([wanted, stop], return_when=asyncio.FIRST_COMPLETED)
                 wanted.cancel()
@@ -479,25 +693,25 @@ class Worker:
                 self.metrics.store_errors.inc()
                 log.warning("frontier unavailable, will retry %d completions: %s", len(batch), exc)
                 self._finished = batch + self._finished
-                if self._stop.is_set() and not self._tasks:
+                if self._stop.is_set() and not self._tasks or self._abandon.is_set():
                     raise
                 await asyncio.sleep(STORE_RETRY_S)
                 continue
             released = 0
             for f, status in zip(batch, statuses):
+                self._held.pop(f.completion.lease.member, None)
                 if status != "ok":  # expired: another worker will fetch it, and log it
                     self.metrics.count_lost(status)
                     log.info("lease %s for %s was %s", f.completion.lease.id,
                              f.completion.lease.url, status)
-                elif f.entry is not None and self.fetch_log is not None:
-                    self.fetch_log.write(f.entry)
+                elif f.entry is not None:
+                    self._log(f.entry)
                 if status != "ok" or f.completion.outcome is not Outcome.FETCHED:
                     released += 1
                 else:
                     self._remember_fetched(f.completion.lease.url)
             await self._log_ended()
-            if self.fetch_log is not None:
-                self.fetch_log.flush()
+            self._log_flush()
             await self.budget.release(released)
             self._finish_pages()  # pages fetched while this batch was written back
 
@@ -508,6 +722,8 @@ class Worker:
         now = time.monotonic()
         if self.fetch_log is None or (not force and now - self._ended_at < ENDED_EVERY_S):
             return
+        if self._fault is not None:
+            return  # the journal keeps them for a worker that can write
         self._ended_at = now
         try:
             ended = await self.store.take_ended()
@@ -515,8 +731,26 @@ class Worker:
             return  # the journal keeps them for the next time
         at = datetime.now(UTC)
         for outcome, reason, url in ended:
-            self.fetch_log.write(FetchEntry(url=url, outcome=outcome, reason=reason,
-                                            fetched_at=at, host=url_host(url) or ""))
+            self._log(FetchEntry(url=url, outcome=outcome, reason=reason,
+                                 fetched_at=at, host=url_host(url) or ""))
+
+    def _log(self, entry: FetchEntry) -> None:
+        """One fetch-log line; a disk fault stops the worker (the line is lost, its
+        completion is not: the page is in the WARC files and the frontier)."""
+        if self.fetch_log is None:
+            return
+        try:
+            self.fetch_log.write(entry)
+        except DiskFault as exc:
+            self._disk_fault(exc)
+
+    def _log_flush(self) -> None:
+        if self.fetch_log is None:
+            return
+        try:
+            self.fetch_log.flush()
+        except DiskFault as exc:
+            self._disk_fault(exc)
 
     def _remember_fetched(self, url: str) -> None:
         if len(self._fetched_urls) >= FETCHED_MEMORY:

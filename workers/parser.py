@@ -112,6 +112,7 @@ class ParsedPage:
     meta_nofollow: bool = False
     meta_noindex: bool = False
     encoding: str = "utf-8"
+    links_capped: bool = False  # the page has more links than were kept (``max_links``)
 
 
 _BOM_PREFIXES = tuple(bom for bom, _ in _BOMS)
@@ -289,21 +290,20 @@ def _anchor(node: LexborNode) -> str:
     return collapse(raw)[:MAX_ANCHOR_CHARS]
 
 
-def _links(tree: LexborHTMLParser, base: str, max_links: int) -> list[Link]:
+def _links(tree: LexborHTMLParser, base: str, max_links: int) -> tuple[list[Link], bool]:
+    """The first ``max_links`` links in document order, and whether more followed."""
     links: list[Link] = []
-    if max_links <= 0:
-        return links
     resolver = LinkResolver(base)
     for node in tree.css(LINK_SELECTOR):
         attrs = node.attributes
         absolute = resolver.resolve(attrs.get("href") or "")
         if absolute is None:
             continue
+        if len(links) >= max_links:  # one more link than kept: the page was capped
+            return links, True
         rel = (attrs.get("rel") or "").lower().split()
         links.append(Link(absolute, _anchor(node), "nofollow" in rel))
-        if len(links) >= max_links:
-            break
-    return links
+    return links, False
 
 
 def parse_html(
@@ -319,7 +319,7 @@ def parse_html(
     tree = LexborHTMLParser(html)
     base = _document_base(tree, url)
     meta_nofollow, meta_noindex = _meta_robots(tree)
-    links = _links(tree, base, max_links)
+    links, links_capped = _links(tree, base, max_links)
     title_node = tree.css_first("title")
     title = collapse(title_node.text(deep=True)) if title_node is not None else ""
     tree.strip_tags(INVISIBLE_TAGS)
@@ -333,4 +333,5 @@ def parse_html(
         meta_nofollow=meta_nofollow,
         meta_noindex=meta_noindex,
         encoding=codec,
+        links_capped=links_capped,
     )

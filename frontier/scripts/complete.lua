@@ -2,13 +2,17 @@
 -- KEYS[1] counts  KEYS[2] reasons  KEYS[3] leases  KEYS[4] attempts  KEYS[5] dead
 -- KEYS[6] due     KEYS[7] ready    KEYS[8] prio    KEYS[9] claims
 -- KEYS[10 ..] per lease i (0-based): host hash, hot ZSET, cold LIST of the lease's host
--- KEYS[#KEYS] the ended journal (URLs that end dead here)
+-- KEYS[#KEYS] the ended journal (URLs that end dead, or excluded by a block, here)
 -- ARGV[1] now (ms)  ARGV[2] hot capacity  ARGV[3] max attempts  ARGV[4] min delay (ms)
 -- ARGV[5] response-time factor  ARGV[6] cap on factor x response time (ms)  ARGV[7] n
--- then per lease: lease member, outcome (fetched|failed|excluded|retry), reason,
+-- then per lease: lease member, outcome (fetched|failed|excluded|retry|release), reason,
 --                 response ms, extra delay ms (Retry-After, backoff), crawl-delay ms ('' = unchanged)
 -- The host's next fetch: now + max(min delay, crawl-delay, operator delay, extra,
 -- min(factor x response time, cap)).
+-- 'release' hands a lease back unfinished (a worker stopping or unable to write): the URL
+-- is queued again as it was, its attempts stay as they were and no ended state is counted
+-- (leased - 1, queued + 1). On a host blocked meanwhile it ends as excluded
+-- (host_blocked), as the block did to the host's queued URLs.
 -- Returns one status per lease: 'ok', 'not_held' (unknown or reaped) or 'expired'.
 local now = tonumber(ARGV[1])
 local cap = tonumber(ARGV[2])
@@ -22,6 +26,7 @@ local out = {}
 local tally = {}
 local ended = {}
 local released = {prio = {}, due = {}, idle = {}}
+local requeued = 0  -- leases handed back
 local a = 8
 for i = 0, n - 1 do
   local member, outcome, reason = ARGV[a], ARGV[a + 1], ARGV[a + 2]
@@ -39,7 +44,16 @@ for i = 0, n - 1 do
     ended[member] = true
     local f = redis.call('HMGET', hk, 'delay_ms', 'crawl_ms', 'boost', 'state', 'fetched')
     local fetched = tonumber(f[5] or '0')
-    if outcome == 'retry' then
+    if outcome == 'release' then
+      if f[4] == 'blocked' then
+        redis.call('HDEL', KEYS[4], url)
+        tally['excluded:host_blocked'] = (tally['excluded:host_blocked'] or 0) + 1
+        journal(C.ended, 'excluded', 'host_blocked', url)
+      else
+        push_url(hot, cold, url, score, cap)
+        requeued = requeued + 1
+      end
+    elseif outcome == 'retry' then
       retry_or_bury(C, hk, hot, cold, url, score, reason, cap, max_attempts)
     else
       if attempts ~= '0' then
@@ -68,6 +82,9 @@ end
 if #ended > 0 then
   each_chunk(ended, 1000, function(...) redis.call('ZREM', KEYS[3], ...) end)
   redis.call('HINCRBY', KEYS[1], 'leased', -#ended)
+end
+if requeued > 0 then
+  redis.call('HINCRBY', KEYS[1], 'queued', requeued)
 end
 flush_released(S, released)
 for key, count in pairs(tally) do
