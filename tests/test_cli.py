@@ -5,6 +5,7 @@ job through a real Redis, crawl the synthetic web on loopback, and are steered w
 from __future__ import annotations
 
 import asyncio
+import os
 import json
 import sys
 from pathlib import Path
@@ -18,6 +19,7 @@ from workers.synthweb.graph import SyntheticWeb, WebSpec
 from workers.synthweb.server import SyntheticServer
 
 UA = "sluice-test/0.1 (+http://operator.test/contact)"
+TOKEN = "admin-token-for-the-cli-test-0123456789"
 PLAIN = dict(robots=False, slow_hosts=False, failing_hosts=False, redirects=False, trap=False,
              farm=False, near_duplicates=False, ssrf_bait=False, bad_inputs=False)
 
@@ -44,6 +46,7 @@ async def test_daemon_and_workers_across_processes(tmp_path: Path, redis_server:
             "--job", "split", "--seeds", str(seeds), "--user-agent", UA,
             "--map-hosts", f"*.test=127.0.0.1:{port}", "--allow-host", "*.test",
             "--min-delay", "0.02", "--admin", admin,
+            env={**os.environ, "SLUICE_ADMIN_TOKEN": TOKEN},
             stdout=asyncio.subprocess.PIPE, stderr=asyncio.subprocess.STDOUT)
         try:
             assert daemon.stdout is not None
@@ -66,14 +69,19 @@ async def test_daemon_and_workers_across_processes(tmp_path: Path, redis_server:
                                      web.site_hosts[0], "block")
             assert code == 0 and json.loads(out)["state"] == "blocked"
 
+            auth = {"Authorization": f"Bearer {TOKEN}", "X-Sluice-Admin": "1"}
             async with aiohttp.ClientSession() as http:
-                async with http.post(f"http://{admin}/hosts/{web.site_hosts[1]}/boost?value=3") as r:
+                async with http.post(f"http://{admin}/hosts/{web.site_hosts[1]}/boost?value=3",
+                                     headers={"X-Sluice-Admin": "1"}) as r:
+                    assert r.status == 401  # changes need the admin token
+                async with http.post(f"http://{admin}/hosts/{web.site_hosts[1]}/boost?value=3",
+                                     headers=auth) as r:
                     assert r.status == 200 and (await r.json())["state"] == "active"
-                async with http.post(f"http://{admin}/hosts/x.test/explode") as r:
+                async with http.post(f"http://{admin}/hosts/x.test/explode", headers=auth) as r:
                     assert r.status == 400
                 async with http.get(f"http://{admin}/metrics") as r:
                     text = await r.text()
-                    assert 'sluice_frontier_urls{state="fetched"}' in text
+                    assert 'sluice_frontier_urls{job="split",state="fetched"}' in text
         finally:
             daemon.terminate()
             assert await asyncio.wait_for(daemon.wait(), 30) == 0

@@ -16,7 +16,7 @@ import aiohttp
 
 from frontier.exceptions import AddressRefused, FetchError
 from frontier.settings import FetchSettings
-from workers.guard import GuardedConnector, GuardedResolver, parse_host_map
+from workers.guard import GuardedConnector, GuardedResolver
 
 READ_CHUNK = 64 * 1024
 ACCEPT = "text/html,application/xhtml+xml;q=0.9,*/*;q=0.5"
@@ -90,8 +90,7 @@ class Fetcher:
     def __init__(self, settings: FetchSettings, user_agent: str) -> None:
         self.settings = settings
         self.user_agent = user_agent
-        self.resolver = GuardedResolver(
-            parse_host_map(settings.map_hosts), allow_private=settings.allow_private)
+        self.resolver = GuardedResolver.from_settings(settings)
         self._session: aiohttp.ClientSession | None = None
 
     async def __aenter__(self) -> Fetcher:
