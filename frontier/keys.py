@@ -171,6 +171,12 @@ class Keys:
         """SET of SimHash fingerprints sharing one block value (Manku et al. 2007)."""
         return f"{PREFIX}:{{{self.job}.nd{block}.{value >> 8}}}:nd:{block}:{value}"
 
+    def near_dup_page(self, fingerprint: int) -> str:
+        """HASH SimHash fingerprint -> URL of the page first stored with it (one of 256
+        shards): a page fetched again is not taken for a near-duplicate of itself, and a
+        near-duplicate can name what it matched."""
+        return f"{PREFIX}:{{{self.job}.ndp{fingerprint & 0xff}}}:ndp"
+
     @staticmethod
     def job_index() -> str:
         """SET of job names, for listing."""

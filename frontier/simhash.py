@@ -54,6 +54,7 @@ _hash128 = (mmh3.hash_bytes if HASH_SEED == 0  # mmh3's default seed: no keyword
 """128-bit MurmurHash3 (x64) of a shingle, bytes little-endian."""
 
 TableKey = Callable[[int, int], str]
+PageKey = Callable[[int], str]
 """(block index, block value) -> Redis key of that bucket."""
 
 
@@ -178,11 +179,13 @@ class NearDuplicateIndex:
     each other, which costs one extra stored page, never a lost one.
     """
 
-    def __init__(self, redis: Any, table_key: TableKey, k: int = DEFAULT_MAX_DISTANCE) -> None:
+    def __init__(self, redis: Any, table_key: TableKey, k: int = DEFAULT_MAX_DISTANCE,
+                 page_key: PageKey | None = None) -> None:
         if k < 0:
             raise ValueError(f"k must be >= 0, got {k}")
         self.redis = redis
         self.table_key = table_key
+        self.page_key = page_key  # where each fingerprint's first page is kept
         self.k = k
         self.widths = block_widths(k + 1)
         self._script: Any = None
@@ -249,6 +252,40 @@ class NearDuplicateIndex:
                 table.setdefault(value, []).append(fp)
         if not stored_already:
             await self._add_many(keys, unsigned)
+        return out
+
+    async def match_pages(self, fps: list[int],
+                          urls: list[str]) -> list[tuple[int, str | None] | None]:
+        """For each page (fingerprint, URL): the stored fingerprint within k bits and the
+        URL of the page first stored with it, or None; then store the pages.
+
+        A match whose page is the same URL is no match: a page fetched again (its first
+        worker died before completing its lease) must not be taken for a copy of itself.
+        Needs ``page_key``; one more round trip than :meth:`check_and_add_many`, and one
+        more when something matched.
+        """
+        if self.page_key is None:
+            raise ValueError("match_pages needs the index's page_key")
+        page_key = self.page_key
+        found = await self.check_and_add_many(fps)
+        unsigned = [to_unsigned(fp) for fp in fps]
+        matched = [i for i, m in enumerate(found) if m is not None]
+        owners: list[Any] = []
+        if matched:
+            owners = await self._pipelined("page lookup", lambda pipe: [
+                pipe.hget(page_key(found[i]), str(found[i])) for i in matched])  # type: ignore[arg-type]
+        await self._pipelined("page store", lambda pipe: [
+            pipe.hsetnx(page_key(fp), str(fp), url) for fp, url in zip(unsigned, urls)])
+        out: list[tuple[int, str | None] | None] = [None] * len(fps)
+        batch_owner = {fp: url for fp, url in zip(reversed(unsigned), reversed(urls))}
+        for i, owner in zip(matched, owners):
+            fp = found[i]
+            assert fp is not None
+            url = owner.decode("utf-8", "replace") if isinstance(owner, bytes) else owner
+            if url is None:
+                url = batch_owner.get(fp)  # an earlier page of the same batch
+            if url != urls[i]:
+                out[i] = (fp, url)
         return out
 
     async def _lookup_and_add(self, keys: list[list[str]], fps: list[int]) -> list[list[Any]]:

@@ -84,6 +84,19 @@ def now_ms(clock: Callable[[], float] = time.time) -> int:
     return int(clock() * 1000)
 
 
+def raised_inside_redis_client(exc: BaseException) -> bool:
+    """True if ``exc`` was raised by code of the redis-py package (or the event loop's
+    transport under it), not by sluice: during a Cluster failover redis-py's asyncio
+    client can raise AttributeError or RuntimeError on a connection torn down under a
+    command, where a ConnectionError was meant."""
+    tb = exc.__traceback__
+    last = None
+    while tb is not None:
+        last = tb.tb_frame.f_code.co_filename
+        tb = tb.tb_next
+    return last is not None and "/redis/" in last
+
+
 @contextlib.asynccontextmanager
 async def redis_boundary(what: str) -> AsyncIterator[None]:
     """Translate redis-py errors into sluice errors."""
@@ -93,6 +106,11 @@ async def redis_boundary(what: str) -> AsyncIterator[None]:
         raise StoreUnavailable(f"Redis unavailable during {what}: {exc}") from exc
     except redis_errors.RedisError as exc:
         raise StoreError(f"Redis error during {what}: {exc}") from exc
+    except (AttributeError, RuntimeError) as exc:
+        if not raised_inside_redis_client(exc):
+            raise
+        raise StoreUnavailable(
+            f"Redis unavailable during {what} (connection torn down: {exc!r})") from exc
 
 
 class QueuedUrl(NamedTuple):

@@ -3,11 +3,14 @@ with queued URLs can be leased again at the real time (on a server and a Cluster
 
 from __future__ import annotations
 
+from typing import Any
+
 import pytest
 
 import frontier.store
+from frontier.exceptions import StoreUnavailable
 from frontier.model import Candidate, Completion, Lease, Outcome
-from frontier.store import FrontierStore
+from frontier.store import FrontierStore, redis_boundary
 from tests.conftest import Clock, StoreFactory
 from tests.test_priority import admission
 
@@ -76,3 +79,29 @@ async def test_an_orphan_lease_cannot_complete_after_recover(
     assert statuses == ["not_held"] * HOSTS  # its URL is queued again, not fetched twice over
     counts = await store.counts()
     assert counts.balanced and (counts.fetched, counts.queued) == (0, 3 * HOSTS)
+
+
+def _raiser(filename: str, error: str) -> Any:
+    """A function whose code lives in ``filename``, raising ``error`` (as redis-py's
+    asyncio Cluster client does when a failover tears a connection down mid-command:
+    "'NoneType' object has no attribute 'writelines'", seen in the Cluster fault test)."""
+    scope: dict[str, Any] = {}
+    exec(compile(f"def boom():\n    raise {error}\n", filename, "exec"), scope)
+    return scope["boom"]
+
+
+@pytest.mark.parametrize("error", [
+    "AttributeError(\"'NoneType' object has no attribute 'writelines'\")",
+    "RuntimeError('unable to perform operation on <TCPTransport closed=True>')"])
+async def test_a_connection_torn_down_inside_the_client_is_unavailability(error: str) -> None:
+    boom = _raiser("/venv/lib/python3.11/site-packages/redis/asyncio/connection.py", error)
+    with pytest.raises(StoreUnavailable, match="connection torn down"):
+        async with redis_boundary("lease"):
+            boom()
+
+
+async def test_a_bug_of_our_own_is_not_taken_for_unavailability() -> None:
+    boom = _raiser(frontier.store.__file__, "AttributeError('a bug')")
+    with pytest.raises(AttributeError, match="a bug"):
+        async with redis_boundary("lease"):
+            boom()

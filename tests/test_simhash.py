@@ -464,3 +464,26 @@ async def test_unreachable_redis_raises_store_unavailable() -> None:
             await index.add(1)
     finally:
         await dead.aclose()
+
+
+async def test_a_page_fetched_again_is_not_its_own_near_duplicate(
+        redis_client: Any) -> None:
+    # Seen in a fault test: a worker stored a page's fingerprint, died before completing
+    # its lease, and the page's second fetch matched itself (distance 0), so its links
+    # were dropped and pages reachable only through it were lost.
+    from frontier.keys import Keys
+
+    keys = Keys("nd-self", 4)
+    index = NearDuplicateIndex(redis_client, keys.near_dup, page_key=keys.near_dup_page)
+    fp = 0xF0F0_1234_ABCD_8001
+    assert await index.match_pages([fp], ["http://a.test/1"]) == [None]
+    assert await index.match_pages([fp], ["http://a.test/1"]) == [None]  # itself again
+    changed = flip(fp, [5])  # the same page, a counter changed between the fetches
+    assert await index.match_pages([changed], ["http://a.test/1"]) == [None]
+    # another URL with the same text is a near-duplicate and names the first page
+    assert await index.match_pages([flip(fp, [9, 40])], ["http://b.test/copy"]) == [
+        (fp, "http://a.test/1")]
+    # within one batch, the later of two copies names the earlier
+    other = 0x0123_4567_89AB_CDEF
+    assert await index.match_pages([other, other], ["http://c.test/x", "http://d.test/y"]) == [
+        None, (other, "http://c.test/x")]

@@ -146,7 +146,8 @@ class Worker:
         self.metrics = metrics or WorkerMetrics(CollectorRegistry())
         self.report = WorkerReport(store, self.metrics)  # heartbeat, robots outcomes, job label
         self.budget = PageBudget(store.redis, store.keys, self.settings.budget.max_pages)
-        self.near_dups = NearDuplicateIndex(store.redis, store.keys.near_dup)
+        self.near_dups = NearDuplicateIndex(store.redis, store.keys.near_dup,
+                                            page_key=store.keys.near_dup_page)
         self._fetcher = Fetcher(self.settings.fetch, ua)
         self._robots = RobotsCache(
             store.redis, lambda h: store.keys.part_for(h).robots(h),
@@ -710,29 +711,31 @@ class Worker:
                     released += 1
                 else:
                     self._remember_fetched(f.completion.lease.url)
-            await self._log_ended()
-            self._log_flush()
+            self._log_flush()  # no await since the completion: the lines follow it at once
+            if await self._log_ended():
+                self._log_flush()
             await self.budget.release(released)
             self._finish_pages()  # pages fetched while this batch was written back
 
-    async def _log_ended(self, *, force: bool = False) -> None:
+    async def _log_ended(self, *, force: bool = False) -> bool:
         """Copy the frontier's ended journal (URLs excluded on admission, dead, dropped
         with a blocked host) into the fetch log, at most once a second unless forced, so
-        that the log has a line for every URL's final state."""
+        that the log has a line for every URL's final state. True if it wrote lines."""
         now = time.monotonic()
         if self.fetch_log is None or (not force and now - self._ended_at < ENDED_EVERY_S):
-            return
+            return False
         if self._fault is not None:
-            return  # the journal keeps them for a worker that can write
+            return False  # the journal keeps them for a worker that can write
         self._ended_at = now
         try:
             ended = await self.store.take_ended()
         except StoreUnavailable:
-            return  # the journal keeps them for the next time
+            return False  # the journal keeps them for the next time
         at = datetime.now(UTC)
         for outcome, reason, url in ended:
             self._log(FetchEntry(url=url, outcome=outcome, reason=reason,
                                  fetched_at=at, host=url_host(url) or ""))
+        return bool(ended)
 
     def _log(self, entry: FetchEntry) -> None:
         """One fetch-log line; a disk fault stops the worker (the line is lost, its
@@ -762,7 +765,8 @@ class Worker:
         checked = [f for f in batch if f.simhash is not None and f.simhash_checked is False]
         if not checked:
             return
-        matches = await self.near_dups.check_and_add_many([f.simhash for f in checked])
+        matches = await self.near_dups.match_pages(
+            [f.simhash for f in checked], [f.completion.lease.url for f in checked])
         for f, match in zip(checked, matches):
             f.simhash_checked = True
             if match is not None:
