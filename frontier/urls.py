@@ -123,17 +123,20 @@ class _Parts(NamedTuple):
 
 
 def canonicalize(
-    raw: str,
-    base: str | None = None,
+    raw: str | bytes,
+    base: str | bytes | None = None,
     *,
     max_length: int = MAX_URL_LENGTH,
     schemes: frozenset[str] = DEFAULT_SCHEMES,
 ) -> str:
     """Return the canonical absolute form of ``raw`` resolved against ``base``.
 
-    ``schemes`` holds lowercase scheme names. Raises ``UrlError`` with reason
-    ``malformed``, ``scheme`` or ``too_long``, and never any other exception for str input.
+    ``schemes`` holds lowercase scheme names. Bytes are read as UTF-8 (RFC 3987 s.3.1).
+    Raises ``UrlError`` with reason ``malformed``, ``scheme`` or ``too_long``, and never
+    any other exception.
     """
+    if type(raw) is not str or (base is not None and type(base) is not str):
+        raw, base = _as_text(raw), None if base is None else _as_text(base)
     if len(raw) <= max_length and _DOT_SEGMENT_HINT not in raw:
         match = _CANONICAL_RE.fullmatch(raw)
         if match is not None:
@@ -141,6 +144,18 @@ def canonicalize(
             if scheme in schemes and port != _DEFAULT_PORT_TEXT[scheme]:
                 return raw
     return _canonicalize_slow(raw, base, max_length, schemes)
+
+
+def _as_text(value: object) -> str:
+    """A URL given as bytes, decoded as UTF-8; text as it is; anything else refused."""
+    if isinstance(value, str):
+        return value
+    if isinstance(value, (bytes, bytearray, memoryview)):
+        try:
+            return bytes(value).decode("utf-8")
+        except UnicodeDecodeError as exc:
+            raise UrlError(MALFORMED, "bytes are not UTF-8") from exc
+    raise UrlError(MALFORMED, f"not text: {type(value).__name__}")
 
 
 def _canonicalize_slow(
@@ -242,6 +257,12 @@ def _recompose(parts: _Parts) -> str:
 def _resolve(reference: str, base: str) -> str:
     """Resolve without normalising (RFC 3986 s.5.2 then s.5.3)."""
     return _recompose(_transform(_parse(reference), _parse(base)))
+
+
+def resolve_reference(reference: str, base: str) -> str:
+    """``reference`` resolved against ``base`` as written, without normalising
+    (RFC 3986 s.5.2, s.5.3); UrlError for control characters inside either."""
+    return _resolve(reference, base)
 
 
 def remove_dot_segments(path: str) -> str:
