@@ -4,16 +4,16 @@ from __future__ import annotations
 
 import codecs
 import random
-import statistics
-import time
-from urllib.parse import urljoin
 
 import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
+from frontier.exceptions import UrlError
+from frontier.urls import canonicalize
 from workers.parser import (
     MAX_ANCHOR_CHARS,
+    MAX_TITLE_CHARS,
     Link,
     LinkResolver,
     ParsedPage,
@@ -26,15 +26,16 @@ RFC_BASE = "http://a/b/c/d;p?q"
 
 # RFC 3986 s.5.4.1 "Normal Examples" and s.5.4.2 "Abnormal Examples", with the
 # fragment removed from the expected result (RFC 3986 s.3.5: the fragment is not
-# part of the resource identifier sent to a server). "g:h" is an absolute URI
-# with an unknown scheme and stays as written. The empty reference is skipped.
+# part of the resource identifier sent to a server) and "//g" given the path "/"
+# (s.6.2.3). "g:h" is an absolute URI with an unknown scheme and stays as written.
+# The empty reference is skipped.
 RFC_3986_EXAMPLES = {
     "g:h": "g:h",
     "g": "http://a/b/c/g",
     "./g": "http://a/b/c/g",
     "g/": "http://a/b/c/g/",
     "/g": "http://a/g",
-    "//g": "http://g",
+    "//g": "http://g/",
     "?y": "http://a/b/c/d;p?y",
     "g?y": "http://a/b/c/g?y",
     "#s": "http://a/b/c/d;p?q",
@@ -111,19 +112,28 @@ _HREF_STARTS = st.sampled_from(
 )
 
 
+class _FullResolution(LinkResolver):
+    """The resolver with its concatenation shortcuts turned off."""
+
+    __slots__ = ()
+
+    def _join_plain(self, href: str) -> str | None:
+        return None
+
+
 @given(base=_BASES, tail=st.lists(_HREF_ALPHABET, max_size=12), start=_HREF_STARTS)
 @settings(max_examples=3000, deadline=None)
-def test_resolver_agrees_with_urljoin(base: str, tail: list[str], start: str) -> None:
-    # Reference: urllib.parse.urljoin (RFC 3986 s.5.2 resolution); the resolver's
-    # concatenation shortcuts (absolute, root-relative and relative hrefs) must give
-    # the same string, minus the fragment.
+def test_resolver_shortcuts_agree_with_full_resolution(base: str, tail: list[str],
+                                                       start: str) -> None:
+    # The resolver's concatenation shortcuts (absolute, root-relative and relative
+    # hrefs) must give exactly what full RFC 3986 s.5.2 resolution and normalisation
+    # give; the full path is checked against the RFC's examples above and against
+    # urllib.parse.urljoin in tests/test_fuzz_parser.py.
     href = start + "".join(tail)
     got = LinkResolver(base).resolve(href)
-    stripped = href.strip("".join(map(chr, range(0x21))))
-    if not stripped:
+    assert got == _FullResolution(base).resolve(href)
+    if not href.strip("".join(map(chr, range(0x21)))):
         assert got is None
-        return
-    assert got == urljoin(base, stripped).split("#", 1)[0]
 
 
 def test_fragment_is_removed_and_first_hash_starts_it() -> None:
@@ -311,10 +321,19 @@ def test_invalid_utf8_is_replaced_not_raised() -> None:
 @given(body=st.binary(max_size=3000), ctype=st.one_of(st.none(), st.text(max_size=40)))
 @settings(max_examples=400, deadline=None)
 def test_never_raises_on_arbitrary_bytes(body: bytes, ctype: str | None) -> None:
-    # Robustness requirement (common practice, no source): any bytes parse.
-    parsed = parse_html(body, "http://site.test/dir/page", content_type=ctype)
-    assert isinstance(parsed, ParsedPage)
-    assert all(link.url for link in parsed.links)
+    # Robustness requirement (common practice, no source): any bytes parse, and what
+    # comes out keeps parse_html's promises: links canonical (RFC 3986 s.6) or left for
+    # admission to refuse, no fragment (s.3.5), text and title collapsed and capped.
+    parsed = parse_html(body, "http://site.test/dir/page", content_type=ctype, max_text=500)
+    for link in parsed.links:
+        assert "#" not in link.url
+        try:
+            assert canonicalize(link.url) == link.url
+        except UrlError:
+            pass
+    for text, cap in ((parsed.text, 500), (parsed.title, MAX_TITLE_CHARS)):
+        assert len(text) <= cap
+        assert text == text.strip() and "  " not in text and "\n" not in text
 
 
 _TAG_SOUP = st.lists(
@@ -342,10 +361,13 @@ def test_never_raises_on_tag_soup(parts: list[str], encoding: str) -> None:
 
 
 def test_binary_labelled_as_html_parses_without_error() -> None:
+    # WHATWG Encoding Standard: the Content-Type charset is honoured and byte sequences
+    # that are not Shift_JIS decode to U+FFFD (error mode "replacement"), never an error.
     rng = random.Random(42)
     blob = bytes(rng.randrange(256) for _ in range(20_000))
     parsed = parse_html(blob, "http://site.test/", content_type="text/html; charset=shift_jis")
-    assert isinstance(parsed.text, str)
+    assert parsed.encoding == "shift_jis"
+    assert "\ufffd" in parsed.text
 
 
 # --- looks_binary ------------------------------------------------------------------
@@ -399,17 +421,15 @@ def typical_page(rng: random.Random, n_links: int = 50, size: int = 10_000) -> b
     return (html + "</body></html>").encode()
 
 
-def test_typical_page_parses_well_under_a_millisecond() -> None:
-    # Project speed target: a 10 KB page with 50 links in well under 1 ms
-    # (median over many runs; common practice, no source).
+def test_typical_page_yields_its_links_title_and_text() -> None:
+    # The page the parse speed is measured on (`sluice bench crawl` times parse_html on
+    # every page, in the crawl and in the bare loop beside it; no timing here): its 50
+    # links resolve against the page URL (RFC 3986 s.5.2), script and style are not text.
     body = typical_page(random.Random(3))
     assert 9_000 < len(body) < 12_000
-    for _ in range(20):
-        parse_html(body, "http://harbor.test/news/")
-    samples = []
-    for _ in range(200):
-        start = time.perf_counter()
-        parsed = parse_html(body, "http://harbor.test/news/")
-        samples.append(time.perf_counter() - start)
+    parsed = parse_html(body, "http://harbor.test/news/")
     assert len(parsed.links) == 50
-    assert statistics.median(samples) < 1e-3
+    assert all(link.url.startswith("http://harbor.test/s/") for link in parsed.links)
+    assert parsed.title == "Harbor news"
+    assert "color:red" not in parsed.text and "var x" not in parsed.text
+    assert parsed.text.startswith("w")
