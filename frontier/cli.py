@@ -108,8 +108,46 @@ def _overrides(a: argparse.Namespace) -> dict[str, Any]:
     return o
 
 
+# settings whose flag is not --<last part of the key, dashed>
+SETTING_FLAGS = {"name": "--job", "redis.url": "--redis", "scope.allow_hosts": "--allow-host",
+                 "politeness.min_delay_s": "--min-delay", "fetch.map_ports": "--map-port",
+                 "state_dir": "--state", "seeds": "--seeds"}
+
+
+def _flag_of(loc: tuple[Any, ...]) -> str:
+    """The flag that sets the setting at ``loc`` (a pydantic error location)."""
+    names = [str(part) for part in loc if not isinstance(part, int)]
+    return SETTING_FLAGS.get(".".join(names)) or "--" + names[-1].replace("_", "-")
+
+
+def _check_flags(flags: dict[str, Any]) -> None:
+    """Validate what the flags set on their own, so an error names the flag (the job file
+    and the environment are checked, and named, by load_settings)."""
+    from pydantic import ValidationError
+
+    def given(loc: tuple[Any, ...]) -> bool:
+        node: Any = flags
+        for part in loc:
+            if isinstance(part, int):
+                return True
+            if not isinstance(node, dict) or part not in node:
+                return False
+            node = node[part]
+        return True
+
+    try:
+        JobSettings.model_validate(flags)
+    except ValidationError as exc:
+        problems = [f"{_flag_of(e['loc'])} {e.get('input')!r}: "
+                    f"{str(e['msg']).removeprefix('Value error, ')}"
+                    for e in exc.errors() if e["loc"] and given(e["loc"])]
+        if problems:
+            raise ConfigError("; ".join(problems)) from None
+
+
 def _settings(a: argparse.Namespace, **extra: Any) -> JobSettings:
     o = _overrides(a)
+    _check_flags(o)
     for k, v in extra.items():
         o.setdefault(k, v)
     return load_settings(a.config, o)
@@ -118,17 +156,68 @@ def _settings(a: argparse.Namespace, **extra: Any) -> JobSettings:
 # -- commands -----------------------------------------------------------------------------
 
 async def _crawl(settings: JobSettings, out: Path, workers: int, *, quiet: bool = False,
-                 admin: str | None = None) -> dict[str, Any]:
-    """Scheduler loops and ``workers`` workers in this process, until drained or spent."""
+                 admin: str | None = None, progress_every: float | None = None) -> dict[str, Any]:
+    """Scheduler loops and ``workers`` workers in this process, until drained or spent.
+    The output folder has one owner at a time (frontier/folders.py)."""
+    from frontier.folders import FolderLock, say_taken_over
+    from frontier.seeds import parse_seed_lines, usable_seeds
+
     if not settings.seeds:
-        raise SluiceError("no seeds: pass --seeds FILE or set seeds in the job file")
+        raise ConfigError("no seeds: pass --seeds FILE (one URL a line) or set seeds in the "
+                          "job file")
+    seeds = usable_seeds(parse_seed_lines(
+        settings.seeds, source="seeds item", max_length=settings.scope.max_url_length,
+        schemes=frozenset(settings.scope.schemes)), "seeds")
+    settings = settings.model_copy(update={"seeds": tuple(seeds)})
+    if not settings.fetch.user_agent:
+        raise ConfigError("fetch.user_agent is required: pass --user-agent "
+                          "'name/1.0 (+https://you.example/contact)', an honest User-Agent "
+                          "with a way to reach you")
+    lock = FolderLock(out, label="--out", fix="stop that crawl first, or pass another --out")
+    say_taken_over(out, lock.take())
     registry = CollectorRegistry()
-    with crawl_process():
-        return await _crawl_job(settings, out, workers, registry, quiet=quiet, admin=admin)
+    try:
+        with crawl_process():
+            return await _crawl_job(settings, out, workers, registry, quiet=quiet, admin=admin,
+                                    progress_every=progress_every)
+    finally:
+        lock.release()
+
+
+def _fresh_hint(settings: JobSettings) -> str:
+    return ("start afresh with another --out" if settings.redis.url is None
+            else "start afresh with another --job")
+
+
+def _nothing_to_do(settings: JobSettings, counts: dict[str, Any]) -> str | None:
+    """Why a (resumed) job has nothing to fetch before its workers start, or None."""
+    name, fetched = settings.name, counts.get("fetched", 0)
+    limit = settings.budget.max_pages
+    if limit is not None and fetched >= limit:
+        return (f"nothing to do: job {name!r} has spent its page budget ({fetched} of {limit} "
+                f"pages fetched); raise --max-pages to fetch more, or {_fresh_hint(settings)}")
+    if counts.get("queued", 0) == 0 and counts.get("leased", 0) == 0:
+        return (f"nothing to do: job {name!r} has no URL left to fetch ({fetched} fetched of "
+                f"{counts.get('admitted', 0)} admitted); add seeds with 'sluice seeds add', "
+                f"or {_fresh_hint(settings)}")
+    return None
+
+
+def _ending(settings: JobSettings, counts: dict[str, Any], interrupted: bool) -> str:
+    """Why the crawl's workers stopped, in words (the summary's ``ended``)."""
+    limit = settings.budget.max_pages
+    if interrupted:
+        return "interrupted"
+    if limit is not None and counts.get("fetched", 0) >= limit:
+        return "page budget spent"
+    if counts.get("queued", 0) == 0 and counts.get("leased", 0) == 0:
+        return "nothing left to fetch"
+    return "stopped"
 
 
 async def _crawl_job(settings: JobSettings, out: Path, workers: int, registry: CollectorRegistry,
-                     *, quiet: bool, admin: str | None) -> dict[str, Any]:
+                     *, quiet: bool, admin: str | None,
+                     progress_every: float | None = None) -> dict[str, Any]:
     from frontier.daemon import Daemon, serve_admin
     from frontier.job import admit_seeds, open_job
     from frontier.metrics import WorkerMetrics
@@ -140,6 +229,10 @@ async def _crawl_job(settings: JobSettings, out: Path, workers: int, registry: C
             await job.store.recover()
         await admit_seeds(job, settings.seeds)
         daemon = Daemon(job, registry)
+        before = await daemon.stats_once()
+        idle = _nothing_to_do(job.settings, before)
+        if idle is not None:
+            print(f"sluice: {idle}", file=sys.stderr, flush=True)
         stop = asyncio.Event()
         metrics = WorkerMetrics(registry)  # one set of counters for all workers here
         crew = [Worker(job.store, job.admission, out, metrics=metrics, drain=True)
@@ -167,31 +260,56 @@ async def _crawl_job(settings: JobSettings, out: Path, workers: int, registry: C
         watch_signals(interrupt, cancel)
         runner = await serve_admin(daemon, admin) if admin else None
         background = asyncio.create_task(daemon.run(stop))
+        watchdog = asyncio.create_task(_watch_server(job.server, stop, interrupt))
         started = time.monotonic()
-        progress = Progress(daemon, quiet=quiet)
-        try:
-            async with progress:
+        progress = Progress(daemon, quiet=quiet, **(
+            {"every_s": progress_every} if progress_every is not None else {}))
+        progress.start_from(before)
+        async with progress:
+            try:
                 ends = await asyncio.gather(*(run_worker(w) for w in crew),
                                             return_exceptions=True)
                 for end in ends:
                     if isinstance(end, BaseException):
                         raise end
-        finally:
-            stop.set()
-            await background
-            if runner is not None:
-                await runner.cleanup()
-        summary = await daemon.stats_once()
-        summary["elapsed_s"] = round(time.monotonic() - started, 2)
-        summary["interrupted"] = interrupted
-        summary["out"] = str(out)
+            finally:
+                stop.set()
+                await background
+                await watchdog
+                if runner is not None:
+                    await runner.cleanup()
+            summary = await daemon.stats_once()
+            summary["elapsed_s"] = round(time.monotonic() - started, 2)
+            summary["interrupted"] = interrupted
+            summary["ended"] = _ending(job.settings, summary, interrupted)
+            summary["out"] = str(out)
+            progress.final(summary)  # the last frame shows these very numbers
         return summary
 
 
+SERVER_CHECK_S = 1.0
+
+
+async def _watch_server(server: Any, stop: asyncio.Event, interrupt: Any) -> None:
+    """Stop the crawl when its embedded Redis exits (no server: nothing to watch)."""
+    from frontier.daemon import wait_or_timeout
+
+    while server is not None and not await wait_or_timeout(stop, SERVER_CHECK_S):
+        if not server.is_running():
+            interrupt()
+            return
+
+
 def cmd_crawl(a: argparse.Namespace) -> int:
+    from frontier.folders import writable_folder
+
     out = Path(a.out)
     settings = _settings(a, state_dir=str(out / "state"))
-    summary = run_loop(_crawl(settings, out, a.workers, quiet=a.quiet, admin=a.admin))
+    writable_folder(out, "--out")
+    if settings.redis.url is None:
+        writable_folder(settings.state_dir, "--state" if a.state else "state_dir")
+    summary = run_loop(_crawl(settings, out, a.workers, quiet=a.quiet, admin=a.admin,
+                              progress_every=a.progress_every))
     print(json.dumps(summary, indent=2))
     return 0
 
@@ -329,6 +447,38 @@ def cmd_explain(a: argparse.Namespace) -> int:
     return 0
 
 
+def cmd_seeds(a: argparse.Namespace) -> int:
+    """`sluice seeds add URL... [--file FILE]`: check each seed, add those in the job's
+    scope to the job (a running crawl's too); rejected ones are reported one by one."""
+    from frontier.job import open_job
+    from frontier.seeds import (
+        RejectedSeed, SeedList, add_seeds, parse_seed_lines, read_seed_file, report_rejected,
+    )
+
+    if not a.urls and a.file is None:
+        raise ConfigError("seeds add: give seed URLs, or --file FILE with one URL a line")
+    seeds = SeedList()
+    if a.urls:
+        seeds.extend(parse_seed_lines(a.urls, source="argument"))
+    if a.file is not None:
+        seeds.extend(read_seed_file(a.file, label="--file"))
+    base = _stored_job(a)
+
+    async def run() -> dict[str, Any]:
+        if not seeds.accepted:
+            return {"added": 0, "known": 0, "rejected": [r.as_dict() for r in seeds.rejected]}
+        async with open_job(base, stored=True) as job:
+            return await add_seeds(job, seeds)
+
+    result = run_loop(run())
+    report_rejected(RejectedSeed(**r) for r in result["rejected"])
+    print(json.dumps(result, indent=2))
+    if result["added"] + result["known"] == 0:
+        raise ConfigError(f"no seed added: {len(result['rejected'])} rejected (see above); "
+                          "give absolute URLs in the job's scope, one each")
+    return 0
+
+
 def cmd_demo(a: argparse.Namespace) -> int:
     from frontier.demo import run_demo
     return run_demo(Path(a.out), hosts=a.hosts, pages=a.pages, max_pages=a.max_pages,
@@ -347,14 +497,17 @@ def cmd_bench(a: argparse.Namespace) -> int:
 
 
 def parser() -> argparse.ArgumentParser:
-    p = argparse.ArgumentParser(prog="sluice", description="A polite, prioritised crawl frontier on Redis.")
+    p = _Parser(prog="sluice", description="A polite, prioritised crawl frontier on Redis.")
     p.add_argument("-v", "--verbose", action="store_true")
     sub = p.add_subparsers(dest="command", required=True)
 
     c = sub.add_parser("crawl", help="scheduler and workers in one process")
     _job_flags(c)
     c.add_argument("--out", required=True, help="output folder (WARC files, fetch log, state)")
-    c.add_argument("--workers", type=int, default=1)
+    c.add_argument("--workers", type=_positive(int), default=1)
+    c.add_argument("--progress-every", type=_positive(float), metavar="SECONDS",
+                   help="seconds between progress lines when the output is not a terminal "
+                   "(default 5)")
     c.add_argument("--admin", help="HOST:PORT for the admin API and /metrics")
     c.add_argument("--quiet", action="store_true", help="no live progress")
     c.set_defaults(func=cmd_crawl)
@@ -398,6 +551,14 @@ def parser() -> argparse.ArgumentParser:
     e.add_argument("--json", action="store_true")
     e.set_defaults(func=cmd_explain)
 
+    sd = sub.add_parser("seeds", help="add seeds to a job, a running crawl's too")
+    sd_sub = sd.add_subparsers(dest="seeds_command", required=True)
+    sa = sd_sub.add_parser("add", help="check seed URLs and add those in the job's scope")
+    _admin_flags(sa)
+    sa.add_argument("urls", nargs="*", metavar="URL", help="seed URLs")
+    sa.add_argument("--file", type=Path, help="a file of seed URLs, one a line")
+    sa.set_defaults(func=cmd_seeds)
+
     m = sub.add_parser("demo", help="crawl the synthetic .test web on the embedded Redis")
     m.add_argument("--out", default="demo-out",
                    help="output folder; running again resumes (delete it to start afresh)")
@@ -419,11 +580,37 @@ def parser() -> argparse.ArgumentParser:
     return p
 
 
+class _Parser(argparse.ArgumentParser):
+    """Usage errors in one line: what is wrong, and where the help is."""
+
+    def error(self, message: str) -> Any:
+        self.exit(2, f"{self.prog}: {message} (see '{self.prog} --help')\n")
+
+
+def _positive(kind: type) -> Any:
+    """An argparse type: a number above zero."""
+
+    def parse(text: str) -> Any:
+        try:
+            value = kind(text)
+        except ValueError:
+            raise argparse.ArgumentTypeError(f"{text!r} is not a number") from None
+        if not value > 0:
+            raise argparse.ArgumentTypeError(f"must be above 0, got {text}")
+        return value
+
+    parse.__name__ = kind.__name__
+    return parse
+
+
 def main(argv: list[str] | None = None) -> int:
     a = parser().parse_args(argv)
     logging.basicConfig(level=logging.INFO if a.verbose else logging.WARNING,
                         format="%(asctime)s %(levelname)s %(name)s: %(message)s")
     try:
+        if getattr(a, "redis", None) is not None:
+            from frontier.redis_client import check_redis_url
+            check_redis_url(a.redis, "--redis")  # before anything connects anywhere
         return int(a.func(a))
     except DiskFault as exc:  # the worker handed back what it held; one line says what to do
         print(f"sluice: {exc}", file=sys.stderr)

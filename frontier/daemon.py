@@ -125,7 +125,21 @@ class Daemon:
         app.router.add_get("/hosts", self._hosts)
         app.router.add_get("/hosts/{host}", self._host)
         app.router.add_post("/hosts/{host}/{action}", self._control)
+        app.router.add_post("/seeds", self._seeds)
         return app
+
+    async def _seeds(self, request: web.Request) -> web.Response:
+        """POST /seeds {"urls": [...]}: add seeds in the job's scope; each rejected one
+        comes back with its position, text and reason (frontier/seeds.py)."""
+        from frontier.seeds import add_seeds, seeds_from_json
+        try:
+            try:
+                body = await request.json()
+            except ValueError:
+                raise ConfigError("the request body is not JSON") from None
+            return web.json_response(await add_seeds(self.job, seeds_from_json(body)))
+        except SluiceError as exc:
+            return error_response(exc)
 
     async def _status(self, request: web.Request) -> web.Response:
         """GET /status: what the status page shows (frontier/status_board.py), as JSON."""

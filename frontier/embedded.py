@@ -77,7 +77,9 @@ PORT_IN_USE_MARKER = "Address already in use"
 
 PR_SET_PDEATHSIG = 1  # from <linux/prctl.h>
 PROC = Path("/proc")
-PROC_STAT_STARTTIME_FIELD = 21  # 0-based index after the comm field is split off (proc(5))
+# proc(5): starttime is field 22 of /proc/PID/stat; after pid and comm are split off,
+# the state (field 3) is index 0, so starttime is index 19 (index 21 is rss, which moves)
+PROC_STAT_STARTTIME_FIELD = 19
 
 
 # -- locating the server binary ------------------------------------------------
@@ -248,6 +250,7 @@ class RedisProcess:
         self._port = port
         self._fixed_port = port is not None
         self._proc: subprocess.Popen[bytes] | None = None
+        self.died = False  # the server ended on its own (killed, crashed), not by stop()
 
     # -- public properties --
 
@@ -309,13 +312,16 @@ class RedisProcess:
         proc = self._proc
         if proc is None:
             return
-        if proc.poll() is None:
+        running = proc.poll() is None
+        if running:
             proc.terminate()
             try:
                 proc.wait(timeout)
             except subprocess.TimeoutExpired:
                 proc.kill()
                 proc.wait()
+        # Redis exits 0 on SIGTERM; anything else (or an exit before it) was not our doing
+        self.died = not running or proc.returncode != 0
         self._proc = None
         self.state_file.unlink(missing_ok=True)
 

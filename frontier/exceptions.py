@@ -7,6 +7,7 @@
     │   ├── StoreUnavailable   Redis went away or timed out (nothing acknowledged is lost)
     │   └── LeaseNotHeld       a lease was completed after it expired or was never held
     ├── RedisLaunchError       the embedded Redis server could not be started
+    ├── FolderInUse            a state or output folder belongs to another running sluice
     ├── AddressRefused         the SSRF guard refused a destination address
     ├── FetchError             a fetch ended without a usable response (carries a reason)
     └── DiskFault              the output folder cannot be written (full, gone, read-only)
@@ -48,6 +49,14 @@ class LeaseNotHeld(StoreError):
 
 class RedisLaunchError(SluiceError):
     """The embedded Redis server could not be started."""
+
+
+class FolderInUse(SluiceError):
+    """A folder is locked by another running sluice; ``owner`` describes it (or is None)."""
+
+    def __init__(self, message: str, owner: object = None) -> None:
+        super().__init__(message)
+        self.owner = owner
 
 
 class AddressRefused(SluiceError):

@@ -18,8 +18,9 @@ from typing import Any, AsyncIterator
 from redis.asyncio.cluster import RedisCluster
 
 from frontier.admission import Admission, Resolver, scope_from_settings
-from frontier.embedded import EmbeddedRedis
-from frontier.exceptions import ConfigError, SluiceError
+from frontier.embedded import REDIS_SUBDIR, START_TIMEOUT_S, EmbeddedRedis
+from frontier.exceptions import ConfigError, FolderInUse, RedisLaunchError, SluiceError
+from frontier.folders import FolderLock, Owner, owner_redis_url, say_taken_over
 from frontier.keys import Keys
 from frontier.model import AdmitResult, Candidate
 from frontier.redis_client import connect, connect_auto
@@ -42,20 +43,98 @@ class Job:
 
 
 def read_seeds(path: Path) -> list[str]:
-    """One URL a line; blank lines and '#' comments skipped."""
-    try:
-        lines = Path(path).read_text(encoding="utf-8").splitlines()
-    except OSError as exc:
-        raise ConfigError(f"seeds file {path}: {exc}") from exc
-    return [ln.strip() for ln in lines if ln.strip() and not ln.lstrip().startswith("#")]
+    """One URL a line (blank lines and '#' comments skipped); each rejected line is
+    reported on stderr with its number and reason (frontier/seeds.py)."""
+    from frontier.seeds import read_seed_file, usable_seeds
+
+    return usable_seeds(read_seed_file(path, label="--seeds"), f"--seeds {path}")
 
 
-async def _client(settings: JobSettings) -> tuple[Any, EmbeddedRedis | None]:
+STATE_FIX = "stop it first, or use another state folder (--out or --state)"
+
+
+@dataclass
+class _Redis:
+    """The job's Redis: a client, the embedded server this process started (if any) and
+    whether sluice may tune the server (not one that a running crawl owns)."""
+
+    client: Any
+    server: EmbeddedRedis | None = None
+    tune: bool = False
+
+
+@asynccontextmanager
+async def _redis_for(settings: JobSettings, *, attach: bool) -> AsyncIterator[_Redis]:
+    """Connect to the job's Redis: the given URL, else the embedded server of the state
+    folder. The state folder has one owner (frontier/folders.py): this process starts the
+    server when the folder is free; with ``attach`` it uses a running owner's server
+    instead, otherwise a busy folder is refused."""
+    timeout = settings.redis.socket_timeout_s
     if settings.redis.url:
-        return await connect_auto(settings.redis.url, timeout_s=settings.redis.socket_timeout_s), None
-    server = EmbeddedRedis(settings.state_dir, config=redis_tuning(settings))
-    server.start()
-    return connect(server.url, timeout_s=settings.redis.socket_timeout_s), server
+        client = await connect_auto(settings.redis.url, timeout_s=timeout)
+        try:
+            yield _Redis(client, tune=True)
+        finally:
+            await client.aclose()
+        return
+    state = Path(settings.state_dir)
+    if attach and not (state / REDIS_SUBDIR).is_dir():
+        raise ConfigError(f"state folder {state} holds no job (no {REDIS_SUBDIR}/ in it): pass "
+                          "--state OUT/state of a crawl, or --redis URL")
+    lock = FolderLock(state, label="state folder", fix=STATE_FIX)
+    url = None
+    try:
+        say_taken_over(lock.folder, lock.take(wait_s=0) if attach else lock.take())
+    except FolderInUse as busy:
+        if not attach:
+            raise
+        url = _owners_redis(state, busy.owner)
+    if url is not None:
+        client = connect(url, timeout_s=timeout)
+        try:
+            yield _Redis(client)
+        finally:
+            await client.aclose()
+        return
+    try:
+        server = EmbeddedRedis(state, config=redis_tuning(settings))
+        server.start()
+        try:
+            lock.publish(redis_url=server.url)
+            client = connect(server.url, timeout_s=timeout)
+            try:
+                yield _Redis(client, server)
+            finally:
+                await client.aclose()
+        except SluiceError as exc:
+            server.stop()
+            if server.died:  # the cause of the failure: say that, not a lost connection
+                raise RedisLaunchError(
+                    f"the Redis server of {state} exited while in use (its log: "
+                    f"{server.log_file}); run the same command again to resume from what "
+                    "it saved") from exc
+            raise
+        finally:
+            server.stop()
+    finally:
+        lock.release()
+
+
+def _owners_redis(state: Path, owner: Any) -> str:
+    """The Redis address a running owner of ``state`` published (it may still be starting)."""
+    if isinstance(owner, Owner) and owner.host and not owner.on_this_host:
+        raise FolderInUse(f"state folder {state} belongs to {owner.describe()}, another "
+                          "machine: run this there, or keep the job in a shared Redis "
+                          "(--redis)", owner)
+    current, url = owner_redis_url(state, START_TIMEOUT_S)
+    if url is not None:
+        return url
+    if current is None:
+        raise FolderInUse(f"state folder {state}: its owner stopped just now; run the "
+                          "command again", owner)
+    raise FolderInUse(f"state folder {state} is in use by {current.describe()}, whose Redis "
+                      f"did not come up within {START_TIMEOUT_S:.0f} s; try again in a moment",
+                      current)
 
 
 async def save_settings(client: Any, settings: JobSettings) -> None:
@@ -70,7 +149,12 @@ async def load_settings(client: Any, name: str) -> JobSettings:
     async with redis_boundary("load job"):
         raw = await client.get(Keys(name, 1).settings)
     if raw is None:
-        raise ConfigError(f"no job named {name!r} in this Redis (start it with 'sluice daemon')")
+        async with redis_boundary("load job"):
+            names = sorted(n.decode() if isinstance(n, bytes) else str(n)
+                           for n in await client.smembers(Keys.job_index()))
+        here = (f"jobs here: {', '.join(names)}; pass one with --job" if names else
+                "start it with 'sluice crawl' or 'sluice daemon'")
+        raise ConfigError(f"no job named {name!r} in this Redis ({here})")
     return settings_from_dict(json.loads(raw))
 
 
@@ -81,8 +165,8 @@ async def open_job(settings: JobSettings, *, stored: bool = False) -> AsyncItera
     ``stored=True`` reads the job's settings from Redis (workers); otherwise the given
     settings are stored with the job, keeping the layout it was created with.
     """
-    client, server = await _client(settings)
-    try:
+    async with _redis_for(settings, attach=stored) as redis:
+        client = redis.client
         if stored:
             settings = await load_settings(client, settings.name)
         else:
@@ -100,15 +184,11 @@ async def open_job(settings: JobSettings, *, stored: bool = False) -> AsyncItera
             await save_settings(client, settings)
         store = FrontierStore(client, settings)
         await store.sync_clock()  # leases and schedules on the server's clock
-        if server is None:
+        if redis.tune:
             await store.tune_server()
         admission = Admission(store, scope_from_settings(settings, settings.seeds),
                               resolver=address_resolver(settings))
-        yield Job(settings, store, admission, server)
-    finally:
-        await client.aclose()
-        if server is not None:
-            server.stop()
+        yield Job(settings, store, admission, redis.server)
 
 
 def address_resolver(settings: JobSettings) -> Resolver | None:
