@@ -258,8 +258,47 @@ def test_garbage_and_binary_lines_are_skipped() -> None:
 @given(body=st.binary(max_size=2048), path=st.text(max_size=40))
 def test_any_body_parses_without_raising(body: bytes, path: str) -> None:
     # RFC 9309 s.2.2: parse what parses; an arbitrary body must not stop the crawl.
+    # s.2.2.2: only a disallow rule can forbid a path, and /robots.txt is always allowed.
     policy = rules(body)
-    assert isinstance(policy.allowed(url("/" + path)), bool)
+    verdict = policy.allowed(url("/" + path))
+    if b"disallow" not in body.lower():
+        assert verdict is True
+    assert policy.allowed(url("/robots.txt"))
+
+
+def test_dollar_only_ends_a_pattern() -> None:
+    # RFC 9309 s.2.2.3: "$" designates the end of the pattern; a "$" in the URL is an
+    # ordinary character, which a pattern names as "%24".
+    policy = rules("User-agent: *\nDisallow: /a$\nDisallow: /b%24\n")
+    assert not policy.allowed(url("/a"))
+    assert policy.allowed(url("/a$b"))
+    assert policy.allowed(url("/ab"))
+    assert not policy.allowed(url("/b$"))
+    assert not policy.allowed(url("/b%24x"))
+    assert rules("User-agent: *\nDisallow: /$\n").allowed(url("/$"))
+
+
+def test_star_in_a_url_is_an_ordinary_character() -> None:
+    # RFC 9309 s.2.2.3: a literal "*" is written "%2A" in a pattern; in the URL it is
+    # an ordinary character that a pattern's "*" matches like any other.
+    policy = rules("User-agent: *\nDisallow: /file-%2A.html\n")
+    assert not policy.allowed(url("/file-*.html"))
+    assert policy.allowed(url("/file-x.html"))
+
+
+def test_only_the_rules_written_apply() -> None:
+    # RFC 9309 s.2.2.2: "Allow: /a/index.html" matches that path and nothing else; the
+    # longer "Disallow: /a/" still covers "/a/" itself.
+    policy = rules("User-agent: *\nDisallow: /a/\nAllow: /a/index.html\n")
+    assert not policy.allowed(url("/a/"))
+    assert policy.allowed(url("/a/index.html"))
+
+
+def test_field_names_are_ascii() -> None:
+    # RFC 9309 s.2.2: the field names are ASCII words (matched case-insensitively);
+    # "di\u017fallow" (LONG S) is not "disallow", though Unicode case folding says so.
+    assert rules("User-agent: *\nDi\u017fallow: /\n").allowed(url("/x"))
+    assert not rules("User-agent: *\nDISALLOW: /\n").allowed(url("/x"))
 
 
 def test_default_parse_limit_meets_rfc_minimum() -> None:
