@@ -10,7 +10,7 @@ from __future__ import annotations
 
 import tomllib
 from pathlib import Path
-from typing import Any, Literal
+from typing import Annotated, Any, Literal
 
 from pydantic import BaseModel, ConfigDict, Field, ValidationError, field_validator
 from pydantic_settings import (
@@ -114,7 +114,7 @@ class FetchSettings(_Part):
     max_header_bytes: int = Field(default=32 * 1024, ge=1024)
     archive_other_types: bool = Field(default=True, description="archive non-HTML bodies")
     map_hosts: tuple[str, ...] = Field(default=(), description="'*.test=127.0.0.1[:PORT]' entries")
-    map_ports: tuple[int, ...] = Field(
+    map_ports: tuple[Annotated[int, Field(ge=1, le=65535)], ...] = Field(
         default=(80, 443), description="ports a port-less map_hosts entry lets a URL keep")
     map_remote: bool = Field(
         default=False, description="allow map_hosts entries to non-loopback addresses (they "

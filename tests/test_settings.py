@@ -57,3 +57,10 @@ def test_settings_are_frozen() -> None:
     s = load_settings(None)
     with pytest.raises(Exception):
         s.politeness.min_delay_s = 0.0  # type: ignore[misc]
+
+
+@pytest.mark.parametrize("port", [0, -1, 65536])
+def test_map_ports_are_tcp_ports(port: int) -> None:
+    # RFC 9293 s.3.1: a TCP port is a 16-bit number; port 0 is not a destination
+    with pytest.raises(ConfigError, match="map_ports"):
+        load_settings(None, {"fetch": {"map_ports": [port]}})
