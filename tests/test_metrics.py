@@ -25,13 +25,57 @@ def registry() -> CollectorRegistry:
 def test_names_follow_the_conventions() -> None:
     for family in registry().collect():
         assert family.name.startswith("sluice_")  # one application prefix
-        if family.type == "counter":  # exposed with _total (the client keeps the base name)
-            assert not family.name.endswith("_total")
         if family.type == "histogram":
             assert family.name.endswith("_seconds")  # base units
         for sample in family.samples:
             assert not UNBOUNDED_LABELS & set(sample.labels)  # no unbounded label values
             assert sample.labels["job"] == "t"  # every series names its crawl job
+
+
+_TYPE_LINE = re.compile(r"# TYPE (\S+) (\S+)")
+_SAMPLE_LINE = re.compile(r"([a-zA-Z_:][a-zA-Z0-9_:]*)(?:\{[^}]*\})? \S+")
+
+
+async def test_a_scrape_names_every_counter_sample_with_total() -> None:
+    # What a scrape of /metrics returns, read as text (prometheus.io, "Exposition
+    # formats", text format 0.0.4: a "# TYPE" line, then the samples of that metric):
+    # a counter is named <name>_total and nothing else is ("Metric and label naming":
+    # an accumulating count has the suffix "total").
+    from aiohttp import ClientSession
+
+    from frontier.daemon import metrics_app, serve
+
+    reg = CollectorRegistry()
+    WorkerMetrics(reg, "scraped").count_outcome("fetched")
+    FrontierMetrics(reg, "scraped").update_budget(100)
+    runner = await serve(metrics_app(reg), "127.0.0.1:0")
+    try:
+        port = runner.addresses[0][1]
+        async with ClientSession() as session:
+            async with session.get(f"http://127.0.0.1:{port}/metrics") as response:
+                assert response.status == 200
+                assert response.headers["Content-Type"].startswith("text/plain")
+                text = await response.text()
+    finally:
+        await runner.cleanup()
+    types = dict(_TYPE_LINE.findall(text))
+    counters = {name for name, kind in types.items() if kind == "counter"}
+    assert {"sluice_fetches_total", "sluice_warc_bytes_total"} <= counters
+    for name in types:
+        assert name.endswith("_total") == (name in counters), name
+    samples = 0
+    for line in text.splitlines():
+        match = _SAMPLE_LINE.fullmatch(line)
+        if line.startswith("#") or match is None:
+            continue
+        sample = match.group(1)
+        family = max((n for n in types if sample.startswith(n)), key=len, default=None)
+        assert family is not None, line  # every sample follows its "# TYPE" line
+        if family in counters:
+            assert sample == family, line
+            samples += 1
+    assert samples >= len(counters)
+    assert 'sluice_fetches_total{job="scraped",outcome="fetched"} 1.0' in text
 
 
 def test_dashboard_queries_existing_metrics() -> None:

@@ -297,9 +297,12 @@ async def test_calls_made_together_share_one_round_trip(single_client: Any, monk
     assert await batcher.run(echo, [], ["later"]) == b"later"  # a later call: its own trip
     assert pipelines == 2
 
-    lingering = CallBatcher(single_client, linger_s=0.05)
+    # a call made some event-loop turns later (without a linger it would go alone, as
+    # "later" above did) still shares the trip; the linger outlasts those turns by far
+    lingering = CallBatcher(single_client, linger_s=1.0)
     first = lingering.run(echo, [], ["a"])
-    await asyncio.sleep(0.01)  # within the linger: still shares the trip
+    for _ in range(3):
+        await asyncio.sleep(0)
     second = lingering.run(echo, [], ["b"])
     assert await asyncio.gather(first, second) == [b"a", b"b"]
     assert pipelines == 3
