@@ -109,3 +109,10 @@ def make_store(redis_client: Any, clock: Clock) -> StoreFactory:
         return FrontierStore(redis_client, JobSettings.model_validate(data), clock=clock)
 
     return build
+
+
+def pytest_configure(config: pytest.Config) -> None:
+    """A fuzz run (HYPOTHESIS_PROFILE=fuzz, 10,000 examples a test) lifts the per-test
+    time limit: one test may take minutes."""
+    if os.environ.get("HYPOTHESIS_PROFILE") == "fuzz":
+        config.option.timeout = 0
