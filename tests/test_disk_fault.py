@@ -68,7 +68,7 @@ async def test_crawl_on_a_full_disk_exits_3_and_resumes(
         summary = json.loads(again.stdout())
         expected = reachable(web.web)
     print(f"DISK-FIGURES exit {code}, fetched when full {midway['fetched']} of "
-          f"{len(expected)} reachable, stderr: {lines}")
+          f"{len(expected)} reachable, {len(lines)} stderr lines, last: {lines[-1][:300]!r}")
     assert code == EXIT_DISK_FAULT, (code, lines[-5:])
     # one line, no traceback: what happened (the folder, the cause), what to do
     assert len(lines) == 1 and lines[0].startswith("sluice: "), lines[-10:]
