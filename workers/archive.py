@@ -905,7 +905,7 @@ class FetchLog:
         data = entry.to_json()
         try:
             line = orjson.dumps(data, option=orjson.OPT_APPEND_NEWLINE)
-        except orjson.JSONEncodeError:  # a lone surrogate in some text: write it escaped
+        except orjson.JSONEncodeError:  # a lone surrogate, or an integer past 64 bits
             line = json.dumps(data, separators=(",", ":")).encode("ascii") + b"\n"
         self._lines.append(line)
 
