@@ -23,7 +23,7 @@ from types import SimpleNamespace
 from typing import Any
 
 import pytest
-from hypothesis import given, settings
+from hypothesis import given
 from hypothesis import strategies as st
 from warcio.archiveiterator import ArchiveIterator
 from warcio.checker import Checker
@@ -37,10 +37,6 @@ from workers.archive import (
     repair_warc,
     rewrite_response_headers,
 )
-
-# The profile sets the example count; the time-out grows with it (0.25 s an example).
-pytestmark = [pytest.mark.fuzz,
-              pytest.mark.timeout(max(120, settings.default.max_examples // 4))]
 
 FILE_CLOCK = datetime(2031, 5, 6, 7, 0, 0, tzinfo=UTC)
 # Characters that have broken writers: line breaks, NUL, separators, escapes, quotes,
@@ -122,6 +118,7 @@ def expected_types(written: list[dict[str, Any]]) -> list[str]:
             for kind in ["request", "response"] + (["metadata"] if exchange["outlinks"] else [])]
 
 
+@pytest.mark.fuzz
 @given(batch=st.lists(exchanges, min_size=1, max_size=3), rotate=st.booleans())
 def test_any_exchange_is_written_whole_and_passes_warcio_check(
     batch: list[dict[str, Any]], rotate: bool
@@ -171,6 +168,7 @@ request_heads = st.one_of(
 )
 
 
+@pytest.mark.fuzz
 @given(head=request_heads, exchange=exchanges)
 def test_any_raw_request_head_is_written_readably_or_refused_whole(
     head: bytes, exchange: dict[str, Any]
@@ -196,6 +194,7 @@ def test_any_raw_request_head_is_written_readably_or_refused_whole(
             assert head.rstrip(b"\r\n") in block
 
 
+@pytest.mark.fuzz
 @given(batch=st.lists(exchanges, min_size=1, max_size=3), where=st.floats(0, 1),
        tail=st.binary(max_size=64))
 def test_a_file_cut_anywhere_repairs_to_its_whole_records(
@@ -246,6 +245,7 @@ TEXT_FIELDS = ("url", "outcome", "reason", "host", "warc_file", "content_type")
 INT_FIELDS = ("status", "bytes", "depth", "warc_offset")
 
 
+@pytest.mark.fuzz
 @given(batches=st.lists(st.lists(entries, max_size=5), min_size=1, max_size=4),
        reopen_after=st.integers(0, 4))
 def test_any_fetch_entry_is_one_json_line(
