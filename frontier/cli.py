@@ -317,6 +317,7 @@ def cmd_crawl(a: argparse.Namespace) -> int:
 def cmd_daemon(a: argparse.Namespace) -> int:
     from frontier.daemon import Daemon, serve_admin
     from frontier.job import admit_seeds, open_job
+    from frontier.redis_client import redacted
 
     settings = _settings(a)
 
@@ -329,7 +330,8 @@ def cmd_daemon(a: argparse.Namespace) -> int:
             stop = asyncio.Event()
             watch_signals(stop.set)
             runner = await serve_admin(daemon, a.admin) if a.admin else None
-            print(f"sluice daemon: job {settings.name} on {settings.redis.url or 'embedded Redis'}"
+            where = redacted(settings.redis.url) if settings.redis.url else "embedded Redis"
+            print(f"sluice daemon: job {settings.name} on {where}"
                   + (f", admin http://{a.admin}/" if a.admin else ""), flush=True)
             try:
                 await daemon.run(stop)
@@ -379,11 +381,37 @@ def _stored_job(a: argparse.Namespace) -> JobSettings:
     return load_settings(None, overrides)
 
 
-def _admin_flags(p: argparse.ArgumentParser) -> None:
+def _admin_flags(p: argparse.ArgumentParser, *, api: bool = False) -> None:
     p.add_argument("--redis", help="redis:// URL; none: the embedded server of --state")
-    p.add_argument("--job", required=True)
+    p.add_argument("--job", required=not api,
+                   help="the job's name (with --admin: checked against the API's job)"
+                   if api else None)
     p.add_argument("--state", type=Path,
-                   help="state folder of an embedded job (sluice crawl: OUT/state)")
+                   help="state folder of an embedded job (sluice crawl: OUT/state)"
+                   + ("; with --admin, where its admin-token file is" if api else ""))
+    if api:
+        p.add_argument("--admin", metavar="URL",
+                       help="go through the admin API of a running daemon or crawl, e.g. "
+                       "http://127.0.0.1:8700, instead of Redis")
+        p.add_argument("--token-file", type=Path, metavar="FILE",
+                       help="with --admin: the file holding the admin token (else "
+                       "SLUICE_ADMIN_TOKEN, else STATE/admin-token with --state)")
+
+
+def _admin_api(a: argparse.Namespace) -> Any:
+    """The admin API client for ``--admin URL``; None when the job is reached through
+    Redis (``--redis`` or ``--state``), which needs ``--job``."""
+    if a.admin is None:
+        if a.token_file is not None:
+            raise ConfigError("--token-file goes with --admin URL")
+        if a.job is None:
+            raise ConfigError("--job is needed (or --admin URL of the job's running daemon)")
+        return None
+    if a.redis is not None:
+        raise ConfigError("--admin and --redis: give one (the admin API reaches the job's "
+                          "Redis itself)")
+    from frontier.admin_client import client_for
+    return client_for(a.admin, a.token_file, a.state)
 
 
 def cmd_host(a: argparse.Namespace) -> int:
@@ -400,6 +428,20 @@ def cmd_host(a: argparse.Namespace) -> int:
     if listing and a.new:
         raise ConfigError("--new goes with a host action")
     which = controls.list_filter(a.only) if listing else None
+    api = _admin_api(a)
+    if api is not None:
+        async def remote() -> None:
+            async with api:
+                await api.check_job(a.job)
+                if listing:
+                    rows = await api.hosts(which)
+                    print(json.dumps(rows, indent=2) if a.json else controls.format_host_list(rows))
+                    return
+                print(json.dumps(await api.control(a.host, a.action, a.value, new=a.new),
+                                 indent=2, default=str))
+
+        run_loop(remote())
+        return 0
     base = _stored_job(a)
 
     async def run() -> None:
@@ -419,6 +461,14 @@ def cmd_host(a: argparse.Namespace) -> int:
 def cmd_status(a: argparse.Namespace) -> int:
     from frontier.job import open_job
 
+    api = _admin_api(a)
+    if api is not None:
+        async def remote() -> dict[str, Any]:
+            async with api:
+                return await api.status(a.job)
+
+        print(json.dumps(run_loop(remote()), indent=2))
+        return 0
     base = _stored_job(a)
 
     async def run() -> None:
@@ -462,11 +512,17 @@ def cmd_seeds(a: argparse.Namespace) -> int:
         seeds.extend(parse_seed_lines(a.urls, source="argument"))
     if a.file is not None:
         seeds.extend(read_seed_file(a.file, label="--file"))
-    base = _stored_job(a)
+    api = _admin_api(a)
+    base = _stored_job(a) if api is None else None
 
     async def run() -> dict[str, Any]:
         if not seeds.accepted:
             return {"added": 0, "known": 0, "rejected": [r.as_dict() for r in seeds.rejected]}
+        if api is not None:
+            async with api:
+                await api.check_job(a.job)
+                return await api.add_seeds(seeds)
+        assert base is not None
         async with open_job(base, stored=True) as job:
             return await add_seeds(job, seeds)
 
@@ -528,7 +584,7 @@ def parser() -> argparse.ArgumentParser:
 
     h = sub.add_parser("host", help="pause, resume, block, unblock, boost, delay or clear a "
                        "host; 'sluice host list' shows the hosts under control")
-    _admin_flags(h)
+    _admin_flags(h, api=True)
     h.add_argument("host", help="a host name or a URL of the host (or 'list')")
     h.add_argument("action", nargs="?", help="pause, resume, block, unblock, boost VALUE, "
                    "delay VALUE or clear")
@@ -542,7 +598,7 @@ def parser() -> argparse.ArgumentParser:
     h.set_defaults(func=cmd_host)
 
     s = sub.add_parser("status", help="URL counts by state")
-    _admin_flags(s)
+    _admin_flags(s, api=True)
     s.set_defaults(func=cmd_status)
 
     e = sub.add_parser("explain", help="why a URL has its priority")
@@ -554,7 +610,7 @@ def parser() -> argparse.ArgumentParser:
     sd = sub.add_parser("seeds", help="add seeds to a job, a running crawl's too")
     sd_sub = sd.add_subparsers(dest="seeds_command", required=True)
     sa = sd_sub.add_parser("add", help="check seed URLs and add those in the job's scope")
-    _admin_flags(sa)
+    _admin_flags(sa, api=True)
     sa.add_argument("urls", nargs="*", metavar="URL", help="seed URLs")
     sa.add_argument("--file", type=Path, help="a file of seed URLs, one a line")
     sa.set_defaults(func=cmd_seeds)

@@ -167,8 +167,9 @@ async def open_job(settings: JobSettings, *, stored: bool = False) -> AsyncItera
     """
     async with _redis_for(settings, attach=stored) as redis:
         client = redis.client
-        if stored:
-            settings = await load_settings(client, settings.name)
+        if stored:  # the job's settings, reached the way this process reached them
+            settings = (await load_settings(client, settings.name)).model_copy(
+                update={"redis": settings.redis})
         else:
             try:
                 existing = await load_settings(client, settings.name)

@@ -226,8 +226,13 @@ class JobSettings(BaseSettings):
         return self.model_copy(update={"store": self.store.model_copy(update={"partitions": count})})
 
     def public_dict(self) -> dict[str, Any]:
-        """The settings as JSON-ready data (stored with the job in Redis)."""
-        return self.model_dump(mode="json")
+        """The settings as JSON-ready data (stored with the job in Redis). The Redis URL's
+        password is not kept: every process connects with its own URL."""
+        data = self.model_dump(mode="json")
+        if self.redis.url:
+            from frontier.redis_client import redacted
+            data["redis"]["url"] = redacted(self.redis.url)
+        return data
 
 
 def _merge(base: dict[str, Any], over: dict[str, Any]) -> dict[str, Any]:
