@@ -17,6 +17,8 @@ from redis.asyncio.cluster import RedisCluster
 from redis.commands.core import AsyncScript
 from redis.exceptions import NoScriptError, RedisError, ResponseError
 
+from frontier.exceptions import StoreUnavailable
+
 ScriptCall = tuple[AsyncScript, list[Any], list[Any]]
 
 SCRIPT_NAMES = (
@@ -78,6 +80,72 @@ async def run_settled(client: Any, calls: list[ScriptCall]) -> list[Any]:
                 results[i] = await script(keys, args)
             except RedisError as exc:
                 results[i] = exc
+    return results
+
+
+async def run_replicated(client: Any, calls: list[ScriptCall], replicas: int,
+                         timeout_ms: int) -> list[Any]:
+    """Run script calls on a Cluster and return once ``replicas`` replicas of every master
+    written to have the writes (Redis WAIT, sent on the connection that made them: WAIT
+    waits for the writes of its own connection). Redis replicates asynchronously, so
+    without it a master killed right after an admit may take the admitted links with
+    it while the page that found them is already completed on another master.
+
+    A master that cannot confirm in time, or a call refused (MOVED after a failover),
+    raises StoreUnavailable: the caller keeps its batch and runs it again (admits are
+    idempotent: URL-seen counts the second one as duplicates).
+    """
+    if not isinstance(client, RedisCluster) or replicas <= 0:
+        return await run_many(client, calls)
+    await client.initialize()  # the slot map (a no-op once known)
+    by_node: dict[str, tuple[Any, list[int]]] = {}
+    for i, (_, keys, _args) in enumerate(calls):
+        node = client.get_node_from_key(keys[0])
+        by_node.setdefault(node.name, (node, []))[1].append(i)
+    results: list[Any] = [None] * len(calls)
+
+    async def on_node(node: Any, idx: list[int]) -> None:
+        conn = node.acquire_connection()
+        try:
+            packed = [("EVALSHA", calls[i][0].sha, len(calls[i][1]), *calls[i][1], *calls[i][2])
+                      for i in idx]
+            await conn.send_packed_command(conn.pack_commands(
+                [*packed, ("WAIT", replicas, timeout_ms)]))
+            replies = []
+            for _ in range(len(idx) + 1):
+                try:
+                    replies.append(await conn.read_response())
+                except ResponseError as exc:
+                    replies.append(exc)
+        except BaseException:
+            await conn.disconnect()
+            raise
+        finally:
+            node.release(conn)
+        acked = replies[-1]
+        wrote = any(not isinstance(r, ResponseError) for r in replies[:-1])
+        for i, reply in zip(idx, replies):
+            if isinstance(reply, NoScriptError):  # not run: load it, then run it again
+                await client.script_load(calls[i][0].script)
+                reply = (await run_replicated(client, [calls[i]], replicas, timeout_ms))[0]
+            elif isinstance(reply, ResponseError):
+                raise StoreUnavailable(f"Redis Cluster refused a write on {node.name}: {reply}")
+            results[i] = reply
+        if wrote and isinstance(acked, int) and acked < replicas:
+            raise StoreUnavailable(f"{node.name}: {acked} of {replicas} replicas confirmed "
+                                   f"the writes within {timeout_ms} ms")
+
+    try:
+        await asyncio.gather(*(on_node(node, idx) for node, idx in by_node.values()))
+    except (StoreUnavailable, RedisError, OSError) as exc:
+        # a master gone or slots moved (failover): learn the new slot map for the retry
+        try:
+            await client.nodes_manager.initialize()
+        except (RedisError, OSError):
+            pass  # still failing over: the next retry asks again
+        if isinstance(exc, StoreUnavailable):
+            raise
+        raise StoreUnavailable(f"Redis Cluster unavailable: {exc}") from exc
     return results
 
 

@@ -99,6 +99,12 @@ class StoreSettings(_Part):
 class RedisSettings(_Part):
     url: str | None = Field(default=None, description="none: start the embedded server")
     socket_timeout_s: float = Field(default=10.0, gt=0)
+    wait_replicas: int = Field(
+        default=0, ge=0, le=16, description="on a Cluster with replicas: an admit returns "
+        "only once this many replicas of each master it wrote to have it (Redis WAIT), so a "
+        "master's failover cannot lose links whose page is already done; 0: off")
+    wait_timeout_ms: int = Field(default=1000, ge=1, le=60_000,
+                                 description="longest wait for those replicas")
 
 
 class FetchSettings(_Part):

@@ -23,7 +23,7 @@ from frontier.controls import MAX_BOOST, MIN_BOOST, echo
 from frontier.exceptions import LeaseNotHeld, StoreError, StoreUnavailable
 from frontier.keys import Keys, PartitionKeys
 from frontier.model import AdmitResult, Completion, Counts, Lease, Outcome, STATES
-from frontier.scripts import ScriptCall, Scripts, run_many
+from frontier.scripts import ScriptCall, Scripts, run_many, run_replicated
 from frontier.settings import JobSettings
 
 log = logging.getLogger(__name__)
@@ -241,7 +241,9 @@ class FrontierStore:
                  if b.hosts or b.refused or b.sources]
         total = AdmitResult()
         async with redis_boundary("admit"):
-            for new, credited, excluded, dups in await run_many(self.redis, calls):
+            rs = self.settings.redis
+            for new, credited, excluded, dups in await run_replicated(
+                    self.redis, calls, rs.wait_replicas, rs.wait_timeout_ms):
                 total.add(AdmitResult(new, credited, excluded, dups))
         return total
 

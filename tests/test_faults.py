@@ -207,7 +207,10 @@ def test_worker_paused_past_its_lease_ttl(tmp_path: Path, redis_aof: RedisServer
 def test_cluster_master_killed_replica_takes_over(tmp_path: Path) -> None:
     with ReplicatedCluster(tmp_path / "cluster") as cluster, \
             WebThread(make_web(seed=15, hosts=12, pages=500)) as web:
-        crew = crawl_with_crew(tmp_path, web, "failover", cluster.url)
+        # Redis replicates asynchronously: an admit is confirmed by a replica (WAIT) before
+        # the page that found its links is completed on another master
+        crew = crawl_with_crew(tmp_path, web, "failover", cluster.url,
+                               redis={"wait_replicas": 1, "wait_timeout_ms": 2000})
         try:
             served(web, 150, crew.procs)
             started = time.monotonic()
