@@ -549,7 +549,9 @@ def cmd_bench(a: argparse.Namespace) -> int:
         from frontier.bench.crawl_bench import main as crawl_main
         return crawl_main(pages=a.urls or 10_000, profile=a.profile)
     from frontier.bench.ordering_bench import main as ordering_main
-    return ordering_main()
+    from frontier.bench.ordering_bench import parse_override
+    return ordering_main(a.web, a.seed, a.timing, dict(parse_override(s) for s in a.set),
+                         a.plot)
 
 
 def parser() -> argparse.ArgumentParser:
@@ -632,6 +634,19 @@ def parser() -> argparse.ArgumentParser:
                    help="crawl: also run a profiled crawl and print where the time goes")
     b.add_argument("--no-aof", action="store_true",
                    help="frontier: run the embedded Redis without its append-only file")
+    b.add_argument("--web", action="append", metavar="NAME",
+                   help="ordering: a web to run (repeatable; default all): farm-near, farm-far, "
+                   "subdomain-farm, link-ring, doorways, honest-cluster, demo, demo-live")
+    b.add_argument("--seed", action="append", type=int, metavar="N",
+                   help="ordering: a seed number (repeatable; default 1, 2, 3)")
+    b.add_argument("--timing", choices=["polite", "instant"], default="polite",
+                   help="ordering: sluice demo's politeness on a simulated clock (default), "
+                   "or delays 0")
+    b.add_argument("--set", action="append", default=[], metavar="SECTION.NAME=VALUE",
+                   help="ordering: a job setting for the crawl, e.g. priority.jump_floor=1e-4")
+    b.add_argument("--plot", type=Path, metavar="PNG",
+                   help="ordering: draw the plot here (default docs/ordering.png when every "
+                   "web runs)")
     b.set_defaults(func=cmd_bench)
     return p
 
