@@ -21,6 +21,9 @@ from frontier.urls import Scope, canonicalize, fingerprint, host_of, politeness_
 HOST_CACHE_SIZE = 100_000  # hosts whose politeness key and partition are remembered
 URL_MEMO_SIZE = 1 << 16  # offered URLs whose canonical form and fingerprint are remembered
 RESOLVE_CONCURRENCY = 32  # address lookups at once, for the 'ip' politeness key
+# a host's trust is split over at least this many out-linked hosts: its first pages show
+# only a few of the hosts it links to (tuned with the adversarial webs, no source)
+TRUST_SPLIT_MIN_HOSTS = 10
 
 Resolver = Callable[[str], Awaitable[str | None]]
 
@@ -72,8 +75,11 @@ class Admission:
         check = self.scope.check
         key_mode = self.key_mode
         facts, places = self._facts, self._places
+        # source politeness key -> {target key: its partition}, and trust given with them
+        links: dict[str, dict[str, int]] = {}
+        given: dict[str, float] = {}
         for c in candidates:
-            raw, depth, cash, credit, source, hops = c
+            raw, depth, cash, credit, source, hops, source_trust = c
             fact = facts.get(raw)
             if fact is None:
                 fact = self._remember(raw)
@@ -105,27 +111,57 @@ class Admission:
             if depth == 0:  # a seed (redirects and links are one depth further): the operator vouches
                 batch.seeded.add(key)
             if source is not None and source != host:
-                self._link_hosts(batch, key, source, key_mode)
+                source_key = source if key_mode == "host" else self._key(source)
+                if source_key != key:
+                    links.setdefault(source_key, {})[key] = partition
+                    if source_trust is not None:
+                        given[source_key] = source_trust
         for source, raw in linked:
             fact = facts.get(raw) or self._remember(raw)
             if type(fact) is str or source == fact[1]:
                 continue
             key, partition = places.get(fact[1]) or self._place(fact[1])
-            batch = batches.get(partition)
-            if batch is None:
-                batch = batches[partition] = PartitionBatch()
-            self._link_hosts(batch, key, source, key_mode)
+            source_key = source if key_mode == "host" else self._key(source)
+            if source_key != key:
+                links.setdefault(source_key, {})[key] = partition
+        self._link_hosts(batches, links, given)
         return batches
 
-    def _link_hosts(self, batch: PartitionBatch, key: str, source: str, key_mode: str) -> None:
-        """Record that a page of host ``source`` links to politeness key ``key``."""
-        source_key = source if key_mode == "host" else self._key(source)
-        if source_key != key:
-            linking = batch.sources.get(key)
-            if linking is None:
-                batch.sources[key] = {source_key}
-            else:
-                linking.add(source_key)
+    def _link_hosts(self, batches: dict[int, PartitionBatch], links: dict[str, dict[str, int]],
+                    given: dict[str, float]) -> None:
+        """Record the links between hosts: each target learns its linking hosts and the
+        trust each hands on, each source its out-linked hosts.
+
+        Host-level TrustRank (Gyöngyi, Garcia-Molina & Pedersen, VLDB 2004): a host hands
+        ``trust_damping`` x its trust, split over the distinct hosts it links to (the most
+        of those counted so far and those its pages link to in this call). A source's
+        trust comes with its candidates, or from its lease taken by this store; unknown,
+        it hands on nothing (its link still counts, untrusted, for the target's budget).
+        """
+        prio = self.store.settings.priority
+        damping, threshold = prio.trust_damping, prio.vouch_threshold
+        parts = self.partitions
+        for source_key, targets in links.items():
+            known = self.store.leased_trust(source_key)
+            trust = given.get(source_key, known[0] if known else None)
+            out_degree = max(TRUST_SPLIT_MIN_HOSTS, len(targets), known[1] if known else 0)
+            # only a trusted host hands trust on (a farm cannot raise itself)
+            share = damping * trust / out_degree if trust and trust >= threshold else 0.0
+            trusted = None if trust is None else trust >= threshold
+            for key, partition in targets.items():
+                batch = batches.get(partition)
+                if batch is None:
+                    batch = batches[partition] = PartitionBatch()
+                linking = batch.sources.get(key)
+                if linking is None:
+                    batch.sources[key] = {source_key: (share, trusted)}
+                else:
+                    linking[source_key] = (share, trusted)
+            p = partition_of(source_key, parts)
+            batch = batches.get(p)
+            if batch is None:
+                batch = batches[p] = PartitionBatch()
+            batch.out_links.setdefault(source_key, set()).update(targets)
 
     def _remember(self, raw: str) -> tuple[str, str, int] | str:
         facts = self._facts

@@ -130,6 +130,16 @@ class PartitionKeys:
         """LIST: a blocked host's cold list, set aside until it is unblocked."""
         return f"{self.tag}:held-cold:{host}"
 
+    def out_hosts(self, host: str) -> str:
+        """HyperLogLog of the other hosts this host's fetched pages link to (reciprocal
+        links: Wu & Davison, WWW 2005)."""
+        return f"{self.tag}:out-hosts:{host}"
+
+    def trusted_hosts(self, host: str) -> str:
+        """HyperLogLog of the trusted hosts that link to this host (budget growth by the
+        reputation of the linking hosts)."""
+        return f"{self.tag}:trusted-in:{host}"
+
 
 @dataclass(frozen=True)
 class Keys:

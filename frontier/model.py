@@ -66,6 +66,9 @@ class Candidate(NamedTuple):
     credit: float = 0.0  # cash added if the URL already waits in its host's queue
     source_host: str | None = None  # the host of the page that links here
     hops: int = 0  # redirects in a row that led here (0 for a link or a seed)
+    # the trust of the source host as its lease gave it (0 for a suspect); None: the trust
+    # the store saw when this process leased that host, or none known
+    source_trust: float | None = None
 
 
 @dataclass(frozen=True, slots=True)
@@ -78,12 +81,30 @@ class Lease:
     score: int
     attempts: int
     expires_ms: int
-    member: str  # the lease as stored: 'id\nhost\nscore\nattempts\nurl'
+    member: str  # the lease as stored: 'id\nhost\nscore\nattempts\ntrust\nurl'
+    trust: float | None = None  # the host's trust when leased (None: not tracked)
+    suspect: bool = False  # the host was a link-spam suspect when leased
+    out_hosts: int = 0  # distinct other hosts its fetched pages linked to, when leased
 
     @classmethod
     def from_member(cls, member: str, expires_ms: int) -> Lease:
-        lid, host, score, attempts, url = member.split("\n", 4)
-        return cls(lid, host, url, int(score), int(attempts), expires_ms, member)
+        """Parse a lease; the trust field is 'T/O' (T: trust, 'x' for a suspect, '-' for
+        none; O: out-linked hosts). A member of the older five-field form has none."""
+        parts = member.split("\n", 5)
+        if len(parts) == 5:
+            lid, host, score, attempts, url = parts
+            return cls(lid, host, url, int(score), int(attempts), expires_ms, member)
+        lid, host, score, attempts, signal, url = parts
+        trust, _, out = signal.partition("/")
+        suspect = trust == "x"
+        value = None if trust in ("-", "") else 0.0 if suspect else float(trust)
+        return cls(lid, host, url, int(score), int(attempts), expires_ms, member,
+                   value, suspect, int(out or 0))
+
+    @property
+    def passes_trust(self) -> float | None:
+        """The trust links from this host carry (0 from a suspect; None: not tracked)."""
+        return 0.0 if self.suspect else self.trust
 
     @property
     def partition(self) -> int:

@@ -172,6 +172,39 @@ class PrioritySettings(_Part):
     trap_depth: int = Field(default=8, ge=1, description="path segments beyond which a URL is penalised")
     trap_length: int = Field(default=200, ge=16, description="URL length beyond which a URL is penalised")
     trap_penalty: float = Field(default=0.05, gt=0, le=1, description="cash factor per trap sign")
+    # link spam (docs/priority.md "Link spam"): host trust from the seeds (TrustRank,
+    # Gyöngyi, Garcia-Molina & Pedersen, VLDB 2004), reciprocal links (Wu & Davison, WWW 2005)
+    trust_damping: float = Field(
+        default=0.85, gt=0, le=1, description="share of a host's trust its out-links hand on (TrustRank's beta)"
+    )
+    trust_threshold: float = Field(
+        default=0.25, gt=0, le=1, description="trust below which a host is untrusted: crawled slowly, "
+        "a suspect if it also has reciprocal links, and its links earn less budget"
+    )
+    vouch_threshold: float = Field(
+        default=0.05, gt=0, le=1, description="trust from which a host's links hand trust on and "
+        "count as trusted for the budgets and the reciprocal-link test"
+    )
+    reciprocal_hosts: int = Field(
+        default=3, ge=1, description="hosts that both link to and are linked from an untrusted host "
+        "that make it a link-spam suspect"
+    )
+    reciprocal_ratio: float = Field(
+        default=3.0, ge=0, description="an untrusted host is a suspect when its reciprocal hosts "
+        "outnumber this many times its trusted one-way linking hosts"
+    )
+    host_budget_per_untrusted_host: int = Field(
+        default=5, ge=0, description="more URLs per distinct untrusted host linking in"
+    )
+    suspect_penalty: float = Field(
+        default=0.001, gt=0, le=1, description="priority factor of a suspect (and the floor for untrusted hosts)"
+    )
+    suspect_delay_s: float = Field(
+        default=30.0, ge=0, description="at least this long between fetches of a link-spam suspect"
+    )
+    untrusted_delay_s: float = Field(
+        default=5.0, ge=0, description="at least this long between fetches of an untrusted host"
+    )
 
 
 class OutputSettings(_Part):

@@ -40,6 +40,7 @@ LEASE_ROUNDS = 2
 COLD_SCAN_CHUNK = 1000  # cold-list entries read per call when looking for one URL
 COLD_SCAN_LIMIT = 200_000  # entries of one cold list searched before giving up
 RELEASE = "release"  # the complete script's outcome for a lease handed back unfinished
+TRUST_MEMO_SIZE = 100_000  # leased hosts whose trust this store remembers for admission
 
 
 def _text(value: Any) -> str:
@@ -78,6 +79,19 @@ def _control_value(action: str, value: Any) -> str:
     if action == "delay" and math.isfinite(number) and abs(number) < 1e12:
         return str(round(number * 1000))
     return repr(number)
+
+
+def _linking_args(args: list[Any],
+                  linking: dict[str, tuple[float, bool | None]] | None) -> None:
+    """The admit script's linking-host arguments: m, then m times (host, trust share,
+    trusted: '1', '0', or '-' for a host whose trust is not known)."""
+    if not linking:
+        args.append(0)
+        return
+    args.append(len(linking))
+    for source, (share, trusted) in linking.items():
+        args += (source, repr(share) if share > 0 else "0",
+                 "-" if trusted is None else "1" if trusted else "0")
 
 
 def now_ms(clock: Callable[[], float] = time.time) -> int:
@@ -129,10 +143,13 @@ class PartitionBatch:
     hosts: dict[str, list[QueuedUrl]] = field(default_factory=dict)  # those with URLs
     budgets: dict[str, int] = field(default_factory=dict)
     refused: list[tuple[int, str, str]] = field(default_factory=list)  # (fingerprint, reason, URL)
-    # host -> distinct other politeness keys whose pages link to it in this batch (a host
-    # with no URLs here, linked to only by pages fetched already, is a link-only host)
-    sources: dict[str, set[str]] = field(default_factory=dict)
+    # host -> {other politeness key whose pages link to it in this batch: (the trust share
+    # that link hands on, whether the linking host is trusted)}; a host with no URLs here,
+    # linked to only by pages fetched already, is a link-only host
+    sources: dict[str, dict[str, tuple[float, bool | None]]] = field(default_factory=dict)
     seeded: set[str] = field(default_factory=set)  # hosts of seeds in this batch
+    # politeness key of this partition -> the other keys its fetched pages link to
+    out_links: dict[str, set[str]] = field(default_factory=dict)
 
     def __len__(self) -> int:
         """URLs in the batch."""
@@ -183,6 +200,8 @@ class FrontierStore:
         self.scripts = Scripts.register(redis)
         self._next_partition = 0
         self._offset_ms = 0  # server clock - local clock, once synced
+        # politeness key -> (trust its links hand on, out-linked hosts), as last leased here
+        self._leased_trust: dict[str, tuple[float, int]] = {}
         self._synced_at: float | None = None  # time.monotonic() of the last sync
 
     @property
@@ -230,6 +249,21 @@ class FrontierStore:
     def bucket_of(self, fingerprint: int) -> int:
         return fingerprint % self.buckets
 
+    def leased_trust(self, key: str) -> tuple[float, int] | None:
+        """(trust its links hand on, distinct out-linked hosts) of a politeness key as this
+        store last leased it, or None (not leased here, or its trust is not tracked)."""
+        return self._leased_trust.get(key)
+
+    def _remember_trust(self, leases: Iterable[Lease]) -> None:
+        memo = self._leased_trust
+        for lease in leases:
+            passes = lease.passes_trust
+            if passes is None:
+                continue
+            if len(memo) >= TRUST_MEMO_SIZE:
+                memo.clear()
+            memo[lease.host] = (passes, lease.out_hosts)
+
     # -- admit ---------------------------------------------------------------------------
 
     async def admit_batches(
@@ -251,10 +285,15 @@ class FrontierStore:
         pk = self.keys.part(partition)
         keys: list[str] = [pk.counts, pk.reasons, pk.due, pk.ready, pk.prio, pk.claims, pk.hosts]
         prio = self.settings.priority
-        sources, seeded = batch.sources, batch.seeded
+        sources, seeded, out_links = batch.sources, batch.seeded, batch.out_links
         link_only = [host for host in sources if host not in batch.hosts]
         args: list[Any] = [now, self.settings.store.hot_capacity, len(batch.hosts), len(batch.refused),
-                           prio.host_budget_base, prio.host_budget_per_linking_host, len(link_only)]
+                           prio.host_budget_base, prio.host_budget_per_linking_host, len(link_only),
+                           len(out_links), prio.host_budget_per_untrusted_host,
+                           repr(prio.trust_threshold), prio.reciprocal_hosts,
+                           repr(prio.suspect_penalty), repr(prio.reciprocal_ratio)]
+        for host, targets in out_links.items():
+            args += (len(targets), *targets)
         slots: dict[int, int] = {}  # seen bucket -> its 1-based place among the seen keys
         buckets = self.buckets
 
@@ -267,17 +306,22 @@ class FrontierStore:
 
         default_budget = self.settings.budget.max_pages_per_host or 0
         for host, items in batch.hosts.items():
-            keys += (pk.host(host), pk.hot(host), pk.cold(host), pk.linking_hosts(host))
-            linking = sources.get(host, ())
-            args += (host, batch.budgets.get(host, default_budget), 1 if host in seeded else 0,
-                     len(linking), *linking, len(items))
+            keys += (pk.host(host), pk.hot(host), pk.cold(host), pk.linking_hosts(host),
+                     pk.out_hosts(host), pk.trusted_hosts(host))
+            linking = sources.get(host)
+            args += (host, batch.budgets.get(host, default_budget), 1 if host in seeded else 0)
+            _linking_args(args, linking)
+            args.append(len(items))
             for url, fp, score, credit in items:
                 b = fp % buckets
                 args += (slots.get(b) or slot(fp), fp, score, credit, url)
         for host in link_only:  # only links to pages fetched already: count the links
-            keys.append(pk.linking_hosts(host))
-            linking = sources[host]
-            args += (len(linking), *linking)
+            keys += (pk.host(host), pk.linking_hosts(host), pk.out_hosts(host),
+                     pk.trusted_hosts(host))
+            _linking_args(args, sources[host])
+        for host in out_links:
+            keys += (pk.host(host), pk.linking_hosts(host), pk.out_hosts(host),
+                     pk.trusted_hosts(host))
         for fp, reason, url in batch.refused:
             args += (slot(fp), fp, reason, url.encode("utf-8", "replace"))
         keys += [pk.seen(b) for b in slots]  # dicts keep insertion order: slot i is key i
@@ -316,10 +360,11 @@ class FrontierStore:
                     (chosen if i < want else spare).setdefault(p, []).append(host)
                 expires = t + int(self.settings.lease.ttl_s * 1000)
                 got = await run_many(self.redis, [
-                    *(self._take_call(p, hosts, expires) for p, hosts in chosen.items()),
+                    *(self._take_call(p, hosts, expires, t) for p, hosts in chosen.items()),
                     *(self._unclaim_call(p, hosts) for p, hosts in spare.items())])
                 for members in got[:len(chosen)]:
                     leases += [Lease.from_member(m.decode(), expires) for m in members]
+                self._remember_trust(leases)
                 parts = [p for p, hosts in zip(parts, picked) if len(hosts) == ask]
         return leases
 
@@ -336,13 +381,17 @@ class FrontierStore:
         pk = self.keys.part(partition)
         return (self.scripts.unclaim, [pk.ready, pk.claims, pk.prio], list(hosts))
 
-    def _take_call(self, partition: int, hosts: Sequence[str], expires: int) -> ScriptCall:
+    def _take_call(self, partition: int, hosts: Sequence[str], expires: int,
+                   now: int) -> ScriptCall:
         pk = self.keys.part(partition)
-        keys = [pk.counts, pk.claims, pk.leases, pk.attempts, pk.prio]
+        prio = self.settings.priority
+        keys = [pk.counts, pk.claims, pk.leases, pk.attempts, pk.prio, pk.due]
         for h in hosts:
-            keys += (pk.host(h), pk.hot(h), pk.cold(h))
+            keys += (pk.host(h), pk.hot(h), pk.cold(h), pk.out_hosts(h))
         return (self.scripts.lease_take, keys,
-                [expires, partition, len(hosts), self.settings.store.hot_capacity, *hosts])
+                [expires, partition, len(hosts), self.settings.store.hot_capacity, now,
+                 int(prio.suspect_delay_s * 1000), int(prio.untrusted_delay_s * 1000),
+                 repr(prio.trust_threshold), *hosts])
 
     # -- complete and reap ---------------------------------------------------------------
 
@@ -625,7 +674,7 @@ class FrontierStore:
             out["lease"] = None
             for member, expiry in await r.zrange(pk.leases, 0, -1, withscores=True):
                 text = member.decode() if isinstance(member, bytes) else member
-                if text.split("\n", 4)[-1] == url:
+                if text.rsplit("\n", 1)[-1] == url:
                     out["lease"] = Lease.from_member(text, int(expiry))
             attempts = await r.hget(pk.attempts, url)
             out["attempts"] = int(attempts) if attempts is not None else 0

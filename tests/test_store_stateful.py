@@ -189,7 +189,7 @@ class FrontierMachine(RuleBasedStateMachine):
                     for item in await self.client.lrange(cold, 0, -1):
                         places.setdefault(_text(item).split(" ", 1)[1], []).append(name)
             for member in await self.client.zrange(pk.leases, 0, -1):
-                places.setdefault(_text(member).split("\n", 4)[4], []).append("leased")
+                places.setdefault(_text(member).rsplit("\n", 1)[1], []).append("leased")
             for url in await self.client.hkeys(pk.dead):
                 places.setdefault(_text(url), []).append("dead")
         return places

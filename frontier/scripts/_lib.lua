@@ -92,10 +92,12 @@ local function queue_length(hot, cold)
 end
 
 -- Put a host where it belongs: due (waiting for its time) or ready (time has come),
--- unless it is paused, blocked, leased, claimed, or has nothing queued.
+-- unless it is paused, blocked, leased, claimed, or has nothing queued. Its priority is
+-- its best score x the operator's boost x its trust factor 'pf' (admit.lua: 1 for a
+-- trusted host, less for an untrusted one, the suspect penalty for a link-spam suspect).
 -- S = {due=, ready=, prio=, claims=}
 local function schedule(S, host, hk, hot, cold, cap, now)
-  local f = redis.call('HMGET', hk, 'state', 'lease', 'boost', 'next')
+  local f = redis.call('HMGET', hk, 'state', 'lease', 'boost', 'next', 'pf')
   if f[1] ~= 'active' or f[2] then
     return
   end
@@ -109,7 +111,7 @@ local function schedule(S, host, hk, hot, cold, cap, now)
     redis.call('HDEL', S.prio, host)
     return
   end
-  local p = tonumber(score) * tonumber(f[3] or '1')
+  local p = tonumber(score) * tonumber(f[3] or '1') * tonumber(f[5] or '1')
   redis.call('HSET', S.prio, host, p)
   if redis.call('ZSCORE', S.ready, host) then
     redis.call('ZADD', S.ready, p, host)
@@ -179,13 +181,16 @@ local function retry_or_bury(C, hk, hot, cold, url, score, reason, cap, max_atte
   return 'requeued'
 end
 
--- A lease is one member of the leases ZSET (score: expiry), 'id\nhost\nscore\nattempts\nurl';
--- the worker holds the same string, so completing needs no second lookup.
+-- A lease is one member of the leases ZSET (score: expiry),
+-- 'id\nhost\nscore\nattempts\ntrust\nurl' (trust: 'T/O', see lease_take; a member of the
+-- older form has no trust field); the worker holds the same string, so completing needs no
+-- second lookup. Returns host, score, attempts, url.
 local function parse_lease(member)
   local a = string.find(member, '\n', 1, true)
   local b = string.find(member, '\n', a + 1, true)
   local c = string.find(member, '\n', b + 1, true)
   local d = string.find(member, '\n', c + 1, true)
+  local e = string.find(member, '\n', d + 1, true)
   return string.sub(member, a + 1, b - 1), string.sub(member, b + 1, c - 1),
-         string.sub(member, c + 1, d - 1), string.sub(member, d + 1)
+         string.sub(member, c + 1, d - 1), string.sub(member, (e or d) + 1)
 end

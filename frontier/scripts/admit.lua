@@ -2,25 +2,40 @@
 -- KEYS[1] counts   KEYS[2] reasons   KEYS[3] due   KEYS[4] ready   KEYS[5] prio
 -- KEYS[6] claims   KEYS[7] hosts
 -- KEYS[8 ..]       per host group g (0-based): host hash, hot ZSET, cold LIST,
---                  linking-hosts HyperLogLog (4 keys)
--- then             per link-only host: its linking-hosts HyperLogLog (1 key)
+--                  linking-hosts HyperLogLog, out-hosts HLL, trusted-linking-hosts HLL (6 keys)
+-- then             per link-only host: host hash, linking-hosts, out-hosts, trusted HLLs (4 keys)
+-- then             per source host: host hash, linking-hosts, out-hosts, trusted HLLs (4 keys)
 -- then             the URL-seen buckets this batch touches
 -- KEYS[#KEYS]      the ended journal (URLs excluded here)
 -- ARGV[1] now (ms)  ARGV[2] hot capacity  ARGV[3] number of host groups  ARGV[4] excluded count
--- ARGV[5] budget base  ARGV[6] budget per linking host  ARGV[7] number of link-only hosts
+-- ARGV[5] budget base  ARGV[6] budget per trusted linking host  ARGV[7] number of link-only
+-- hosts  ARGV[8] number of source hosts  ARGV[9] budget per untrusted linking host
+-- ARGV[10] trust threshold  ARGV[11] reciprocal hosts that make a suspect
+-- ARGV[12] suspect penalty (priority factor)  ARGV[13] reciprocal ratio
+-- then per source host (whose fetched pages link out in this batch): k, k linked hosts
 -- then per group:  host, absolute budget (0: none), seeded (1: a seed of this host is in
---                  the batch), m, m linking hosts (other hosts whose pages link here), n,
+--                  the batch), m, m times (linking host, trust share, trusted 1|0), n,
 --                  and n times: seen slot, fingerprint, score, credit, url
--- then per link-only host (only links to pages fetched already): m, m linking hosts
+-- then per link-only host (only links to pages fetched already): m, m (host, share, trusted)
 -- then per excluded URL: seen slot, fingerprint, reason, url
 -- (a seen slot is a 1-based index into the seen-bucket part of KEYS)
 -- A new URL is queued on its host (or excluded: host blocked, host budget spent); a URL
 -- seen before that still waits in its host's hot window gains `credit` (OPIC cash).
--- Budgets (Lee, Leonard, Wang & Loguinov, WWW 2008): a host may hold
--- base + per x (distinct linking hosts) URLs, and never more than its absolute budget.
--- A host that had a seed is vouched for by the operator: only the absolute budget applies.
--- A URL beyond the earned budget is excluded ('host_link_budget') but not remembered as
--- seen, so it may be admitted when offered again after more hosts link to its host.
+-- Budgets (Lee, Leonard, Wang & Loguinov, WWW 2008), weighted by the linking hosts'
+-- reputation: a host may hold base + per x (distinct trusted linking hosts) + per_untrusted
+-- x (the other linking hosts) URLs, and never more than its absolute budget; a link-spam
+-- suspect earns nothing beyond base. A host that had a seed is vouched for by the
+-- operator: only the absolute budget applies. A URL beyond the earned budget is excluded
+-- ('host_link_budget') but not remembered as seen, so it may be admitted when offered
+-- again after more hosts link to its host.
+-- Link spam (docs/priority.md): a host's 'trust' is host-level TrustRank (Gyongyi,
+-- Garcia-Molina & Pedersen, VLDB 2004) computed online: a seed's host holds 1; each
+-- distinct linking host adds the share its lease gave (damping x its trust / its out-linked
+-- hosts, worked out by admission), once, up to 1. A host below the trust threshold that
+-- has at least `reciprocal` hosts both linking to it and linked from it (Wu & Davison,
+-- WWW 2005), more than `ratio` times its trusted one-way linkers, is a 'suspect'. The operator's mark ('trusted' / 'untrusted') overrules both.
+-- 'pf', the host's priority factor: 1 when trusted, trust / threshold when untrusted (at
+-- least the penalty), the penalty for a suspect.
 -- Returns {new, credited, excluded, duplicates}.
 local now = tonumber(ARGV[1])
 local cap = tonumber(ARGV[2])
@@ -28,10 +43,16 @@ local ngroups = tonumber(ARGV[3])
 local nexcl = tonumber(ARGV[4])
 local base, per = tonumber(ARGV[5]), tonumber(ARGV[6])
 local nlinked = tonumber(ARGV[7])
-local seen_base = 7 + 4 * ngroups + nlinked
+local nsources = tonumber(ARGV[8])
+local per_weak, threshold = tonumber(ARGV[9]), tonumber(ARGV[10])
+local reciprocal, penalty, ratio = tonumber(ARGV[11]), ARGV[12], tonumber(ARGV[13])
+local linked_base = 7 + 6 * ngroups
+local sources_base = linked_base + 4 * nlinked
+local seen_base = sources_base + 4 * nsources
 local S = {due = KEYS[3], ready = KEYS[4], prio = KEYS[5], claims = KEYS[6]}
 local ended = KEYS[#KEYS]
 local new, credited, excluded, dups = 0, 0, 0, 0
+local a = 14
 local reasons = {}
 local journaled = {}  -- 'excluded reason url' lines for the ended journal
 
@@ -43,13 +64,15 @@ end
 
 -- The URLs this host may hold now, and whether that limit is earned (may still grow).
 -- `wanted`: the most URLs the host can hold after this batch (no count needed below base).
-local function host_limit(budget, linking, wanted, seeded)
+local function host_limit(budget, linking, trusted, wanted, seeded, suspect)
   if base == 0 or seeded or wanted <= base then
     return budget, false
   end
   local earned = base
-  if per > 0 then
-    earned = base + per * redis.call('PFCOUNT', linking)
+  if not suspect and (per > 0 or per_weak > 0) then
+    local all = redis.call('PFCOUNT', linking)
+    local good = math.min(all, redis.call('PFCOUNT', trusted))
+    earned = base + per * good + per_weak * (all - good)
   end
   if budget > 0 and budget <= earned then
     return budget, false
@@ -57,23 +80,122 @@ local function host_limit(budget, linking, wanted, seeded)
   return earned, true
 end
 
-local function add_linking(linking, from, m)
-  for i = from, from + m - 1, 1000 do
-    redis.call('PFADD', linking, unpack(ARGV, i, math.min(i + 999, from + m - 1)))
+-- Record m linking hosts (ARGV[from ..]: host, trust share, trusted '1' | '0' | '-' for a
+-- host whose trust is not known) of host hash `hk`: each new one (the HyperLogLog changed)
+-- adds its share to the host's trust, once; a trusted one (or one of unknown trust, as
+-- before trust was tracked) joins the trusted-linking-hosts count. A host starts tracking
+-- trust (at 0) when a host of known trust links to it.
+local function add_linking(hk, linking, trusted, from, m)
+  local gain, best, best_from, known = 0, 0, nil, false
+  local good = {}
+  for i = from, from + 3 * (m - 1), 3 do
+    local source, share, flag = ARGV[i], tonumber(ARGV[i + 1]), ARGV[i + 2]
+    if redis.call('PFADD', linking, source) == 1 and share > 0 then
+      gain = gain + share
+      if share > best then
+        best, best_from = share, source
+      end
+    end
+    if flag ~= '0' then
+      good[#good + 1] = source
+    end
+    known = known or flag ~= '-'
+  end
+  if #good > 0 then
+    redis.call('PFADD', trusted, unpack(good))
+  end
+  if not hk or not known then
+    return
+  end
+  local f = redis.call('HMGET', hk, 'trust', 'state', 'seeded', 'mark', 'tbest')
+  if not f[2] or f[3] or f[4] then  -- unknown host, a seed's or marked by the operator
+    return
+  end
+  local t = tonumber(f[1] or '0')
+  if gain == 0 or t >= 1 then
+    if not f[1] then
+      redis.call('HSET', hk, 'trust', '0')
+    end
+    return
+  end
+  local fields = {'trust', tostring(math.min(1, t + gain))}
+  if best > tonumber(f[5] or '0') then
+    fields[3], fields[4], fields[5], fields[6] = 'tbest', tostring(best), 'tfrom', best_from
+  end
+  redis.call('HSET', hk, unpack(fields))
+end
+
+-- Decide whether a host is a link-spam suspect and set its priority factor 'pf'; returns
+-- true if 'pf' changed. Hosts never linked (no 'trust' field) keep no factor. A suspect:
+-- untrusted, at least `reciprocal` hosts both link to it and are linked from it (R), and
+-- those exchanges outnumber `ratio` times its trusted one-way linkers (trusted linking
+-- hosts it does not link back to: |trusted U out| - |out|).
+local function assess(hk, linking, out, trusted)
+  local f = redis.call('HMGET', hk, 'trust', 'seeded', 'mark', 'pf', 'state')
+  if not f[1] or not f[5] then
+    return false
+  end
+  local t = tonumber(f[1])
+  local suspect, recip = false, nil
+  if f[3] == 'untrusted' then
+    suspect = true
+  elseif f[3] ~= 'trusted' and not f[2] and t < threshold then
+    local ins = redis.call('PFCOUNT', linking)
+    if ins >= reciprocal then
+      local outs = redis.call('PFCOUNT', out)
+      if outs >= reciprocal then
+        recip = ins + outs - redis.call('PFCOUNT', linking, out)
+        if recip >= reciprocal then
+          local endorsed = redis.call('PFCOUNT', trusted, out) - outs
+          suspect = recip > ratio * endorsed
+        end
+      end
+    end
+  end
+  local pf
+  if suspect then
+    pf = penalty
+  elseif f[3] == 'trusted' or f[2] or t >= threshold then
+    pf = '1'
+  else
+    pf = tostring(math.max(tonumber(penalty), t / threshold))
+  end
+  local fields = {'pf', pf}
+  if recip then
+    fields[3], fields[4] = 'recip', recip
+  end
+  redis.call('HSET', hk, unpack(fields))
+  if suspect then
+    redis.call('HSET', hk, 'suspect', '1')
+  else
+    redis.call('HDEL', hk, 'suspect')
+  end
+  return pf ~= f[4]
+end
+
+-- Source hosts: their pages link to these hosts (the out-hosts side of reciprocity).
+for s = 0, nsources - 1 do
+  local k = tonumber(ARGV[a])
+  local k0 = sources_base + 4 * s
+  local hk, linking, out, trusted = KEYS[k0 + 1], KEYS[k0 + 2], KEYS[k0 + 3], KEYS[k0 + 4]
+  local changed = 0
+  for i = a + 1, a + k, 1000 do
+    changed = changed + redis.call('PFADD', out, unpack(ARGV, i, math.min(i + 999, a + k)))
+  end
+  a = a + 1 + k
+  if changed > 0 then
+    assess(hk, linking, out, trusted)  -- a leased or scheduled host takes its new factor when placed
   end
 end
 
-local a = 8
 for g = 0, ngroups - 1 do
   local host, budget, seed, m = ARGV[a], tonumber(ARGV[a + 1]), ARGV[a + 2], tonumber(ARGV[a + 3])
   a = a + 4
-  local hk, hot, cold, linking = KEYS[8 + 4 * g], KEYS[9 + 4 * g], KEYS[10 + 4 * g], KEYS[11 + 4 * g]
-  add_linking(linking, a, m)
-  a = a + m
-  local n = tonumber(ARGV[a])
-  a = a + 1
-  local f = redis.call('HMGET', hk, 'state', 'admitted', 'seeded')
-  local state, admitted, seeded = f[1], tonumber(f[2] or '0'), f[3]
+  local k0 = 7 + 6 * g
+  local hk, hot, cold = KEYS[k0 + 1], KEYS[k0 + 2], KEYS[k0 + 3]
+  local linking, out, trusted = KEYS[k0 + 4], KEYS[k0 + 5], KEYS[k0 + 6]
+  local f = redis.call('HMGET', hk, 'state', 'admitted', 'seeded', 'suspect')
+  local state, admitted, seeded, suspect = f[1], tonumber(f[2] or '0'), f[3], f[4]
   if not state then
     state = 'active'
     redis.call('HSET', hk, 'state', state, 'boost', '1')
@@ -81,11 +203,23 @@ for g = 0, ngroups - 1 do
   end
   if seed == '1' and not seeded then
     seeded = '1'
-    redis.call('HSET', hk, 'seeded', seeded)
+    redis.call('HSET', hk, 'seeded', seeded, 'trust', '1', 'tfrom', 'seed', 'pf', '1')
+    redis.call('HDEL', hk, 'suspect')
+    suspect = nil
   end
-  local limit, earned = host_limit(budget, linking, admitted + n, seeded)
+  local reschedule = false  -- the host's best score (or its factor) may have changed, or it was idle
+  if m > 0 then
+    add_linking(hk, linking, trusted, a, m)
+    if assess(hk, linking, out, trusted) then
+      reschedule = true
+    end
+    suspect = redis.call('HGET', hk, 'suspect')
+  end
+  a = a + 3 * m
+  local n = tonumber(ARGV[a])
+  a = a + 1
+  local limit, earned = host_limit(budget, linking, trusted, admitted + n, seeded, suspect)
   local changed = false  -- something was queued or credited: the host's counters change
-  local reschedule = false  -- the host's best score may have risen, or it was idle
   local q = nil
   local prior_best = nil  -- best score before this batch (nil: the host queued nothing)
   for _ = 1, n do
@@ -145,8 +279,16 @@ end
 
 for l = 0, nlinked - 1 do
   local m = tonumber(ARGV[a])
-  add_linking(KEYS[8 + 4 * ngroups + l], a + 1, m)
-  a = a + 1 + m
+  local k0 = linked_base + 4 * l
+  local hk = KEYS[k0 + 1]
+  if redis.call('EXISTS', hk) == 0 then
+    hk = nil
+  end
+  add_linking(hk, KEYS[k0 + 2], KEYS[k0 + 4], a + 1, m)
+  if hk then
+    assess(hk, KEYS[k0 + 2], KEYS[k0 + 3], KEYS[k0 + 4])
+  end
+  a = a + 1 + 3 * m
 end
 
 for _ = 1, nexcl do

@@ -42,7 +42,7 @@ for i = 0, n - 1 do
     local host, score, attempts, url = parse_lease(member)
     ended[#ended + 1] = member
     ended[member] = true
-    local f = redis.call('HMGET', hk, 'delay_ms', 'crawl_ms', 'boost', 'state', 'fetched')
+    local f = redis.call('HMGET', hk, 'delay_ms', 'crawl_ms', 'boost', 'state', 'fetched', 'pf')
     local fetched = tonumber(f[5] or '0')
     if outcome == 'release' then
       if f[4] == 'blocked' then
@@ -74,7 +74,8 @@ for i = 0, n - 1 do
     redis.call('HSET', hk, 'next', next_ms, 'rt_ms', rt, 'crawl_ms', f[2] or '0', 'fetched', fetched)
     redis.call('HDEL', hk, 'lease')
     if f[4] == 'active' then
-      schedule_released(released, host, hot, cold, cap, f[3], next_ms)
+      schedule_released(released, host, hot, cold, cap, tonumber(f[3] or '1') * tonumber(f[6] or '1'),
+                        next_ms)
     end
     out[#out + 1] = 'ok'
   end

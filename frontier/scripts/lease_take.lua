@@ -1,33 +1,72 @@
 -- lease_take: lease the best URL of each host claimed by lease_pick.
 -- KEYS[1] counts   KEYS[2] claims   KEYS[3] leases   KEYS[4] attempts   KEYS[5] prio
--- KEYS[6 ..] per host i (0-based): host hash, hot ZSET, cold LIST (3 keys)
+-- KEYS[6] due
+-- KEYS[7 ..] per host i (0-based): host hash, hot ZSET, cold LIST, out-hosts HLL (4 keys)
 -- ARGV[1] lease expiry (ms)  ARGV[2] partition index  ARGV[3] n  ARGV[4] hot capacity
--- ARGV[5 ..] the n hosts
+-- ARGV[5] now (ms)  ARGV[6] gap between fetches of a suspect (ms)
+-- ARGV[7] gap between fetches of an untrusted host (ms)  ARGV[8] trust threshold
+-- ARGV[9 ..] the n hosts
 -- A host is leased only if its claim is still held, it is active and holds no lease: so
 -- at most one lease per politeness key exists at any time.
--- Returns the lease members ('id\nhost\nscore\nattempts\nurl'), one per lease.
+-- Link spam (docs/priority.md): a host whose trust is below the threshold (admit.lua) is
+-- leased at most once per untrusted gap, a link-spam suspect once per suspect gap (the
+-- budget enforcement of IRLbot, Lee et al. WWW 2008, slows such hosts rather than drop
+-- them): the gap counts from its last lease ('tlease'), by its standing now; a host held
+-- back goes to due at its next allowed time. Seeds' hosts and hosts the operator marked
+-- trusted are never held back.
+-- Returns the lease members ('id\nhost\nscore\nattempts\ntrust\nurl'), one per lease. The
+-- trust field is 'T/O': T the host's trust ('x' for a suspect, '-' for a host whose trust
+-- is not tracked), O the distinct other hosts its fetched pages linked to so far.
 local n = tonumber(ARGV[3])
+local now = tonumber(ARGV[5])
+local suspect_gap, untrusted_gap = tonumber(ARGV[6]), tonumber(ARGV[7])
+local threshold = tonumber(ARGV[8])
 local out = {}
 local held = {}
 local seq = redis.call('HINCRBY', KEYS[1], 'lease_seq', n) - n
 local retried = redis.call('HLEN', KEYS[4]) > 0
 for i = 0, n - 1 do
-  local host = ARGV[5 + i]
-  local hk, hot, cold = KEYS[6 + 3 * i], KEYS[7 + 3 * i], KEYS[8 + 3 * i]
+  local host = ARGV[9 + i]
+  local hk, hot, cold, outs = KEYS[7 + 4 * i], KEYS[8 + 4 * i], KEYS[9 + 4 * i], KEYS[10 + 4 * i]
   if redis.call('ZREM', KEYS[2], host) == 1 then
-    local f = redis.call('HMGET', hk, 'state', 'lease')
+    local f = redis.call('HMGET', hk, 'state', 'lease', 'trust', 'suspect', 'tlease', 'seeded', 'mark')
     if f[1] == 'active' and not f[2] then
-      local url, score = pop_best(hot, cold, tonumber(ARGV[4]))
+      local gap = 0
+      local trust = f[3]
+      if trust and not f[6] and f[7] ~= 'trusted' then
+        if f[4] then
+          gap = suspect_gap
+        elseif tonumber(trust) < threshold then
+          gap = untrusted_gap
+        end
+      end
+      local allowed = tonumber(f[5] or '0') + gap  -- by the host's standing now
+      local wait = gap > 0 and allowed > now
+      local url, score = nil, nil
+      if wait then
+        redis.call('ZADD', KEYS[6], allowed, host)  -- back to due at its time
+      else
+        url, score = pop_best(hot, cold, tonumber(ARGV[4]))
+      end
       if url then
         seq = seq + 1
         local id = ARGV[2] .. '-' .. seq
         local attempts = retried and redis.call('HGET', KEYS[4], url) or '0'
-        local member = id .. '\n' .. host .. '\n' .. score .. '\n' .. attempts .. '\n' .. url
+        local signal = '-/0'
+        if trust then
+          signal = (f[4] and 'x' or trust) .. '/' .. redis.call('PFCOUNT', outs)
+        end
+        local member = id .. '\n' .. host .. '\n' .. score .. '\n' .. attempts .. '\n' .. signal
+                       .. '\n' .. url
         held[#held + 1] = ARGV[1]
         held[#held + 1] = member
-        redis.call('HSET', hk, 'lease', id)
+        if trust then
+          redis.call('HSET', hk, 'lease', id, 'tlease', now)
+        else
+          redis.call('HSET', hk, 'lease', id)
+        end
         out[#out + 1] = member
-      else
+      elseif not wait then
         redis.call('HDEL', KEYS[5], host)
       end
     end
