@@ -29,7 +29,8 @@ from frontier.urls import MAX_HOST_LENGTH, canonicalize, host_of, politeness_key
 if TYPE_CHECKING:
     from frontier.store import FrontierStore
 
-Action = Literal["pause", "resume", "block", "unblock", "boost", "delay", "clear"]
+Action = Literal["pause", "resume", "block", "unblock", "boost", "delay", "clear", "trust",
+                 "untrust"]
 HOST_ACTIONS: tuple[str, ...] = get_args(Action)
 VALUE_ACTIONS = frozenset({"boost", "delay"})  # the actions that take a value
 ListFilter = Literal["paused", "blocked", "boosted", "delayed"]
@@ -49,6 +50,8 @@ ACTION_HELP = {
     "boost": f"multiply the host's priority by VALUE ({MIN_BOOST:g} to {MAX_BOOST:g})",
     "delay": "at least VALUE seconds between fetches (0 to politeness.max_delay_s)",
     "clear": "reset the host's boost, operator delay and schedule (due now)",
+    "trust": "mark the host trusted: trust 1, never a link-spam suspect, its links vouch",
+    "untrust": "mark the host untrusted: trust 0, a link-spam suspect (slow, last in line)",
 }
 
 

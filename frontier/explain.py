@@ -67,17 +67,26 @@ def _state(facts: dict[str, Any]) -> str:
     return SEEN if facts["seen"] else UNKNOWN
 
 
-def _budget(store: FrontierStore, linking: int, admitted: int, seeded: bool) -> dict[str, Any]:
+def _budget(store: FrontierStore, linking: int, admitted: int, seeded: bool,
+            trusted: int = 0, suspect: bool = False) -> dict[str, Any]:
+    """The host's budget as the admit script works it out (frontier/scripts/admit.lua)."""
     prio = store.settings.priority
     absolute = store.settings.budget.max_pages_per_host
     earned = None
+    good = min(trusted, linking)
     if prio.host_budget_base > 0 and not seeded:
-        earned = prio.host_budget_base + prio.host_budget_per_linking_host * linking
+        earned = prio.host_budget_base
+        if not suspect:
+            earned += (prio.host_budget_per_linking_host * good
+                       + prio.host_budget_per_untrusted_host * (linking - good))
     limits = [x for x in (earned, absolute) if x is not None]
     limit = min(limits) if limits else None
     return {
         "base": prio.host_budget_base,
         "per_linking_host": prio.host_budget_per_linking_host,
+        "per_untrusted_host": prio.host_budget_per_untrusted_host,
+        "trusted_linking_hosts": good,
+        "suspect": suspect,
         "earned": earned,
         "absolute": absolute,
         "limit": limit,
@@ -106,6 +115,52 @@ def _schedule(facts: dict[str, Any], now_ms: int) -> dict[str, Any]:
         "due_ms": None if facts["due_ms"] is None else int(facts["due_ms"]),
         "due_size": facts["due_size"],
         "claimed_until_ms": None if facts["claimed_until_ms"] is None else int(facts["claimed_until_ms"]),
+    }
+
+
+def _spam(store: FrontierStore, fields: dict[str, str], counts: dict[str, int]) -> dict[str, Any]:
+    """The host's link-spam signals (docs/priority.md, "Link spam")."""
+    prio = store.settings.priority
+    tracked = "trust" in fields
+    trust = float(fields["trust"]) if tracked else None
+    mark = fields.get("mark")
+    if mark:
+        source = f"marked {mark} by the operator"
+    elif fields.get("seeded") == "1":
+        source = "a seed's host"
+    elif not tracked:
+        source = "not tracked (no link from a host of known trust)"
+    elif fields.get("tfrom"):
+        source = (f"the linking hosts' shares; the largest, {float(fields.get('tbest', 0)):.4f}, "
+                  f"from {fields['tfrom']}")
+    else:
+        source = "no trusted host links here"
+    suspect = fields.get("suspect") == "1"
+    recip = counts.get("reciprocal_hosts", 0)
+    endorsed = counts.get("trusted_one_way", 0)
+    if suspect and mark == "untrusted":
+        why = "marked untrusted by the operator"
+    elif suspect:
+        why = (f"trust below {prio.trust_threshold:g} and {recip} reciprocal hosts > "
+               f"{prio.reciprocal_ratio:g} x {endorsed} trusted one-way linking hosts")
+    else:
+        why = None
+    untrusted = tracked and trust is not None and trust < prio.trust_threshold and not (
+        mark == "trusted" or fields.get("seeded") == "1")
+    return {
+        "trust": trust,
+        "trust_source": source,
+        "mark": mark,
+        "untrusted": untrusted,
+        "suspect": suspect,
+        "suspect_because": why,
+        "reciprocal_hosts": recip,
+        "trusted_one_way_linking_hosts": endorsed,
+        "trusted_linking_hosts": counts.get("trusted_linking_hosts", 0),
+        "out_hosts": counts.get("out_hosts", 0),
+        "priority_factor": float(fields.get("pf", 1.0)),
+        "lease_gap_s": (prio.suspect_delay_s if suspect else
+                        prio.untrusted_delay_s if untrusted else 0.0),
     }
 
 
@@ -168,6 +223,8 @@ async def explain(store: FrontierStore, url: str, logs: Iterable[Path] = ()) -> 
     fields = facts["host"]
     admitted = int(fields.get("admitted", 0))
     seeded = fields.get("seeded") == "1"
+    counts = facts.get("spam", {})
+    suspect = fields.get("suspect") == "1"
     out["host_fields"] = {
         "known": bool(fields),
         "state": fields.get("state"),
@@ -177,11 +234,13 @@ async def explain(store: FrontierStore, url: str, logs: Iterable[Path] = ()) -> 
         "queued": facts["hot_size"] + facts["cold_size"],
         "linking_hosts": facts["linking_hosts"],
         "seeded": seeded,
-        "budget": _budget(store, facts["linking_hosts"], admitted, seeded),
+        "budget": _budget(store, facts["linking_hosts"], admitted, seeded,
+                          counts.get("trusted_linking_hosts", 0), suspect),
         "next_fetch_ms": int(fields["next"]) if "next" in fields else None,
         "delay_ms": int(fields.get("delay_ms", 0)),
         "crawl_delay_ms": int(fields.get("crawl_ms", 0)),
     }
+    out["spam"] = _spam(store, fields, counts)
     out["schedule"] = _schedule(facts, int(store.clock() * 1000))
     out["trap"] = {"signs": trap_signs(canonical, s.priority),
                    "factor": trap_factor(canonical, s.priority)}
@@ -225,8 +284,13 @@ def format_explain(info: dict[str, Any]) -> str:
         earned = "none (a seed's host: the operator vouches for it)"
     elif b["earned"] is None:
         earned = "off"
+    elif b["suspect"]:
+        earned = f"{b['base']} (a link-spam suspect earns nothing more)"
     else:
-        earned = f"{b['base']} + {b['per_linking_host']} x {h['linking_hosts']} = {b['earned']}"
+        good = b["trusted_linking_hosts"]
+        earned = (f"{b['base']} + {b['per_linking_host']} x {good} trusted + "
+                  f"{b['per_untrusted_host']} x {h['linking_hosts'] - good} other linking hosts"
+                  f" = {b['earned']}")
     lines += [
         f"host:     {info['politeness_key']} ({h['state'] or 'not known'}), boost x{h['boost']:g}",
         f"          admitted {h['admitted']}, fetched {h['fetched']}, queued {h['queued']}",
@@ -234,10 +298,23 @@ def format_explain(info: dict[str, Any]) -> str:
         f"budget:   earned {earned}; absolute {b['absolute'] or 'none'}; limit {limit}"
         + ("" if b["left"] is None else f", {b['left']} left"),
     ]
+    sp = info["spam"]
+    trust = "not tracked" if sp["trust"] is None else f"{sp['trust']:.4f}"
+    standing = ("a link-spam suspect: " + sp["suspect_because"] if sp["suspect"]
+                else "untrusted" if sp["untrusted"] else "trusted" if sp["trust"] is not None
+                else "no signal")
+    lines += [
+        f"trust:    {trust} ({sp['trust_source']}); {standing}",
+        f"links:    {sp['reciprocal_hosts']} reciprocal hosts, {sp['trusted_linking_hosts']} "
+        f"trusted linking hosts ({sp['trusted_one_way_linking_hosts']} not linked back), "
+        f"{sp['out_hosts']} hosts linked to",
+        f"          priority factor {sp['priority_factor']:g}"
+        + (f", at least {sp['lease_gap_s']:g} s between fetches" if sp["lease_gap_s"] else ""),
+    ]
     sch = info["schedule"]
     lines.append(f"schedule: partition {sch['partition']}: {sch['place']}")
     if sch["priority"] is not None:
-        lines.append(f"          host priority: best cash x boost = "
+        lines.append(f"          host priority: best cash x boost x trust factor = "
                      f"{sch['priority'] / (CASH_UNIT * CASH_SCALE):.6f}")
     trap = info["trap"]
     signs = ", ".join(trap["signs"]) or "none"

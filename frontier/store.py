@@ -272,7 +272,7 @@ class FrontierStore:
         """Run the admit script once per partition, all in one go."""
         t = self._now(now)
         calls = [self._admit_call(p, b, t) for p, b in batches.items()
-                 if b.hosts or b.refused or b.sources]
+                 if b.hosts or b.refused or b.sources or b.out_links]
         total = AdmitResult()
         async with redis_boundary("admit"):
             rs = self.settings.redis
@@ -293,7 +293,7 @@ class FrontierStore:
                            repr(prio.trust_threshold), prio.reciprocal_hosts,
                            repr(prio.suspect_penalty), repr(prio.reciprocal_ratio)]
         for host, targets in out_links.items():
-            args += (len(targets), *targets)
+            args += (host, len(targets), *targets)
         slots: dict[int, int] = {}  # seen bucket -> its 1-based place among the seen keys
         buckets = self.buckets
 
@@ -320,8 +320,8 @@ class FrontierStore:
                      pk.trusted_hosts(host))
             _linking_args(args, sources[host])
         for host in out_links:
-            keys += (pk.host(host), pk.linking_hosts(host), pk.out_hosts(host),
-                     pk.trusted_hosts(host))
+            keys += (pk.host(host), pk.hot(host), pk.cold(host), pk.linking_hosts(host),
+                     pk.out_hosts(host), pk.trusted_hosts(host))
         for fp, reason, url in batch.refused:
             args += (slot(fp), fp, reason, url.encode("utf-8", "replace"))
         keys += [pk.seen(b) for b in slots]  # dicts keep insertion order: slot i is key i
@@ -575,7 +575,8 @@ class FrontierStore:
         args = [self._now(now), host, action, _control_value(action, value),
                 self.settings.store.hot_capacity, 1 if create else 0, repr(MIN_BOOST),
                 repr(MAX_BOOST), int(pol.max_delay_s * 1000), int(pol.min_delay_s * 1000),
-                repr(float(pol.response_time_factor)), int(pol.max_delay_s * 1000)]
+                repr(float(pol.response_time_factor)), int(pol.max_delay_s * 1000),
+                repr(self.settings.priority.suspect_penalty)]
         try:
             async with redis_boundary("control"):
                 state = await self.scripts.control(keys, args)
@@ -683,6 +684,7 @@ class FrontierStore:
             fields = await r.hgetall(pk.host(host))
             out["host"] = {_text(k): _text(v) for k, v in fields.items()}
             out["linking_hosts"] = int(await r.pfcount(pk.linking_hosts(host)))
+            out["spam"] = await self._spam_counts(pk, host)
             out["due_ms"] = await r.zscore(pk.due, host)
             out["ready_priority"] = await r.zscore(pk.ready, host)
             out["ready_rank"] = await r.zrevrank(pk.ready, host)
@@ -692,6 +694,18 @@ class FrontierStore:
             prio = await r.hget(pk.prio, host)
             out["priority"] = float(prio) if prio is not None else None
         return out
+
+    async def _spam_counts(self, pk: PartitionKeys, host: str) -> dict[str, int]:
+        """The link counts behind a host's link-spam signals (HyperLogLog estimates):
+        trusted linking hosts, out-linked hosts, reciprocal hosts (linking and linked) and
+        trusted one-way linking hosts (trusted, not linked back)."""
+        r = self.redis
+        linking, out, trusted = pk.linking_hosts(host), pk.out_hosts(host), pk.trusted_hosts(host)
+        ins, outs, good = [int(await r.pfcount(k)) for k in (linking, out, trusted)]
+        both = int(await r.pfcount(linking, out))
+        return {"trusted_linking_hosts": good, "out_hosts": outs,
+                "reciprocal_hosts": max(0, ins + outs - both),
+                "trusted_one_way": max(0, int(await r.pfcount(trusted, out)) - outs)}
 
     async def _find_cold(self, key: str, url: str) -> tuple[int | None, int | None]:
         """(0-based position, score) of ``url`` in a cold list, or (None, None)."""

@@ -4,7 +4,8 @@
 -- KEYS[8 ..]       per host group g (0-based): host hash, hot ZSET, cold LIST,
 --                  linking-hosts HyperLogLog, out-hosts HLL, trusted-linking-hosts HLL (6 keys)
 -- then             per link-only host: host hash, linking-hosts, out-hosts, trusted HLLs (4 keys)
--- then             per source host: host hash, linking-hosts, out-hosts, trusted HLLs (4 keys)
+-- then             per source host: host hash, hot ZSET, cold LIST, linking-hosts, out-hosts,
+--                  trusted HLLs (6 keys)
 -- then             the URL-seen buckets this batch touches
 -- KEYS[#KEYS]      the ended journal (URLs excluded here)
 -- ARGV[1] now (ms)  ARGV[2] hot capacity  ARGV[3] number of host groups  ARGV[4] excluded count
@@ -12,7 +13,7 @@
 -- hosts  ARGV[8] number of source hosts  ARGV[9] budget per untrusted linking host
 -- ARGV[10] trust threshold  ARGV[11] reciprocal hosts that make a suspect
 -- ARGV[12] suspect penalty (priority factor)  ARGV[13] reciprocal ratio
--- then per source host (whose fetched pages link out in this batch): k, k linked hosts
+-- then per source host (whose fetched pages link out in this batch): host, k, k linked hosts
 -- then per group:  host, absolute budget (0: none), seeded (1: a seed of this host is in
 --                  the batch), m, m times (linking host, trust share, trusted 1|0), n,
 --                  and n times: seen slot, fingerprint, score, credit, url
@@ -48,7 +49,7 @@ local per_weak, threshold = tonumber(ARGV[9]), tonumber(ARGV[10])
 local reciprocal, penalty, ratio = tonumber(ARGV[11]), ARGV[12], tonumber(ARGV[13])
 local linked_base = 7 + 6 * ngroups
 local sources_base = linked_base + 4 * nlinked
-local seen_base = sources_base + 4 * nsources
+local seen_base = sources_base + 6 * nsources
 local S = {due = KEYS[3], ready = KEYS[4], prio = KEYS[5], claims = KEYS[6]}
 local ended = KEYS[#KEYS]
 local new, credited, excluded, dups = 0, 0, 0, 0
@@ -175,16 +176,18 @@ end
 
 -- Source hosts: their pages link to these hosts (the out-hosts side of reciprocity).
 for s = 0, nsources - 1 do
-  local k = tonumber(ARGV[a])
-  local k0 = sources_base + 4 * s
-  local hk, linking, out, trusted = KEYS[k0 + 1], KEYS[k0 + 2], KEYS[k0 + 3], KEYS[k0 + 4]
+  local host, k = ARGV[a], tonumber(ARGV[a + 1])
+  a = a + 1
+  local k0 = sources_base + 6 * s
+  local hk, hot, cold = KEYS[k0 + 1], KEYS[k0 + 2], KEYS[k0 + 3]
+  local linking, out, trusted = KEYS[k0 + 4], KEYS[k0 + 5], KEYS[k0 + 6]
   local changed = 0
   for i = a + 1, a + k, 1000 do
     changed = changed + redis.call('PFADD', out, unpack(ARGV, i, math.min(i + 999, a + k)))
   end
   a = a + 1 + k
-  if changed > 0 then
-    assess(hk, linking, out, trusted)  -- a leased or scheduled host takes its new factor when placed
+  if changed > 0 and assess(hk, linking, out, trusted) then
+    schedule(S, host, hk, hot, cold, cap, now)  -- its priority factor changed
   end
 end
 

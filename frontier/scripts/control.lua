@@ -7,8 +7,12 @@
 -- ARGV[5] hot capacity  ARGV[6] create (1: make a record for a key not known yet)
 -- ARGV[7] lowest boost  ARGV[8] highest boost  ARGV[9] longest delay (ms)
 -- ARGV[10] min delay (ms)  ARGV[11] response-time factor  ARGV[12] cap on factor x response (ms)
+-- ARGV[13] the suspect penalty (priority factor of a host marked untrusted)
 -- Actions: boost <multiplier> | delay <ms> | pause | resume (a paused host) | block |
--- unblock (a blocked host) | clear (boost 1, no operator delay, due now; state kept).
+-- unblock (a blocked host) | clear (boost 1, no operator delay, due now; state kept) |
+-- trust | untrust: the operator's mark on the host's trust (admit.lua, lease_take.lua),
+-- which overrules the link-spam signals: trusted (trust 1, never a suspect) or untrusted
+-- (trust 0, a suspect); the latest mark holds.
 -- Every argument is checked before the first write (Redis does not roll back a script
 -- that fails half way): a refusal is an error reply 'control refused: ...' with nothing
 -- written.
@@ -34,10 +38,10 @@ local function shown(text)
 end
 
 local ACTIONS = {boost = true, delay = true, pause = true, resume = true, block = true,
-                 unblock = true, clear = true}
+                 unblock = true, clear = true, trust = true, untrust = true}
 
 -- checks -------------------------------------------------------------------------------------
-for _, i in ipairs({1, 5, 7, 8, 9, 10, 11, 12}) do
+for _, i in ipairs({1, 5, 7, 8, 9, 10, 11, 12, 13}) do
   local x = tonumber(ARGV[i])
   if not finite(x) or x < 0 then
     return refuse('argument ' .. i .. ' is not a finite number >= 0')
@@ -47,6 +51,7 @@ local now, host, action, raw = tonumber(ARGV[1]), ARGV[2], ARGV[3], ARGV[4]
 local cap, create = tonumber(ARGV[5]), ARGV[6]
 local boost_lo, boost_hi, delay_hi = tonumber(ARGV[7]), tonumber(ARGV[8]), tonumber(ARGV[9])
 local min_delay, factor, rt_cap = tonumber(ARGV[10]), tonumber(ARGV[11]), tonumber(ARGV[12])
+local penalty = tonumber(ARGV[13])
 if cap < 1 then
   return refuse('hot capacity below 1')
 end
@@ -161,6 +166,12 @@ elseif action == 'block' then
     redis.call('HINCRBY', hk, 'held', n)
     shift_counts(n, 1)
   end
+elseif action == 'trust' then
+  redis.call('HSET', hk, 'mark', 'trusted', 'trust', '1', 'tfrom', 'operator', 'pf', '1')
+  redis.call('HDEL', hk, 'suspect')
+elseif action == 'untrust' then
+  redis.call('HSET', hk, 'mark', 'untrusted', 'trust', '0', 'tfrom', 'operator', 'suspect', '1',
+             'pf', tostring(penalty))
 elseif action == 'unblock' then
   if state == 'blocked' then
     state = 'active'
@@ -173,7 +184,7 @@ end
 redis.call('HSET', hk, 'state', state)
 
 -- place the host: its next fetch, and due / ready / none -------------------------------------
-local f = redis.call('HMGET', hk, 'lease', 'boost', 'next', 'delay_ms')
+local f = redis.call('HMGET', hk, 'lease', 'boost', 'next', 'delay_ms', 'pf', 'mark')
 local in_ready = redis.call('ZSCORE', S.ready, host)
 local in_due = redis.call('ZSCORE', S.due, host)
 local base
@@ -199,7 +210,7 @@ elseif not f[1] then  -- a leased host is placed when its lease ends
     redis.call('ZREM', S.ready, host)
     redis.call('HDEL', S.prio, host)
   else
-    local p = tonumber(score) * tonumber(f[2] or '1')
+    local p = tonumber(score) * tonumber(f[2] or '1') * tonumber(f[5] or '1')
     redis.call('HSET', S.prio, host, p)
     if not redis.call('ZSCORE', S.claims, host) then  -- a claimed host is being leased now
       if in_ready and when <= now then
@@ -213,7 +224,7 @@ elseif not f[1] then  -- a leased host is placed when its lease ends
 end
 
 -- hosts under operator control
-if state ~= 'active' or tonumber(f[2] or '1') ~= 1 or tonumber(f[4] or '0') > 0 then
+if state ~= 'active' or tonumber(f[2] or '1') ~= 1 or tonumber(f[4] or '0') > 0 or f[6] then
   redis.call('SADD', KEYS[8], host)
 else
   redis.call('SREM', KEYS[8], host)

@@ -1,0 +1,236 @@
+"""Link-spam signals of the frontier, each against a small graph worked out by hand.
+
+Every test runs on one Redis server and on a Redis Cluster (the ``make_store`` fixture).
+Sources: TrustRank (Gyöngyi, Garcia-Molina & Pedersen, "Combating Web Spam with
+TrustRank", VLDB 2004): trust starts at the seeds, a host hands on damping x its trust
+split over the hosts it links to, and untrusted hosts hand on nothing; reciprocal links
+(Wu & Davison, "Identifying link farm spam pages", WWW 2005): a farm's hosts link to the
+hosts that link to them; budgets by the reputation of the linking hosts (in the spirit of
+Lee, Leonard, Wang & Loguinov, "IRLbot", WWW 2008).
+"""
+
+from __future__ import annotations
+
+import pytest
+
+from frontier.admission import TRUST_SPLIT_MIN_HOSTS, Admission
+from frontier.controls import host_command
+from frontier.exceptions import ConfigError
+from frontier.explain import explain, format_explain
+from frontier.model import Candidate, Completion, Lease, Outcome
+from frontier.store import FrontierStore
+from frontier.urls import Scope
+from tests.conftest import Clock, StoreFactory
+
+DAMPING = 0.85  # TrustRank's beta, the default trust_damping
+SEED_SHARE = DAMPING * 1.0 / TRUST_SPLIT_MIN_HOSTS  # a seed's host splits over >= 10 hosts
+
+
+def spam_store(make_store: StoreFactory, **priority: float) -> FrontierStore:
+    return make_store(politeness={"min_delay_s": 0.0, "response_time_factor": 0.0},
+                      budget={"max_pages_per_host": None}, priority=priority)
+
+
+def admission(store: FrontierStore) -> Admission:
+    return Admission(store, Scope(allow=[], include=[], exclude=[], max_depth=None))
+
+
+async def trust_of(store: FrontierStore, host: str) -> float:
+    return float((await store.host_info(host))["trust"])
+
+
+async def lease_seeds(store: FrontierStore, adm: Admission, hosts: list[str]) -> list[Lease]:
+    """Admit one seed per host, lease and fetch them all (the lease carries each host's
+    trust; the store remembers it for the links its pages give)."""
+    await adm.admit([Candidate(f"http://{h}/", depth=0) for h in hosts])
+    leases: list[Lease] = []
+    while len(leases) < len(hosts):
+        got = await store.lease(len(hosts))
+        assert got
+        leases += got
+    await store.complete_many([Completion(lease, Outcome.FETCHED) for lease in leases])
+    return leases
+
+
+def links(source: str, targets: list[str], page: str = "p",
+          trust: float | None = None) -> list[Candidate]:
+    return [Candidate(f"http://{t}/{page}", depth=1, cash=0.01, source_host=source,
+                      source_trust=trust) for t in targets]
+
+
+async def test_trust_flows_from_the_seeds_split_and_counted_once(make_store: StoreFactory) -> None:
+    # TrustRank (Gyöngyi et al. 2004): a seed's host holds trust 1 and hands on 0.85 x 1
+    # split over the hosts it links to (at least 10 assumed: 0.085 each); each linking
+    # host counts once; the sum is the target's trust.
+    store = spam_store(make_store)
+    adm = admission(store)
+    leases = await lease_seeds(store, adm, ["s.test", "t.test"])
+    assert {lease.host: (lease.trust, lease.suspect) for lease in leases} == {
+        "s.test": (1.0, False), "t.test": (1.0, False)}
+    await adm.admit(links("s.test", ["a.test", "b.test"]))  # trust from s.test's lease
+    assert await trust_of(store, "a.test") == pytest.approx(SEED_SHARE)
+    await adm.admit(links("s.test", ["a.test"], page="again"))  # the same host again: no more
+    assert await trust_of(store, "a.test") == pytest.approx(SEED_SHARE)
+    await adm.admit(links("t.test", ["a.test"]))  # a second seed host: 0.085 + 0.085
+    assert await trust_of(store, "a.test") == pytest.approx(2 * SEED_SHARE)
+    assert await trust_of(store, "b.test") == pytest.approx(SEED_SHARE)
+    # a host that links to 20 hosts splits its trust over 20: 0.85 / 20 each
+    await adm.admit(links("t.test", [f"w{i}.test" for i in range(20)], page="wide"))
+    assert await trust_of(store, "w7.test") == pytest.approx(DAMPING / 20)
+
+
+async def test_untrusted_hosts_hand_on_no_trust(make_store: StoreFactory) -> None:
+    # TrustRank: only trust flows, so a host below the vouch threshold (0.05) hands on
+    # nothing, and a farm cannot raise its own trust by linking to itself.
+    store = spam_store(make_store)
+    adm = admission(store)
+    await adm.admit(links("low.test", ["x.test"], trust=0.04))
+    assert await trust_of(store, "x.test") == 0.0
+    await adm.admit(links("mid.test", ["x.test"], trust=0.5))  # 0.85 x 0.5 / 10
+    assert await trust_of(store, "x.test") == pytest.approx(0.0425)
+
+
+async def test_budget_grows_with_trusted_linking_hosts(make_store: StoreFactory) -> None:
+    # Budgets by reputation (Lee et al. 2008, weighted): base 2 + 3 per trusted linking host
+    # + 1 per other linking host. Two trusted and three untrusted hosts link in:
+    # 2 + 3 x 2 + 1 x 3 = 11.
+    store = make_store(budget={"max_pages_per_host": None},
+                       priority={"host_budget_base": 2, "host_budget_per_linking_host": 3,
+                                 "host_budget_per_untrusted_host": 1})
+    adm = admission(store)
+    offered = (links("good1.test", ["x.test"], trust=1.0) + links("good2.test", ["x.test"], trust=0.3)
+               + [c for i in range(3) for c in links(f"weak{i}.test", ["x.test"], trust=0.01)])
+    offered += [Candidate(f"http://x.test/{i}", depth=2, source_host="x.test") for i in range(20)]
+    res = await adm.admit(offered)
+    info = await store.host_info("x.test")
+    assert int(info["admitted"]) == 11 and res.new == 11
+    counts = await store.counts()
+    assert counts.reasons["excluded:host_link_budget"] == res.excluded and counts.balanced
+
+
+async def farm(store: FrontierStore, adm: Admission, size: int, seed_links: int) -> list[str]:
+    """A farm of ``size`` hosts, all linking to each other, each linked from the first
+    ``seed_links`` seed hosts; the farm hosts' own links carry their trust."""
+    seeds = [f"s{i}.test" for i in range(seed_links)]
+    await lease_seeds(store, adm, seeds)
+    hosts = [f"f{i}.test" for i in range(size)]
+    for s in seeds:
+        await adm.admit(links(s, hosts))
+    trust = {h: await trust_of(store, h) for h in hosts}  # as their leases would carry it
+    for h in hosts:
+        await adm.admit(links(h, [o for o in hosts if o != h], page=f"from-{h}", trust=trust[h]))
+    return hosts
+
+
+async def test_a_farm_with_few_trusted_links_in_is_a_suspect(make_store: StoreFactory) -> None:
+    # Wu & Davison 2005: five hosts that all link to each other: each has 4 hosts that both
+    # link to it and are linked from it. One seed host links to each: trust 0.085 (below
+    # the 0.25 threshold) and one trusted linking host it does not link back to. 4 > 3 x 1:
+    # a suspect. Its trust: 0.085 from the seed + 4 farm hosts x 0.85 x 0.085 / 10.
+    store = spam_store(make_store)
+    adm = admission(store)
+    hosts = await farm(store, adm, size=5, seed_links=1)
+    for h in hosts:
+        info = await store.host_info(h)
+        assert info["suspect"] == "1" and int(info["recip"]) == 4
+        assert float(info["pf"]) == pytest.approx(store.settings.priority.suspect_penalty)
+        assert float(info["trust"]) == pytest.approx(SEED_SHARE + 4 * DAMPING * SEED_SHARE / 10)
+
+
+async def test_an_honest_cluster_linked_from_trusted_hosts_is_not_a_suspect(
+        make_store: StoreFactory) -> None:
+    # The same five interlinked hosts (a university's departments), each linked from
+    # two seed hosts: 4 reciprocal hosts, 2 trusted one-way linking hosts; 4 <= 3 x 2, so
+    # dense linking alone does not make a suspect.
+    store = spam_store(make_store)
+    adm = admission(store)
+    hosts = await farm(store, adm, size=5, seed_links=2)
+    for h in hosts:
+        info = await store.host_info(h)
+        assert "suspect" not in info and int(info["recip"]) == 4
+
+async def test_a_cluster_linked_from_three_seed_hosts_is_trusted(make_store: StoreFactory) -> None:
+    # With three seed hosts linking to each, the trust is 3 x 0.085 = 0.255 >= 0.25:
+    # trusted, priority factor 1, no gap between fetches.
+    store = spam_store(make_store)
+    hosts = await farm(store, admission(store), size=5, seed_links=3)
+    for h in hosts:
+        info = await store.host_info(h)
+        assert "suspect" not in info and float(info["pf"]) == 1.0
+        assert float(info["trust"]) >= 3 * SEED_SHARE - 1e-9
+
+
+async def test_suspects_lease_last_and_seldom(make_store: StoreFactory, clock: Clock) -> None:
+    # The defence's effect on the lease order: a suspect's URL waits behind an honest URL
+    # with less cash (priority x 0.001), and after one fetch it is held back for
+    # suspect_delay_s (IRLbot's budget enforcement slows spam hosts rather than drop them).
+    store = spam_store(make_store, suspect_delay_s=30.0)
+    adm = admission(store)
+    hosts = await farm(store, adm, size=5, seed_links=1)
+    await adm.admit([Candidate("http://s0.test/next", depth=1, cash=0.001, source_host="s0.test")])
+    order = []
+    while True:
+        got = await store.lease(1)
+        if not got:
+            break
+        order.append(got[0].host)
+        await store.complete(Completion(got[0], Outcome.FETCHED))
+    assert order[0] == "s0.test" and set(order[1:]) == set(hosts) and len(order) == 6
+    clock.advance(29.0)
+    assert await store.lease(10) == []  # each suspect held back for 30 s
+    clock.advance(2.0)
+    again = await store.lease(10)
+    assert {lease.host for lease in again} == set(hosts)
+    assert all(lease.suspect and lease.passes_trust == 0.0 for lease in again)
+
+
+async def test_old_lease_members_are_still_read(make_store: StoreFactory, clock: Clock) -> None:
+    # A lease stored before the trust field ('id\nhost\nscore\nattempts\nurl') is reaped
+    # and requeued with its own URL.
+    store = spam_store(make_store)
+    adm = admission(store)
+    await adm.admit([Candidate("http://old.test/a", depth=0)])
+    (lease,) = await store.lease(1)
+    pk = store.keys.part_for("old.test")
+    old = "\n".join([lease.id, lease.host, str(lease.score), "0", lease.url])
+    assert Lease.from_member(old, 1).url == lease.url and Lease.from_member(old, 1).trust is None
+    await store.redis.zrem(pk.leases, lease.member)
+    await store.redis.zadd(pk.leases, {old: clock.ms - 1})
+    assert await store.reap() == {"requeued": 1}
+    (again,) = await store.lease(1)
+    assert again.url == "http://old.test/a"
+
+
+async def test_operator_marks_overrule_the_signals(make_store: StoreFactory) -> None:
+    store = spam_store(make_store)
+    adm = admission(store)
+    hosts = await farm(store, adm, size=5, seed_links=1)
+    settings = store.settings
+    state = await store.control("f0.test", "trust")
+    info = await store.host_info("f0.test")
+    assert state == "active" and info["mark"] == "trusted" and "suspect" not in info
+    assert float(info["trust"]) == 1.0 and float(info["pf"]) == 1.0
+    await adm.admit(links("f1.test", ["f0.test"], page="more", trust=0.0))  # no change now
+    assert (await store.host_info("f0.test"))["mark"] == "trusted"
+    await store.control("s0.test", "untrust")
+    info = await store.host_info("s0.test")
+    assert info["suspect"] == "1" and float(info["trust"]) == 0.0
+    assert hosts and "f0.test" in {r["host"] for r in await store.controlled_hosts()}
+    assert host_command(settings, "F0.test", "trust").action == "trust"
+    with pytest.raises(ConfigError, match="takes no value"):
+        host_command(settings, "f0.test", "untrust", "1")
+
+
+async def test_explain_shows_the_spam_signals(make_store: StoreFactory) -> None:
+    store = spam_store(make_store)
+    adm = admission(store)
+    await farm(store, adm, size=5, seed_links=1)
+    info = await explain(store, "http://f2.test/p")
+    spam = info["spam"]
+    assert spam["suspect"] and spam["reciprocal_hosts"] == 4
+    assert spam["trusted_one_way_linking_hosts"] == 1 and spam["trusted_linking_hosts"] == 5
+    assert spam["trust"] == pytest.approx(SEED_SHARE + 4 * DAMPING * SEED_SHARE / 10)
+    assert spam["trust_source"].endswith("from s0.test")
+    assert info["host_fields"]["budget"]["earned"] == store.settings.priority.host_budget_base
+    text = format_explain(info)
+    assert "a link-spam suspect" in text and "4 reciprocal hosts" in text
