@@ -327,8 +327,10 @@ async def test_remote_map_with_the_opt_in_still_keeps_the_port_rule(
 
 @pytest.mark.parametrize("ports", [(0,), (65536,), (80, -1)])
 def test_bad_map_ports_name_the_setting(ports: tuple[int, ...]) -> None:
+    # RFC 9293 s.3.1: a TCP port is 16 bits; 0 is no destination. The settings refuse
+    # them before any host map is built.
     with pytest.raises(ConfigError) as info:
-        host_map_from_settings(FetchSettings(map_hosts=("*.test=127.0.0.1",), map_ports=ports))
+        load_settings(None, {"fetch": {"map_hosts": ["*.test=127.0.0.1"], "map_ports": ports}})
     assert "fetch.map_ports" in str(info.value)
 
 
