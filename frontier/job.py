@@ -7,8 +7,10 @@ on any machine read them from there, so every process agrees on scope and polite
 
 from __future__ import annotations
 
+import asyncio
 import json
 import socket
+import time
 from collections.abc import Iterable
 from contextlib import asynccontextmanager
 from dataclasses import dataclass
@@ -19,7 +21,9 @@ from redis.asyncio.cluster import RedisCluster
 
 from frontier.admission import Admission, Resolver, scope_from_settings
 from frontier.embedded import REDIS_SUBDIR, START_TIMEOUT_S, EmbeddedRedis
-from frontier.exceptions import ConfigError, FolderInUse, RedisLaunchError, SluiceError
+from frontier.exceptions import (
+    ConfigError, FolderInUse, RedisLaunchError, SluiceError, StoreUnavailable,
+)
 from frontier.folders import FolderLock, Owner, owner_redis_url, say_taken_over
 from frontier.keys import Keys
 from frontier.model import AdmitResult, Candidate
@@ -211,7 +215,22 @@ def address_resolver(settings: JobSettings) -> Resolver | None:
     return resolve
 
 
+SEED_RETRY_S = 0.5
+SEED_PATIENCE_S = 60.0  # how long seeds wait for a Redis that is restarting or failing over
+
+
 async def admit_seeds(job: Job, seeds: Iterable[str]) -> AdmitResult:
-    """Admit seeds at depth 0 with the seed cash (dedupe makes a second run a no-op)."""
+    """Admit seeds at depth 0 with the seed cash (dedupe makes a second run a no-op).
+
+    A Redis that is unavailable for a while (restarting, failing over, replicas not yet
+    confirming) is waited for up to ``SEED_PATIENCE_S``; admits are idempotent."""
     cash = job.settings.priority.seed_cash
-    return await job.admission.admit([Candidate(u, depth=0, cash=cash) for u in seeds])
+    candidates = [Candidate(u, depth=0, cash=cash) for u in seeds]
+    deadline = time.monotonic() + SEED_PATIENCE_S
+    while True:
+        try:
+            return await job.admission.admit(candidates)
+        except StoreUnavailable:
+            if time.monotonic() > deadline:
+                raise
+            await asyncio.sleep(SEED_RETRY_S)

@@ -136,7 +136,11 @@ async def run_replicated(client: Any, calls: list[ScriptCall], replicas: int,
                                    f"the writes within {timeout_ms} ms")
 
     try:
-        await asyncio.gather(*(on_node(node, idx) for node, idx in by_node.values()))
+        outcomes = await asyncio.gather(*(on_node(node, idx) for node, idx in by_node.values()),
+                                        return_exceptions=True)
+        for outcome in outcomes:  # every node's call has ended; the first error is raised
+            if isinstance(outcome, BaseException):
+                raise outcome
     except (StoreUnavailable, RedisError, OSError) as exc:
         # a master gone or slots moved (failover): learn the new slot map for the retry
         try:
