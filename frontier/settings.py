@@ -205,6 +205,14 @@ class PrioritySettings(_Part):
     untrusted_delay_s: float = Field(
         default=5.0, ge=0, description="at least this long between fetches of an untrusted host"
     )
+    probation_s: float = Field(
+        default=30.0, ge=0, description="a host found through links waits this long for its first "
+        "fetch unless trusted hosts vouch for it meanwhile (0: no probation)"
+    )
+    probation_linking_hosts: int = Field(
+        default=3, ge=1, description="distinct trusted hosts linking to a new host that end its "
+        "probation"
+    )
 
 
 class OutputSettings(_Part):

@@ -291,7 +291,8 @@ class FrontierStore:
                            prio.host_budget_base, prio.host_budget_per_linking_host, len(link_only),
                            len(out_links), prio.host_budget_per_untrusted_host,
                            repr(prio.trust_threshold), prio.reciprocal_hosts,
-                           repr(prio.suspect_penalty), repr(prio.reciprocal_ratio)]
+                           repr(prio.suspect_penalty), repr(prio.reciprocal_ratio),
+                           prio.probation_linking_hosts, repr(prio.vouch_threshold)]
         for host, targets in out_links.items():
             args += (host, len(targets), *targets)
         slots: dict[int, int] = {}  # seen bucket -> its 1-based place among the seen keys
@@ -318,6 +319,7 @@ class FrontierStore:
         for host in link_only:  # only links to pages fetched already: count the links
             keys += (pk.host(host), pk.linking_hosts(host), pk.out_hosts(host),
                      pk.trusted_hosts(host))
+            args.append(host)
             _linking_args(args, sources[host])
         for host in out_links:
             keys += (pk.host(host), pk.hot(host), pk.cold(host), pk.linking_hosts(host),
@@ -391,7 +393,7 @@ class FrontierStore:
         return (self.scripts.lease_take, keys,
                 [expires, partition, len(hosts), self.settings.store.hot_capacity, now,
                  int(prio.suspect_delay_s * 1000), int(prio.untrusted_delay_s * 1000),
-                 repr(prio.trust_threshold), *hosts])
+                 repr(prio.trust_threshold), int(prio.probation_s * 1000), *hosts])
 
     # -- complete and reap ---------------------------------------------------------------
 

@@ -234,3 +234,42 @@ async def test_explain_shows_the_spam_signals(make_store: StoreFactory) -> None:
     assert info["host_fields"]["budget"]["earned"] == store.settings.priority.host_budget_base
     text = format_explain(info)
     assert "a link-spam suspect" in text and "4 reciprocal hosts" in text
+
+
+async def test_a_new_host_without_trusted_links_waits_its_probation(
+        make_store: StoreFactory, clock: Clock) -> None:
+    # Probation (our rule, values tuned on the adversarial webs, no source): a host found
+    # through links, never fetched, waits probation_s for its first fetch until its trust
+    # reaches the vouch threshold (0.05) or 3 distinct trusted hosts (trust >= 0.05) link to
+    # it. TrustRank shares as above: 0.85 x 0.1 / 10 = 0.0085 from a host of trust 0.1.
+    store = spam_store(make_store, probation_s=30.0, probation_linking_hosts=3)
+    adm = admission(store)
+    await adm.admit(links("low.test", ["far.test", "cluster.test"], trust=0.04))
+    await adm.admit(links("s.test", ["near.test"], trust=1.0))  # 0.085: vouched at once
+    got = await store.lease(10)
+    assert [lease.host for lease in got] == ["near.test"]
+    await store.complete_many([Completion(lease, Outcome.FETCHED) for lease in got])
+    await adm.admit(links("mid1.test", ["cluster.test"], trust=0.1)
+                    + links("mid2.test", ["cluster.test"], trust=0.1))
+    assert await store.lease(10) == []  # two trusted hosts, 0.017 of trust: still waiting
+    await adm.admit(links("mid3.test", ["cluster.test"], trust=0.1))
+    assert await trust_of(store, "cluster.test") == pytest.approx(3 * 0.0085)
+    got = await store.lease(10)  # the third trusted host ends the probation: due now
+    assert [lease.host for lease in got] == ["cluster.test"]
+    clock.advance(29.0)
+    assert await store.lease(10) == []  # far.test: found 29 s ago, no trusted host linked
+    clock.advance(2.0)
+    assert [lease.host for lease in await store.lease(10)] == ["far.test"]
+
+
+async def test_no_probation_when_turned_off_or_for_seeds(make_store: StoreFactory) -> None:
+    # probation_s = 0 leases a new host at once; a seed's host is never on probation.
+    store = spam_store(make_store, probation_s=0.0)
+    adm = admission(store)
+    await adm.admit(links("low.test", ["far.test"], trust=0.04))
+    assert [lease.host for lease in await store.lease(10)] == ["far.test"]
+    held = spam_store(make_store, probation_s=30.0)
+    adm2 = admission(held)
+    await adm2.admit(links("low.test", ["later.test"], trust=0.04))
+    await adm2.admit([Candidate("http://later.test/", depth=0)])  # now a seed's host
+    assert "later.test" in {lease.host for lease in await held.lease(10)}

@@ -13,11 +13,13 @@
 -- hosts  ARGV[8] number of source hosts  ARGV[9] budget per untrusted linking host
 -- ARGV[10] trust threshold  ARGV[11] reciprocal hosts that make a suspect
 -- ARGV[12] suspect penalty (priority factor)  ARGV[13] reciprocal ratio
+-- ARGV[14] trusted linking hosts that end a new host's probation  ARGV[15] trust that ends it
 -- then per source host (whose fetched pages link out in this batch): host, k, k linked hosts
 -- then per group:  host, absolute budget (0: none), seeded (1: a seed of this host is in
 --                  the batch), m, m times (linking host, trust share, trusted 1|0), n,
 --                  and n times: seen slot, fingerprint, score, credit, url
--- then per link-only host (only links to pages fetched already): m, m (host, share, trusted)
+-- then per link-only host (only links to pages fetched already): host, m, m (host, share,
+--                  trusted)
 -- then per excluded URL: seen slot, fingerprint, reason, url
 -- (a seen slot is a 1-based index into the seen-bucket part of KEYS)
 -- A new URL is queued on its host (or excluded: host blocked, host budget spent); a URL
@@ -37,6 +39,11 @@
 -- WWW 2005), more than `ratio` times its trusted one-way linkers, is a 'suspect'. The operator's mark ('trusted' / 'untrusted') overrules both.
 -- 'pf', the host's priority factor: 1 when trusted, trust / threshold when untrusted (at
 -- least the penalty), the penalty for a suspect.
+-- Probation: a host first found through links of hosts of known trust, never fetched, is on
+-- probation from then ('probe' = the time) until its trust reaches `probation_trust` or
+-- `probation` distinct trusted hosts link to it; lease_take.lua holds its first fetch
+-- back meanwhile (a farm's hosts are linked by few trusted hosts and wait; an honest
+-- host's trusted in-links keep coming).
 -- Returns {new, credited, excluded, duplicates}.
 local now = tonumber(ARGV[1])
 local cap = tonumber(ARGV[2])
@@ -47,13 +54,14 @@ local nlinked = tonumber(ARGV[7])
 local nsources = tonumber(ARGV[8])
 local per_weak, threshold = tonumber(ARGV[9]), tonumber(ARGV[10])
 local reciprocal, penalty, ratio = tonumber(ARGV[11]), ARGV[12], tonumber(ARGV[13])
+local probation, probation_trust = tonumber(ARGV[14]), tonumber(ARGV[15])
 local linked_base = 7 + 6 * ngroups
 local sources_base = linked_base + 4 * nlinked
 local seen_base = sources_base + 6 * nsources
 local S = {due = KEYS[3], ready = KEYS[4], prio = KEYS[5], claims = KEYS[6]}
 local ended = KEYS[#KEYS]
 local new, credited, excluded, dups = 0, 0, 0, 0
-local a = 14
+local a = 16
 local reasons = {}
 local journaled = {}  -- 'excluded reason url' lines for the ended journal
 
@@ -86,7 +94,7 @@ end
 -- adds its share to the host's trust, once; a trusted one (or one of unknown trust, as
 -- before trust was tracked) joins the trusted-linking-hosts count. A host starts tracking
 -- trust (at 0) when a host of known trust links to it.
-local function add_linking(hk, linking, trusted, from, m)
+local function add_linking(host, hk, linking, trusted, from, m)
   local gain, best, best_from, known = 0, 0, nil, false
   local good = {}
   for i = from, from + 3 * (m - 1), 3 do
@@ -102,28 +110,42 @@ local function add_linking(hk, linking, trusted, from, m)
     end
     known = known or flag ~= '-'
   end
-  if #good > 0 then
-    redis.call('PFADD', trusted, unpack(good))
-  end
+  local vouched = #good > 0 and redis.call('PFADD', trusted, unpack(good)) == 1
   if not hk or not known then
     return
   end
-  local f = redis.call('HMGET', hk, 'trust', 'state', 'seeded', 'mark', 'tbest')
+  local f = redis.call('HMGET', hk, 'trust', 'state', 'seeded', 'mark', 'tbest', 'probe',
+                       'fetched', 'lease', 'next')
   if not f[2] or f[3] or f[4] then  -- unknown host, a seed's or marked by the operator
     return
   end
   local t = tonumber(f[1] or '0')
-  if gain == 0 or t >= 1 then
-    if not f[1] then
-      redis.call('HSET', hk, 'trust', '0')
+  local fields = {}
+  local probe = f[6]
+  if not f[1] and not f[7] and not f[8] then  -- first found now, never fetched: probation
+    probe = tostring(now)
+  end
+  if gain > 0 and t < 1 then
+    t = math.min(1, t + gain)
+    fields[#fields + 1], fields[#fields + 2] = 'trust', tostring(t)
+    if best > tonumber(f[5] or '0') then
+      fields[#fields + 1], fields[#fields + 2] = 'tbest', tostring(best)
+      fields[#fields + 1], fields[#fields + 2] = 'tfrom', best_from
     end
-    return
+  elseif not f[1] then
+    fields[#fields + 1], fields[#fields + 2] = 'trust', '0'
   end
-  local fields = {'trust', tostring(math.min(1, t + gain))}
-  if best > tonumber(f[5] or '0') then
-    fields[3], fields[4], fields[5], fields[6] = 'tbest', tostring(best), 'tfrom', best_from
+  if probe and (t >= probation_trust or (vouched and redis.call('PFCOUNT', trusted) >= probation)) then
+    if f[6] then  -- vouched for: a host held back for its probation is due now
+      redis.call('HDEL', hk, 'probe')
+      redis.call('ZADD', S.due, 'XX', math.max(now, tonumber(f[9] or '0')), host)
+    end
+  elseif probe and not f[6] then
+    fields[#fields + 1], fields[#fields + 2] = 'probe', probe
   end
-  redis.call('HSET', hk, unpack(fields))
+  if #fields > 0 then
+    redis.call('HSET', hk, unpack(fields))
+  end
 end
 
 -- Decide whether a host is a link-spam suspect and set its priority factor 'pf'; returns
@@ -207,12 +229,12 @@ for g = 0, ngroups - 1 do
   if seed == '1' and not seeded then
     seeded = '1'
     redis.call('HSET', hk, 'seeded', seeded, 'trust', '1', 'tfrom', 'seed', 'pf', '1')
-    redis.call('HDEL', hk, 'suspect')
+    redis.call('HDEL', hk, 'suspect', 'probe')
     suspect = nil
   end
   local reschedule = false  -- the host's best score (or its factor) may have changed, or it was idle
   if m > 0 then
-    add_linking(hk, linking, trusted, a, m)
+    add_linking(host, hk, linking, trusted, a, m)
     if assess(hk, linking, out, trusted) then
       reschedule = true
     end
@@ -281,13 +303,14 @@ for g = 0, ngroups - 1 do
 end
 
 for l = 0, nlinked - 1 do
-  local m = tonumber(ARGV[a])
+  local host, m = ARGV[a], tonumber(ARGV[a + 1])
+  a = a + 1
   local k0 = linked_base + 4 * l
   local hk = KEYS[k0 + 1]
   if redis.call('EXISTS', hk) == 0 then
     hk = nil
   end
-  add_linking(hk, KEYS[k0 + 2], KEYS[k0 + 4], a + 1, m)
+  add_linking(host, hk, KEYS[k0 + 2], KEYS[k0 + 4], a + 1, m)
   if hk then
     assess(hk, KEYS[k0 + 2], KEYS[k0 + 3], KEYS[k0 + 4])
   end

@@ -5,15 +5,18 @@
 -- ARGV[1] lease expiry (ms)  ARGV[2] partition index  ARGV[3] n  ARGV[4] hot capacity
 -- ARGV[5] now (ms)  ARGV[6] gap between fetches of a suspect (ms)
 -- ARGV[7] gap between fetches of an untrusted host (ms)  ARGV[8] trust threshold
--- ARGV[9 ..] the n hosts
+-- ARGV[9] probation of a new host (ms)
+-- ARGV[10 ..] the n hosts
 -- A host is leased only if its claim is still held, it is active and holds no lease: so
 -- at most one lease per politeness key exists at any time.
 -- Link spam (docs/priority.md): a host whose trust is below the threshold (admit.lua) is
 -- leased at most once per untrusted gap, a link-spam suspect once per suspect gap (the
 -- budget enforcement of IRLbot, Lee et al. WWW 2008, slows such hosts rather than drop
 -- them): the gap counts from its last lease ('tlease'), by its standing now; a host held
--- back goes to due at its next allowed time. Seeds' hosts and hosts the operator marked
--- trusted are never held back.
+-- back goes to due at its next allowed time. A host on probation (admit.lua: found through
+-- links, not yet vouched for by enough trusted hosts, never fetched) is first leased a
+-- probation after it was found. Seeds' hosts and hosts the operator marked trusted are
+-- never held back.
 -- Returns the lease members ('id\nhost\nscore\nattempts\ntrust\nurl'), one per lease. The
 -- trust field is 'T/O': T the host's trust ('x' for a suspect, '-' for a host whose trust
 -- is not tracked), O the distinct other hosts its fetched pages linked to so far.
@@ -21,27 +24,33 @@ local n = tonumber(ARGV[3])
 local now = tonumber(ARGV[5])
 local suspect_gap, untrusted_gap = tonumber(ARGV[6]), tonumber(ARGV[7])
 local threshold = tonumber(ARGV[8])
+local probation = tonumber(ARGV[9])
 local out = {}
 local held = {}
 local seq = redis.call('HINCRBY', KEYS[1], 'lease_seq', n) - n
 local retried = redis.call('HLEN', KEYS[4]) > 0
 for i = 0, n - 1 do
-  local host = ARGV[9 + i]
+  local host = ARGV[10 + i]
   local hk, hot, cold, outs = KEYS[7 + 4 * i], KEYS[8 + 4 * i], KEYS[9 + 4 * i], KEYS[10 + 4 * i]
   if redis.call('ZREM', KEYS[2], host) == 1 then
-    local f = redis.call('HMGET', hk, 'state', 'lease', 'trust', 'suspect', 'tlease', 'seeded', 'mark')
+    local f = redis.call('HMGET', hk, 'state', 'lease', 'trust', 'suspect', 'tlease', 'seeded',
+                         'mark', 'probe')
     if f[1] == 'active' and not f[2] then
-      local gap = 0
+      local gap, probing = 0, false
       local trust = f[3]
+      local allowed = tonumber(f[5] or '0')
       if trust and not f[6] and f[7] ~= 'trusted' then
         if f[4] then
           gap = suspect_gap
         elseif tonumber(trust) < threshold then
           gap = untrusted_gap
+          if f[8] then  -- on probation: its first fetch waits
+            allowed, probing = math.max(allowed, tonumber(f[8]) + probation - gap), true
+          end
         end
       end
-      local allowed = tonumber(f[5] or '0') + gap  -- by the host's standing now
-      local wait = gap > 0 and allowed > now
+      allowed = allowed + gap  -- by the host's standing now
+      local wait = (gap > 0 or probing) and allowed > now
       local url, score = nil, nil
       if wait then
         redis.call('ZADD', KEYS[6], allowed, host)  -- back to due at its time
