@@ -7,6 +7,7 @@ lies out of scope is admitted as *excluded* with its reason, so the counts add u
 from __future__ import annotations
 
 import asyncio
+import functools
 from collections.abc import Awaitable, Callable, Iterable
 
 from frontier.exceptions import ConfigError, UrlError
@@ -16,7 +17,9 @@ from frontier.model import (
 )
 from frontier.settings import JobSettings
 from frontier.store import FrontierStore, PartitionBatch, QueuedUrl
-from frontier.urls import Scope, canonicalize, fingerprint, host_of, politeness_key
+from frontier.urls import (
+    Scope, canonicalize, fingerprint, host_of, politeness_key, registered_domain,
+)
 
 HOST_CACHE_SIZE = 100_000  # hosts whose politeness key and partition are remembered
 URL_MEMO_SIZE = 1 << 16  # offered URLs whose canonical form and fingerprint are remembered
@@ -25,7 +28,11 @@ RESOLVE_CONCURRENCY = 32  # address lookups at once, for the 'ip' politeness key
 # only a few of the hosts it links to (tuned with the adversarial webs, no source)
 TRUST_SPLIT_MIN_HOSTS = 10
 
+DOMAIN_MEMO_SIZE = 1 << 16  # politeness keys whose registrable domain is remembered
+
 Resolver = Callable[[str], Awaitable[str | None]]
+
+_domain_of = functools.lru_cache(maxsize=DOMAIN_MEMO_SIZE)(registered_domain)
 
 
 def scope_from_settings(settings: JobSettings, seeds: Iterable[str] = ()) -> Scope:
@@ -78,6 +85,7 @@ class Admission:
         # source politeness key -> {target key: its partition}, and trust given with them
         links: dict[str, dict[str, int]] = {}
         given: dict[str, float] = {}
+        redirects: dict[str, dict[str, int]] = {}  # pairs seen only through a redirect
         for c in candidates:
             raw, depth, cash, credit, source, hops, source_trust = c
             fact = facts.get(raw)
@@ -113,7 +121,7 @@ class Admission:
             if source is not None and source != host:
                 source_key = source if key_mode == "host" else self._key(source)
                 if source_key != key:
-                    links.setdefault(source_key, {})[key] = partition
+                    (redirects if hops else links).setdefault(source_key, {})[key] = partition
                     if source_trust is not None:
                         given[source_key] = source_trust
         for source, raw in linked:
@@ -124,6 +132,11 @@ class Admission:
             source_key = source if key_mode == "host" else self._key(source)
             if source_key != key:
                 links.setdefault(source_key, {})[key] = partition
+        for source_key, targets in redirects.items():  # a link between the same hosts wins
+            plain = links.setdefault(source_key, {})
+            for key, partition in targets.items():
+                if key not in plain:
+                    plain[key] = -1 - partition
         self._link_hosts(batches, links, given)
         return batches
 
@@ -137,6 +150,12 @@ class Admission:
         of those counted so far and those its pages link to in this call). A source's
         trust comes with its candidates, or from its lease taken by this store; unknown,
         it hands on nothing (its link still counts, untrusted, for the target's budget).
+
+        Two links hand on no trust and count as untrusted linking hosts: a link between
+        hosts of one registrable domain (its owner's own hosts vouch for each other no
+        more than a host's pages do), and a redirect into another registrable domain (a
+        doorway on a trusted host lends the target nothing). ``links`` marks a pair seen
+        only through a redirect by a negative partition (``-1 - partition``).
         """
         prio = self.store.settings.priority
         damping, threshold = prio.trust_damping, prio.vouch_threshold
@@ -148,15 +167,25 @@ class Admission:
             # only a trusted host hands trust on (a farm cannot raise itself)
             share = damping * trust / out_degree if trust and trust >= threshold else 0.0
             trusted = None if trust is None else trust >= threshold
+            unvouched = (0.0, None if trust is None else False)
+            domain = _domain_of(source_key)
             for key, partition in targets.items():
+                given_here = (share, trusted)
+                if partition < 0:  # only a redirect: trust within the domain only
+                    partition = -1 - partition
+                    targets[key] = partition
+                    if _domain_of(key) != domain:
+                        given_here = unvouched
+                elif trusted and _domain_of(key) == domain:
+                    given_here = unvouched
                 batch = batches.get(partition)
                 if batch is None:
                     batch = batches[partition] = PartitionBatch()
                 linking = batch.sources.get(key)
                 if linking is None:
-                    batch.sources[key] = {source_key: (share, trusted)}
+                    batch.sources[key] = {source_key: given_here}
                 else:
-                    linking[source_key] = (share, trusted)
+                    linking[source_key] = given_here
             p = partition_of(source_key, parts)
             batch = batches.get(p)
             if batch is None:

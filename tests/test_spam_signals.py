@@ -17,6 +17,7 @@ from frontier.admission import TRUST_SPLIT_MIN_HOSTS, Admission
 from frontier.controls import host_command
 from frontier.exceptions import ConfigError
 from frontier.explain import explain, format_explain
+from frontier.keys import partition_of
 from frontier.model import Candidate, Completion, Lease, Outcome
 from frontier.store import FrontierStore
 from frontier.urls import Scope
@@ -273,3 +274,36 @@ async def test_no_probation_when_turned_off_or_for_seeds(make_store: StoreFactor
     await adm2.admit(links("low.test", ["later.test"], trust=0.04))
     await adm2.admit([Candidate("http://later.test/", depth=0)])  # now a seed's host
     assert "later.test" in {lease.host for lease in await held.lease(10)}
+
+
+async def test_redirects_and_links_within_a_domain_hand_on_no_trust(
+        make_store: StoreFactory) -> None:
+    # TrustRank passes trust along links between independent hosts. Our rule (no source):
+    # a redirect into another registrable domain (a doorway) hands on nothing, one within
+    # the domain hands on the usual share (0.85 x 1 / 10); a link between two hosts of one
+    # registrable domain (under .test: the last two labels, RFC 6761) hands on nothing and
+    # counts as an untrusted linking host.
+    store = spam_store(make_store)
+    adm = admission(store)
+    await adm.admit([
+        Candidate("http://farm.test/", depth=1, cash=0.01, source_host="s.test",
+                  source_trust=1.0, hops=1),
+        Candidate("http://www.s.test/", depth=1, cash=0.01, source_host="s.test",
+                  source_trust=1.0, hops=1),
+        Candidate("http://b.spam.test/", depth=1, cash=0.01, source_host="a.spam.test",
+                  source_trust=1.0),
+    ])
+    assert await trust_of(store, "farm.test") == 0.0
+    assert await trust_of(store, "www.s.test") == pytest.approx(SEED_SHARE)
+    assert await trust_of(store, "b.spam.test") == 0.0
+    pk = store.keys.part(partition_of("b.spam.test", store.partitions))
+    assert await store.redis.pfcount(pk.linking_hosts("b.spam.test")) == 1
+    assert await store.redis.pfcount(pk.trusted_hosts("b.spam.test")) == 0
+    # a plain link between the same two hosts in the same batch still hands trust on
+    await adm.admit([
+        Candidate("http://door.test/", depth=1, cash=0.01, source_host="t.test",
+                  source_trust=1.0, hops=1),
+        Candidate("http://door.test/page", depth=1, cash=0.01, source_host="t.test",
+                  source_trust=1.0),
+    ])
+    assert await trust_of(store, "door.test") == pytest.approx(SEED_SHARE)
