@@ -65,9 +65,10 @@ DEFAULT_MAX_BYTES = 512 * 1024
 DEFAULT_LRU_ENTRIES = 10_000
 COMPRESS_MIN_BYTES = 2048  # bodies at least this long are stored zlib-compressed
 ZLIB_LEVEL = 6
-LOCK_TTL_S = 90.0  # longer than a whole robots fetch with its redirects
+LOCK_TTL_S = 10.0  # the holder renews it every third of this while it fetches, so a
+                  # dead holder's lock frees within this long
 WRITE_LINGER_S = 0.02  # a fetched entry waits this long for others to share its round trip
-LOCK_WAIT_S = 30.0  # then fetch anyway rather than stall behind a dead lock holder
+LOCK_WAIT_S = 30.0  # then fetch anyway rather than stall behind a live but stuck holder
 POLL_FIRST_S = 0.02
 POLL_MAX_S = 0.5
 MS_PER_S = 1000
@@ -92,6 +93,11 @@ _PATTERN_KEPT_TRIPLETS = _URL_KEPT_TRIPLETS | {b"2A", b"24"}  # a literal "*" or
 _MATCH_SAFE = "/%"
 _NOTHING_TO_ENCODE = re.compile(r"[A-Za-z0-9_.~/\-]*")
 
+# KEYS[1] lock key, ARGV[1] our token, ARGV[2] TTL in ms: renew the lock if still ours.
+_RENEW_LOCK = """
+if redis.call('GET', KEYS[1]) == ARGV[1] then return redis.call('PEXPIRE', KEYS[1], ARGV[2]) end
+return 0
+"""
 # KEYS[1] lock key, ARGV[1] our token: delete the lock only if we still hold it.
 _RELEASE_LOCK = """
 if redis.call('GET', KEYS[1]) == ARGV[1] then return redis.call('DEL', KEYS[1]) end
@@ -424,6 +430,7 @@ class RobotsCache:
         self._sleep = sleep
         self._read_or_lock = redis.register_script(_READ_OR_LOCK)
         self._store_and_unlock = redis.register_script(_STORE_AND_UNLOCK)
+        self._renew_lock = redis.register_script(_RENEW_LOCK)
         # hosts met together (a lease brings several new ones) share a round trip; an
         # entry waits a little for company on its way out: only its own host waits on it
         self._reads = CallBatcher(redis)
@@ -509,11 +516,17 @@ class RobotsCache:
             pause = min(pause * 2, POLL_MAX_S)
 
     async def _fetch_and_store(self, origin: str, key: str, lock_key: str, token: str) -> _Entry:
-        """Fetch, write the entry, and release the lock if ``token`` still holds it."""
+        """Fetch, write the entry, and release the lock if ``token`` still holds it. The
+        lock is renewed while the fetch runs: a worker killed mid-fetch holds it no longer
+        than the lock's TTL, however long fetches may take."""
+        renew = asyncio.create_task(self._renew(lock_key, token)) if token else None
         try:
             result = await self._fetch(robots_url(origin))
         except SluiceError as exc:
             result = RobotsFetchResult(status=None, error=f"{type(exc).__name__}: {exc}")
+        finally:
+            if renew is not None:
+                renew.cancel()
         state = state_for_status(result.status)
         now = self._clock()
         ttl = self._error_ttl_s if state == STATE_DISALLOW_ALL else self._ttl_s
@@ -521,6 +534,15 @@ class RobotsCache:
         entry = _Entry(result.status, body, result.error or "", now, now + ttl)
         await self._write(key, entry, ttl, lock_key, token)
         return entry
+
+    async def _renew(self, lock_key: str, token: str) -> None:
+        """Keep our lock alive while we fetch (until cancelled)."""
+        while True:
+            await asyncio.sleep(self._lock_ttl_ms / MS_PER_S / 3)
+            try:
+                await self._renew_lock([lock_key], [token, self._lock_ttl_ms])
+            except (RedisError, OSError):
+                return  # Redis away: the lock lapses, another worker may fetch
 
     async def _write(self, key: str, entry: _Entry, ttl_s: float, lock_key: str,
                      token: str) -> None:

@@ -103,12 +103,16 @@ def raised_inside_redis_client(exc: BaseException) -> bool:
     transport under it), not by sluice: during a Cluster failover redis-py's asyncio
     client can raise AttributeError or RuntimeError on a connection torn down under a
     command, where a ConnectionError was meant."""
+    files = []
     tb = exc.__traceback__
-    last = None
     while tb is not None:
-        last = tb.tb_frame.f_code.co_filename
+        files.append(tb.tb_frame.f_code.co_filename)
         tb = tb.tb_next
-    return last is not None and "/redis/" in last
+    if not files or not any("/redis/" in f for f in files):
+        return False
+    # raised in redis-py itself, or in the event loop's transport it was writing to
+    # (uvloop's handles are Cython: their frames name .pyx files)
+    return "/redis/" in files[-1] or "uvloop" in files[-1]
 
 
 @contextlib.asynccontextmanager

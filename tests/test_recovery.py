@@ -100,6 +100,21 @@ async def test_a_connection_torn_down_inside_the_client_is_unavailability(error:
             boom()
 
 
+async def test_a_transport_closed_under_the_client_is_unavailability() -> None:
+    # uvloop raises from its Cython handle, called by redis-py's connection code
+    transport = _raiser("uvloop/handles/handle.pyx",
+                        "RuntimeError('unable to perform operation on <TCPTransport closed=True>')")
+    scope: dict[str, Any] = {"transport": transport}
+    exec(compile("def write():\n    transport()\n",
+                 "/venv/lib/python3.11/site-packages/redis/asyncio/connection.py", "exec"), scope)
+    with pytest.raises(StoreUnavailable, match="connection torn down"):
+        async with redis_boundary("lease"):
+            scope["write"]()
+    with pytest.raises(RuntimeError):  # the same error with no redis-py frame is a bug
+        async with redis_boundary("lease"):
+            transport()
+
+
 async def test_a_bug_of_our_own_is_not_taken_for_unavailability() -> None:
     boom = _raiser(frontier.store.__file__, "AttributeError('a bug')")
     with pytest.raises(AttributeError, match="a bug"):
