@@ -152,9 +152,10 @@ def job_settings(name: str, web: WebThread, **over: Any) -> dict[str, Any]:
         "seeds": list(web.web.seeds),
         "scope": {"allow_hosts": ["*.test"]},
         "budget": {"max_pages_per_host": 1_000_000},  # no budget limit in these tests
-        # no earned host budget either, and no slow lane for hosts the link-spam defence
-        # does not trust (the synthetic web's small special hosts are among them)
-        "priority": {"host_budget_base": 0, "untrusted_delay_s": 0.0, "suspect_delay_s": 0.0},
+        # no earned host budget either, and neither a slow lane nor a probation for hosts
+        # the link-spam defence does not trust yet (the synthetic web's small hosts)
+        "priority": {"host_budget_base": 0, "untrusted_delay_s": 0.0, "suspect_delay_s": 0.0,
+                     "probation_s": 0.0},
         "politeness": {"min_delay_s": 0.05, "response_time_factor": 0.0,
                        "retry_backoff_s": 0.2, "crawl_delay_cap_s": 0.2},
         "fetch": {"user_agent": USER_AGENT, "map_hosts": [web.host_map], "concurrency": 16,
