@@ -65,6 +65,11 @@ def crawl_result(tmp_path_factory: pytest.TempPathFactory, redis_server: RedisSe
                 "name": "e2e", "seeds": list(web.seeds), "redis": {"url": redis_server.url},
                 "scope": {"allow_hosts": ["*.test"]},
                 "budget": {"max_pages_per_host": HOST_BUDGET},
+                # this web checks crawling behaviour; the link-spam slow lanes (probation,
+                # untrusted and suspect gaps: tests/test_spam_signals.py and the ordering
+                # bench check them) would stretch it to minutes
+                "priority": {"untrusted_delay_s": 0.0, "suspect_delay_s": 0.0,
+                             "probation_s": 0.0},
                 "politeness": {"min_delay_s": MIN_DELAY_S, "response_time_factor": 0.0,
                                "retry_backoff_s": 0.2},
                 "fetch": {"user_agent": UA, "map_hosts": [f"*.test=127.0.0.1:{port}"],
