@@ -211,3 +211,8 @@ class Keys:
         """LIST of JSON: the latest robots.txt fetches that ended in 'disallow all' (newest
         first)."""
         return f"{self.tag}:robots-failures"
+
+    def payload_digests(self, digest: str) -> str:
+        """HASH payload digest -> 'WARC-Date record-ID URL' of the first capture with that
+        payload (one of 256 shards): later copies are written as revisit records."""
+        return f"{PREFIX}:{{{self.job}.pd{mmh3.hash(digest, signed=False) & 0xff}}}:pd"

@@ -217,14 +217,16 @@ def test_warcio_reads_back_bodies_and_links(written: Written) -> None:
     for i, (_, headers, _, content) in enumerate(metadata):
         # ISO 28500 s.5.11 WARC-Refers-To names the described response.
         assert by_id[headers["WARC-Refers-To"]][0] == "response"
-        assert headers["Content-Type"] == "application/warc-fields"
+        # ISO 28500 s.6.6: a metadata block of any format its Content-Type names; ours
+        # is one JSON document (RFC 8259) per page.
+        assert headers["Content-Type"] == "application/json"
         # s.4 / s.5.9: metadata has no payload, hence no payload digest.
         assert "WARC-Payload-Digest" not in headers
-        assert content.decode().split("\r\n") == [
-            f"outlink: http://shop{i}.test/next Next  page",
-            "outlink: http://other.test/a%20b",
-            "",
-        ]
+        assert json.loads(content) == {"url": f"http://shop{i}.test/item/{i}", "links": [
+            {"url": f"http://shop{i}.test/next", "anchor": "Next  page", "followed": True,
+             "why": None},
+            {"url": "http://other.test/a%20b", "anchor": "", "followed": True, "why": None},
+        ]}
 
 
 def test_request_record_holds_the_request_head(written: Written) -> None:
@@ -406,19 +408,22 @@ def test_no_metadata_record_without_outlinks(tmp_path: Path) -> None:
 
 @pytest.mark.parametrize("anchor, expected", [
     ("Next page", "Next page"),  # nothing to escape
-    ("caf\u00e9", "caf\u00e9"),  # UTF-8 in a warc-fields block (ISO 28500 s.6.6)
+    ("caf\u00e9", "caf\u00e9"),  # JSON text is UTF-8 (RFC 8259 s.8.1)
     ("a\ud800b", "a\ufffdb"),  # a lone surrogate cannot be UTF-8 (RFC 3629 s.3): U+FFFD
+    ("a\r\nb", "a\r\nb"),  # a line break is escaped in a JSON string (RFC 8259 s.7)
 ])
-def test_outlink_lines_read_back(tmp_path: Path, anchor: str, expected: str) -> None:
+def test_link_record_reads_back(tmp_path: Path, anchor: str, expected: str) -> None:
     archive = new_archive(tmp_path)
     archive.write_exchange("http://e.test/", ("GET", "/", []), 200, "OK", [], b"y", FETCHED,
-                           None, [("http://e.test/a", anchor), ("http://f.test/", "home")])
+                           None, [("http://e.test/a", anchor), ("http://f.test/", "home", "nofollow")])
     archive.close()
     with open(archive.files[0], "rb") as stream:  # reference reader: warcio
-        blocks = [rec.content_stream().read() for rec in ArchiveIterator(stream)
-                  if rec.rec_type == "metadata"]
-    assert blocks[0].decode("utf-8").split("\r\n") == [
-        f"outlink: http://e.test/a {expected}", "outlink: http://f.test/ home", ""]
+        blocks = [(rec.rec_headers.get_header("Content-Type"), rec.content_stream().read())
+                  for rec in ArchiveIterator(stream) if rec.rec_type == "metadata"]
+    assert blocks[0][0] == "application/json"
+    assert json.loads(blocks[0][1]) == {"url": "http://e.test/", "links": [
+        {"url": "http://e.test/a", "anchor": expected, "followed": True, "why": None},
+        {"url": "http://f.test/", "anchor": "home", "followed": False, "why": "nofollow"}]}
 
 
 def test_rotation_starts_each_file_with_warcinfo(tmp_path: Path) -> None:
@@ -535,7 +540,8 @@ def test_fetch_log_lines_and_fields(tmp_path: Path) -> None:
     first, second = lines
     assert set(first) == {"url", "status", "outcome", "reason", "fetched_at", "bytes",
                           "duration_s", "depth", "host", "warc_file", "warc_offset",
-                          "content_type", "simhash"}
+                          "content_type", "simhash", "duplicate_of", "near_duplicate_of",
+                          "hamming"}
     assert first["fetched_at"] == "2031-05-06T07:08:09.250000Z"
     assert first["simhash"] == "00000000000000ab"
     assert first["duration_s"] == 0.123457
@@ -607,24 +613,24 @@ def assert_warcio_check_passes(path: Path) -> None:
     assert done.returncode == 0, done.stdout + done.stderr
 
 
-@pytest.mark.parametrize("link, anchor, line", [
+@pytest.mark.parametrize("link, anchor, url, text", [
     # RFC 3987 s.3.1: an IRI maps to a URI by percent-encoding its UTF-8 octets.
-    ("http://e.test/caf\u00e9", "menu", "outlink: http://e.test/caf%C3%A9 menu"),
+    ("http://e.test/caf\u00e9", "menu", "http://e.test/caf%C3%A9", "menu"),
     # The HTML parser turns the reference &#0; into U+FFFD (WHATWG HTML, numeric
     # character reference end state).
-    ("http://e.test/\ufffd", "zero", "outlink: http://e.test/%EF%BF%BD zero"),
+    ("http://e.test/\ufffd", "zero", "http://e.test/%EF%BF%BD", "zero"),
     # An undecodable byte kept as a surrogate (PEP 383) goes back to that octet.
-    ("http://e.test/\udce9", "raw", "outlink: http://e.test/%E9 raw"),
+    ("http://e.test/\udce9", "raw", "http://e.test/%E9", "raw"),
     # Any other lone surrogate cannot be UTF-8 (RFC 3629 s.3): U+FFFD.
-    ("http://e.test/\ud800", "lone", "outlink: http://e.test/%EF%BF%BD lone"),
+    ("http://e.test/\ud800", "lone", "http://e.test/%EF%BF%BD", "lone"),
     # Controls and whitespace percent-encoded (ISO 28500 s.5; RFC 3986 s.2.1).
-    ("http://e.test/a\x00b\r\nc d", "nul", "outlink: http://e.test/a%00b%0D%0Ac%20d nul"),
-    # Anchor text: line breaks become spaces, UTF-8 stays (ISO 28500 s.6.6 warc-fields).
-    ("http://e.test/ok", "a\r\nb\x00\u00e9\ud800",
-     "outlink: http://e.test/ok a  b\x00\u00e9\ufffd"),
+    ("http://e.test/a\x00b\r\nc d", "nul", "http://e.test/a%00b%0D%0Ac%20d", "nul"),
+    # Anchor text: any character a JSON string holds (RFC 8259 s.7), a lone surrogate
+    # as U+FFFD (RFC 8259 s.8.1: UTF-8).
+    ("http://e.test/ok", "a\r\nb\x00\u00e9\ud800", "http://e.test/ok", "a\r\nb\x00\u00e9\ufffd"),
 ])
 def test_outlinks_with_any_text_are_written_and_read_back(
-    tmp_path: Path, link: str, anchor: str, line: str
+    tmp_path: Path, link: str, anchor: str, url: str, text: str
 ) -> None:
     archive = new_archive(tmp_path)
     archive.write_exchange("http://e.test/", ("GET", "/", []), 200, "OK", [], b"y", FETCHED,
@@ -632,7 +638,8 @@ def test_outlinks_with_any_text_are_written_and_read_back(
     archive.close()
     blocks = [content for kind, _, _, content in read_checked(archive.files[0])
               if kind == "metadata"]
-    assert blocks[0].decode("utf-8").split("\r\n") == [line, "outlink: http://f.test/ home", ""]
+    links = json.loads(blocks[0].decode("utf-8"))["links"]
+    assert [(ln["url"], ln["anchor"]) for ln in links] == [(url, text), ("http://f.test/", "home")]
     assert_warcio_check_passes(archive.files[0])
 
 

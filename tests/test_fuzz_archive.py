@@ -150,9 +150,10 @@ def test_any_exchange_is_written_whole_and_passes_warcio_check(
                 assert payload.endswith(exchange["body"])
             if exchange["outlinks"]:
                 block = next(metadata)[3]
-                lines = block.split(b"\r\n")
-                assert lines[-1] == b"" and len(lines) - 1 == len(exchange["outlinks"])
-                assert all(line.startswith(b"outlink:") for line in lines[:-1])
+                document = json.loads(block)  # one JSON text (RFC 8259), UTF-8 (s.8.1)
+                assert len(document["links"]) == len(exchange["outlinks"])
+                assert all(ln["url"].isascii() and " " not in ln["url"]  # URIs (RFC 3986)
+                           and ln["followed"] for ln in document["links"])
         # Each RecordRef addresses its response as one gzip member (ISO 28500 annex D).
         for ref in refs:
             path = next(p for p in paths if p.name == ref.file)

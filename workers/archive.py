@@ -1,7 +1,8 @@
 """WARC 1.1 output (ISO 28500:2017) and the per-fetch JSON-lines log.
 
-``WarcArchive`` writes each fetch as a request record, a response record and,
-when outlinks are known, a metadata record, into rotating gzip files
+``WarcArchive`` writes each fetch as a request record, a response record (or, for a
+payload seen before, a revisit record) and, when outlinks are known, a metadata record
+holding the page's links as one JSON document, into rotating gzip files
 ``out_dir/warc/{prefix}-{UTC timestamp}-{serial:05d}-{pid}.warc.gz``. Each file
 starts with a warcinfo record; each record is its own gzip member, so a
 ``RecordRef`` (file name, offset, length) addresses one record directly.
@@ -16,6 +17,18 @@ WARC-Payload-Digest is then the SHA-1 of the stored body, which is what a
 reader gets back. ISO 28500 s.6 ('response') asks for the response "received
 over the network"; this rewrite is the documented deviation that keeps the record
 self-consistent.
+
+Exact duplicates. A response whose payload digest equals an earlier capture's is
+written as a ``revisit`` record with the identical-payload-digest profile (ISO
+28500:2017 s.6.7.2): WARC-Profile, WARC-Refers-To (the first capture's record ID),
+WARC-Refers-To-Target-URI, WARC-Refers-To-Date and WARC-Payload-Digest; its block is the
+HTTP head alone, no body.
+
+Links. The metadata record of a page is ``application/json``: ``{"url": page, "links":
+[{"url", "anchor", "followed", "why"}]}``, one entry per link in page order; ``why`` says
+why a link was not followed (``nofollow``, ``meta_nofollow``, ``exact_duplicate``) and
+is null for a followed one. URLs are written as URIs (as WARC-Target-URI is), anchors
+as text (a lone surrogate becomes U+FFFD, RFC 8259 s.8.1 asks for UTF-8).
 
 Request, response and metadata records are built here as bytes (header block,
 block, CRLF CRLF) and compressed one gzip member each with ISA-L (``isal``), which
@@ -90,6 +103,7 @@ from warcio.statusandheaders import (
 )
 from warcio.warcwriter import GzippingWrapper, WARCWriter
 
+from frontier.digests import Capture
 from frontier.exceptions import DiskFault
 
 log = logging.getLogger(__name__)
@@ -109,11 +123,12 @@ SERIAL_WIDTH = 5
 WARC_FORMAT = "WARC File Format 1.1"
 WARC_CONFORMS_TO = "https://iipc.github.io/warc-specifications/specifications/warc-format/warc-1.1/"
 ORIGINAL_HEADER_PREFIX = "Sluice-Original-"
-METADATA_CONTENT_TYPE = "application/warc-fields"
+LINKS_CONTENT_TYPE = "application/json"
 REQUEST_CONTENT_TYPE = "application/http; msgtype=request"
 RESPONSE_CONTENT_TYPE = "application/http; msgtype=response"
 DIGEST_ALGORITHM = "sha1"
-OUTLINK_FIELD = "outlink"
+REVISIT_PROFILE = "http://netpreserve.org/warc/1.1/revisit/identical-payload-digest"
+"""ISO 28500:2017 s.6.7.2: the WARC 1.1 identical-payload-digest profile."""
 
 _CRLF = "\r\n"
 _RECORD_END = b"\r\n\r\n"
@@ -157,6 +172,8 @@ _BASE32_PAIR_MASK = (1 << _BASE32_PAIR_BITS) - 1
 Clock = Callable[[], datetime]
 HeaderList = Sequence[tuple[str, str]]
 RequestHead = bytes | tuple[str, str, HeaderList]
+OutLink = tuple[str, str] | tuple[str, str, str | None]
+"""(URL, anchor) of a followed link, or (URL, anchor, why not followed or None)."""
 
 
 class _Writer(WARCWriter):  # type: ignore[misc]
@@ -477,6 +494,16 @@ def _record_ids(count: int) -> list[str]:
     return ids
 
 
+def new_record_id() -> str:
+    """A record ID (a version 4 UUID URN), for a record written later."""
+    return _record_ids(1)[0]
+
+
+def payload_digest(body: bytes) -> str:
+    """The WARC-Payload-Digest a response record with this body gets (ISO 28500 s.5.9)."""
+    return _digest(body)
+
+
 def _digest(*parts: bytes) -> str:
     """Labelled SHA-1 in Base32 of the concatenated parts (ISO 28500 s.5.8/5.9)."""
     hasher = hashlib.sha1()
@@ -640,19 +667,27 @@ class WarcArchive:
         body: bytes,
         fetched_at: datetime,
         remote_ip: str | None = None,
-        outlinks: Sequence[tuple[str, str]] | None = None,
+        outlinks: Sequence[OutLink] | None = None,
         *,
         body_decoded: bool = True,
         truncated: str | None = None,
+        record_id: str | None = None,
+        payload_digest: str | None = None,
+        revisit_of: Capture | None = None,
     ) -> RecordRef:
-        """Write request, response and (with outlinks) metadata records.
+        """Write request, response (or revisit) and (with outlinks) metadata records.
 
         ``request_line_and_headers`` is the raw request head (bytes) or
         ``(method, path, headers)``. ``truncated`` is a WARC-Truncated reason
         ("length", "time", "disconnect", "unspecified") for partial bodies.
         A metadata record is written only for a non-empty ``outlinks``.
-        Returns the location of the response record. Rotates afterwards when
-        the file has grown past ``max_file_bytes``.
+        ``record_id`` is the response record's ID when chosen beforehand
+        (:func:`new_record_id`), ``payload_digest`` the body's digest when known
+        (:func:`payload_digest`). With ``revisit_of`` (the first capture of the same
+        payload) the response is written as a revisit record (ISO 28500 s.6.7.2): the
+        HTTP head without the body.
+        Returns the location of the response (or revisit) record. Rotates afterwards
+        when the file has grown past ``max_file_bytes``.
 
         The exchange is written whole or not at all. Raises ``DiskFault`` when the
         folder takes no more writes (the file is then cut back to the exchange before),
@@ -662,6 +697,7 @@ class WarcArchive:
         http = target.startswith(_HTTP_SCHEMES)
         date = warc_date(fetched_at)
         request_id, response_id, metadata_id = _record_ids(3)
+        response_id = record_id or response_id
         ip_field = f"WARC-IP-Address: {_uri(remote_ip)}{_CRLF}" if remote_ip else ""
 
         request_block, request_payload = self._request_block(request_line_and_headers)
@@ -675,12 +711,20 @@ class WarcArchive:
             HTTP_VERSION, _clean(f"{response_status} {response_reason}"),
             rewrite_response_headers(response_headers, len(body), body_decoded=body_decoded),
         )
-        response = _gzip_record(
-            "response", response_id, date, target,
-            f"{ip_field}WARC-Concurrent-To: {request_id}{_CRLF}", RESPONSE_CONTENT_TYPE,
-            (http_head, body), _digest(body) if http else None,
-            _uri(truncated) if truncated else None,
-        )
+        if revisit_of is not None:
+            response = _gzip_record(
+                "revisit", response_id, date, target,
+                f"{ip_field}WARC-Concurrent-To: {request_id}{_CRLF}"
+                f"{_revisit_fields(revisit_of)}", RESPONSE_CONTENT_TYPE,
+                (http_head,), payload_digest or _digest(body),
+            )
+        else:
+            response = _gzip_record(
+                "response", response_id, date, target,
+                f"{ip_field}WARC-Concurrent-To: {request_id}{_CRLF}", RESPONSE_CONTENT_TYPE,
+                (http_head, body), (payload_digest or _digest(body)) if http else None,
+                _uri(truncated) if truncated else None,
+            )
         members = [request, response]
         if outlinks:
             members.append(self._metadata_record(target, date, metadata_id, response_id,
@@ -824,26 +868,41 @@ class WarcArchive:
     @staticmethod
     def _metadata_record(
         target: str, date: str, record_id: str, response_id: str,
-        outlinks: Sequence[tuple[str, str]],
+        outlinks: Sequence[OutLink],
     ) -> bytes:
-        """Outlinks as application/warc-fields; no payload, so no payload digest (s.5.9)."""
-        links = "".join([link for link, _ in outlinks])
-        anchors = [anchor for _, anchor in outlinks]
-        joined = "".join(anchors)
-        if (all(anchors) and joined.isascii() and links.isascii() and "\r" not in joined
-                and "\n" not in joined and not _URI_UNSAFE_SEARCH(links)):  # nothing to escape
-            text = _CRLF.join([f"{OUTLINK_FIELD}: {link} {anchor}" for link, anchor in outlinks])
-            block = (text + _CRLF).encode("ascii")
-        else:
-            lines = [
-                f"{OUTLINK_FIELD}: {_uri(link)} {_clean(anchor)}".rstrip() + _CRLF
-                for link, anchor in outlinks
-            ]
-            block = "".join(lines).encode("utf-8")
+        """The page's links as one JSON document (see the module docstring); no payload,
+        so no payload digest (ISO 28500 s.5.9)."""
         return _gzip_record(
             "metadata", record_id, date, target, f"WARC-Refers-To: {response_id}{_CRLF}",
-            METADATA_CONTENT_TYPE, (block,),
+            LINKS_CONTENT_TYPE, (links_document(target, outlinks),),
         )
+
+
+def links_document(target: str, outlinks: Sequence[OutLink]) -> bytes:
+    """``{"url": target, "links": [...]}`` as UTF-8 JSON (RFC 8259)."""
+    links = []
+    for link in outlinks:
+        why = link[2] if len(link) > 2 else None
+        links.append({"url": _uri(link[0]), "anchor": link[1], "followed": why is None,
+                      "why": why})
+    document = {"url": target, "links": links}
+    try:
+        return orjson.dumps(document)
+    except orjson.JSONEncodeError:  # a lone surrogate in an anchor (or a reason)
+        for entry in links:
+            for name in ("anchor", "why"):
+                if entry[name] is not None:  # PEP 383 bytes back, then U+FFFD for bad ones
+                    entry[name] = _utf8(entry[name]).decode("utf-8", "replace")
+        return orjson.dumps(document)
+
+
+def _revisit_fields(first: Capture) -> str:
+    """The identical-payload-digest revisit's named fields (ISO 28500 s.6.7.2, s.5.11,
+    and WARC 1.1's WARC-Refers-To-Target-URI and WARC-Refers-To-Date)."""
+    return (f"WARC-Profile: {REVISIT_PROFILE}{_CRLF}"
+            f"WARC-Refers-To: {first.record_id}{_CRLF}"
+            f"WARC-Refers-To-Target-URI: {_uri(first.url)}{_CRLF}"
+            f"WARC-Refers-To-Date: {first.date}{_CRLF}")
 
 
 @dataclass(frozen=True, slots=True)
@@ -863,6 +922,9 @@ class FetchEntry:
     warc_offset: int | None = None
     content_type: str | None = None
     simhash: int | None = None
+    duplicate_of: str | None = None  # the URL first captured with the same payload
+    near_duplicate_of: str | None = None  # the URL whose SimHash this page's is near
+    hamming: int | None = None  # bits between the two SimHashes
 
     def to_json(self) -> dict[str, Any]:
         """JSON-ready dict: ISO UTC time ending in Z, SimHash as 16 hex digits."""

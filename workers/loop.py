@@ -10,10 +10,11 @@ from __future__ import annotations
 import asyncio
 import dataclasses
 import email.utils
+import functools
 import logging
 import os
 import time
-from collections.abc import Callable
+from collections.abc import Callable, Sequence
 from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass, field
 from datetime import UTC, datetime
@@ -24,18 +25,20 @@ from prometheus_client import CollectorRegistry
 
 from frontier.admission import Admission
 from frontier.budget import PageBudget
+from frontier.digests import Capture, PayloadDigestIndex
 from frontier.exceptions import (
-    AddressRefused, DiskFault, FetchError, SluiceError, StoreUnavailable)
+    AddressRefused, DiskFault, FetchError, SluiceError, StoreError, StoreUnavailable)
 from frontier.metrics import WorkerMetrics
 from frontier.model import Candidate, Completion, Lease, Outcome
 from frontier.priority import distribute, url_host
 from frontier.robots import RobotsCache, RobotsFetchResult, RobotsRules, robots_url
 from frontier.settings import JobSettings
-from frontier.simhash import NearDuplicateIndex, simhash64
+from frontier.simhash import NearDuplicateIndex, hamming, simhash64
 from frontier.store import FrontierStore
 from frontier.urls import canonicalize
 from frontier.worker_report import WorkerReport
-from workers.archive import FetchEntry, FetchLog, WarcArchive
+from workers.archive import (
+    FetchEntry, FetchLog, OutLink, WarcArchive, new_record_id, payload_digest, warc_date)
 from workers.fetcher import Fetcher, Response
 from workers.offload import PagePool
 from workers.parser import ParsedPage, looks_binary, parse_html
@@ -80,6 +83,8 @@ class FetchedPage:
     base: Completion
     reason: str | None  # e.g. truncated_length
     fetched_at: datetime  # WARC-Date and the log's time: when the response came, not later
+    digest: str | None = None  # payload digest, once checked against the job's first captures
+    record_id: str | None = None  # the response record's ID, chosen before it is written
 
 
 def retry_after_s(value: str | None, now: float) -> float | None:
@@ -112,10 +117,23 @@ async def _set_within(event: asyncio.Event, seconds: float) -> bool:
 
 
 def join_reasons(*reasons: str | None) -> str | None:
-    """Several reasons for one fetch-log line, comma-separated (e.g.
-    ``truncated_length,links_capped``); None if there are none."""
+    """Several reasons for one fetch-log line, comma-separated in the order given (the
+    worker's order: truncation, links_capped, exact_duplicate, near_duplicate); None if
+    there are none."""
     kept = [r for r in reasons if r]
     return ",".join(kept) if kept else None
+
+
+def link_record(page: ParsedPage, follow_nofollow: bool,
+                duplicate: bool) -> list[tuple[str, str, str | None]]:
+    """Each link of ``page`` as (URL, anchor, why it is not followed or None)."""
+    if duplicate:
+        return [(ln.url, ln.anchor, "exact_duplicate") for ln in page.links]
+    if follow_nofollow:
+        return [(ln.url, ln.anchor, None) for ln in page.links]
+    if page.meta_nofollow:
+        return [(ln.url, ln.anchor, "meta_nofollow") for ln in page.links]
+    return [(ln.url, ln.anchor, "nofollow" if ln.nofollow else None) for ln in page.links]
 
 
 class Worker:
@@ -148,6 +166,7 @@ class Worker:
         self.budget = PageBudget(store.redis, store.keys, self.settings.budget.max_pages)
         self.near_dups = NearDuplicateIndex(store.redis, store.keys.near_dup,
                                             page_key=store.keys.near_dup_page)
+        self.first_captures = PayloadDigestIndex(store.redis, store.keys.payload_digests)
         self._fetcher = Fetcher(self.settings.fetch, ua)
         self._robots = RobotsCache(
             store.redis, lambda h: store.keys.part_for(h).robots(h),
@@ -524,8 +543,9 @@ class Worker:
                                                **ref)
         return FetchedPage(lease, resp, base, reason, datetime.now(UTC))
 
-    def _finish_pages(self) -> None:
-        """Parse, fingerprint, archive and score the fetched HTML pages, a step at a time.
+    async def _finish_pages(self) -> None:
+        """Parse, fingerprint, check payload digests (one round trip), archive and score
+        the fetched HTML pages, a step at a time.
 
         Each step runs over the whole batch before the next begins, so its code and data
         stay hot in the CPU caches: a page's steps run one after another, interleaved
@@ -554,17 +574,45 @@ class Worker:
                 self._record(*self._internal_error(p.lease, exc))
                 continue
             fingerprinted.append((p, page, fingerprint))
-        for p, page, fingerprint in fingerprinted:
+        firsts = await self._first_captures([p for p, _, _ in fingerprinted])
+        follow_nofollow = self.settings.fetch.follow_nofollow
+        for (p, page, fingerprint), first in zip(fingerprinted, firsts):
             if self._fault is not None:
                 break  # left held: handed back when the worker stops
             try:
-                outlinks = [(ln.url, ln.anchor) for ln in page.links]
-                ref = self._archive(p.lease, p.resp, outlinks, p.fetched_at)
-                self._record(*self._finish_page(p, page, fingerprint, outlinks, ref))
+                links = link_record(page, follow_nofollow, first is not None)
+                ref = self._archive(p.lease, p.resp, links, p.fetched_at, page=p, first=first)
+                self._record(*self._finish_page(p, page, fingerprint, links, ref, first))
             except DiskFault as exc:
                 self._disk_fault(exc)
             except Exception as exc:  # a bug must not stop the batch: fetch it again later
                 self._record(*self._internal_error(p.lease, exc))
+
+    async def _first_captures(self, pages: list[FetchedPage]) -> list[Capture | None]:
+        """Before pages are archived: for each, the job's earlier capture of the same
+        payload under another URL (to refer to with a revisit record), or None. One round
+        trip for the batch. Truncated and empty bodies are not compared. When Redis fails
+        the pages are archived in full (a copy too many, never a page lost)."""
+        out: list[Capture | None] = [None] * len(pages)
+        checked = [i for i, p in enumerate(pages) if p.resp.body and not p.resp.truncated]
+        if not checked:
+            return out
+        for i in checked:
+            p = pages[i]
+            p.digest, p.record_id = payload_digest(p.resp.body), new_record_id()
+        try:
+            firsts = await self.first_captures.claim(
+                [pages[i].digest or "" for i in checked],
+                [Capture(pages[i].lease.url, warc_date(pages[i].fetched_at),
+                         pages[i].record_id or "") for i in checked])
+        except StoreError as exc:
+            self.metrics.store_errors.inc()
+            log.warning("payload digests unavailable, archiving %d pages in full: %s",
+                        len(checked), exc)
+            return out
+        for i, first in zip(checked, firsts):
+            out[i] = first
+        return out
 
     async def _finish_big_page(self, p: FetchedPage) -> tuple[Finished, FetchEntry]:
         """A page over ``fetch.offload_bytes``: parsed and fingerprinted in a child
@@ -582,29 +630,30 @@ class Worker:
                            crawl_delay_s=p.base.crawl_delay_s)
             return Finished(c), self._entry(p.lease, Outcome.FAILED, "parse_timeout", p.resp,
                                             p.fetched_at)
-        outlinks = [(ln.url, ln.anchor) for ln in page.links]
-        ref = await self._archive_any(p.lease, p.resp, outlinks, p.fetched_at)
-        return self._finish_page(p, page, fingerprint, outlinks, ref)
+        first = (await self._first_captures([p]))[0]
+        links = link_record(page, fetch.follow_nofollow, first is not None)
+        ref = await self._archive_any(p.lease, p.resp, links, p.fetched_at, page=p, first=first)
+        return self._finish_page(p, page, fingerprint, links, ref, first)
 
     def _finish_page(self, p: FetchedPage, page: ParsedPage, fingerprint: int | None,
-                     outlinks: list[tuple[str, str]],
-                     ref: dict[str, Any]) -> tuple[Finished, FetchEntry]:
-        """Hand an archived page's cash on to the links it follows."""
-        fetch, lease = self.settings.fetch, p.lease
-        if fetch.follow_nofollow:
-            follow = outlinks
-        elif page.meta_nofollow:
-            follow = []
-        else:
-            follow = [(ln.url, ln.anchor) for ln in page.links if not ln.nofollow]
+                     links: list[tuple[str, str, str | None]], ref: dict[str, Any],
+                     first: Capture | None) -> tuple[Finished, FetchEntry]:
+        """Hand an archived page's cash on to the links it follows. An exact duplicate
+        (``first``: the earlier capture of its payload) follows none: its content was seen."""
+        lease = p.lease
+        follow = [(url, anchor) for url, anchor, why in links if why is None]
         done = self._fetched_urls
-        links = distribute(lease.url, lease.cash, lease.depth, follow, self.settings.priority,
-                           known=done)
+        candidates = distribute(lease.url, lease.cash, lease.depth, follow,
+                                self.settings.priority, known=done)
         linked = self._links_to_fetched(lease, follow) if done else []
-        reason = join_reasons(p.reason, "links_capped" if page.links_capped else None)
+        reason = join_reasons(p.reason, "links_capped" if page.links_capped else None,
+                              "exact_duplicate" if first is not None else None)
         entry = self._entry(lease, Outcome.FETCHED, reason, p.resp, p.fetched_at,
-                            simhash=fingerprint, **ref)
-        return Finished(p.base, links, linked, simhash=fingerprint), entry
+                            simhash=fingerprint, duplicate_of=first.url if first else None,
+                            **ref)
+        # an exact copy is not compared by SimHash: its near-duplicate is its own original
+        return Finished(p.base, candidates, linked,
+                        simhash=fingerprint if first is None else None), entry
 
     def _links_to_fetched(self, lease: Lease,
                           follow: list[tuple[str, str]]) -> list[tuple[str, str]]:
@@ -616,27 +665,37 @@ class Worker:
         return [(host, url) for url, _ in follow if url in done and not url.startswith(own)]
 
     async def _archive_any(self, lease: Lease, resp: Response,
-                           outlinks: list[tuple[str, str]] | None, at: datetime) -> dict[str, Any]:
+                           outlinks: Sequence[OutLink] | None, at: datetime, *,
+                           page: FetchedPage | None = None,
+                           first: Capture | None = None) -> dict[str, Any]:
         """Archive a response: one over ``fetch.offload_bytes`` in the archive thread (to
         WARC files of its own), any other at once."""
         if len(resp.body) <= self.settings.fetch.offload_bytes:
-            return self._archive(lease, resp, outlinks, at)
+            return self._archive(lease, resp, outlinks, at, page=page, first=first)
         if self._archive_thread is None or self._big_archive is None:
             self._archive_thread = ThreadPoolExecutor(1, thread_name_prefix="sluice-archive")
             self._big_archive = self._new_archive()
             self.metrics.watch_archive(self._big_archive)
         return await asyncio.get_running_loop().run_in_executor(
-            self._archive_thread, self._archive, lease, resp, outlinks, at, self._big_archive)
+            self._archive_thread, functools.partial(
+                self._archive, lease, resp, outlinks, at, self._big_archive, page=page,
+                first=first))
 
-    def _archive(self, lease: Lease, resp: Response, outlinks: list[tuple[str, str]] | None,
-                 at: datetime, archive: WarcArchive | None = None) -> dict[str, Any]:
+    def _archive(self, lease: Lease, resp: Response, outlinks: Sequence[OutLink] | None,
+                 at: datetime, archive: WarcArchive | None = None, *,
+                 page: FetchedPage | None = None, first: Capture | None = None) -> dict[str, Any]:
+        """Write the exchange; a page with an earlier capture of its payload (``first``)
+        as a revisit record referring to it, under the record ID its digest was claimed
+        with."""
         archive = archive or self.archive
         assert archive is not None
         path = "/" + lease.url.split("/", 3)[3] if lease.url.count("/") >= 3 else "/"
         ref = archive.write_exchange(
             lease.url, ("GET", path, resp.request_headers), resp.status, resp.reason,
             resp.headers, resp.body, at, remote_ip=resp.remote_ip,
-            outlinks=outlinks, truncated=resp.truncated)
+            outlinks=outlinks, truncated=resp.truncated,
+            record_id=page.record_id if page else None,
+            payload_digest=page.digest if page else None, revisit_of=first)
         return {"warc_file": ref.file, "warc_offset": ref.offset}
 
     # -- robots -------------------------------------------------------------------------
@@ -679,11 +738,11 @@ class Worker:
 
     async def _flush(self) -> None:
         """Finish fetched pages, admit the links of finished leases, then complete them."""
-        self._finish_pages()
+        await self._finish_pages()
         while self._finished:
             batch, self._finished = self._finished, []
             try:
-                await self._drop_near_duplicates(batch)
+                await self._mark_near_duplicates(batch)
                 links = [c for f in batch for c in f.links]
                 linked = [pair for f in batch for pair in f.linked]
                 if links or linked:
@@ -715,7 +774,7 @@ class Worker:
             if await self._log_ended():
                 self._log_flush()
             await self.budget.release(released)
-            self._finish_pages()  # pages fetched while this batch was written back
+            await self._finish_pages()  # pages fetched while this batch was written back
 
     async def _log_ended(self, *, force: bool = False) -> bool:
         """Copy the frontier's ended journal (URLs excluded on admission, dead, dropped
@@ -760,8 +819,10 @@ class Worker:
             self._fetched_urls.clear()
         self._fetched_urls.add(url)
 
-    async def _drop_near_duplicates(self, batch: list[Finished]) -> None:
-        """A near-duplicate page stays archived, but its links are not followed."""
+    async def _mark_near_duplicates(self, batch: list[Finished]) -> None:
+        """A near-duplicate page stays archived in full and its links still go to
+        admission (a near copy may be the only way to a page; URL-seen absorbs the
+        repeats); its log line names the page it matched and the bits between them."""
         checked = [f for f in batch if f.simhash is not None and f.simhash_checked is False]
         if not checked:
             return
@@ -771,9 +832,11 @@ class Worker:
             f.simhash_checked = True
             if match is not None:
                 self.metrics.near_duplicates.inc()
-                f.links, f.linked = [], []
-                if f.entry is not None:
-                    f.entry = dataclasses.replace(f.entry, reason="near_duplicate")
+                if f.entry is not None and f.simhash is not None:
+                    fingerprint, url = match
+                    f.entry = dataclasses.replace(
+                        f.entry, reason=join_reasons(f.entry.reason, "near_duplicate"),
+                        near_duplicate_of=url, hamming=hamming(f.simhash, fingerprint))
 
 
 def canonical_or_raw(href: str, base: str) -> str:
