@@ -58,6 +58,9 @@ async def crawl_chain(tmp_path: Path, redis_url: str, seed: str,
                            "obey_robots": False},
             "scope": {"allow_hosts": ["*.test"]},
             "fetch": {"user_agent": UA, "map_hosts": [f"*.test=127.0.0.1:{port}"]},
+            # a redirect into another domain hands on no trust: each hop's host would wait
+            # out a link-spam probation (tests/test_spam_signals.py checks that)
+            "priority": {"untrusted_delay_s": 0.0, "suspect_delay_s": 0.0, "probation_s": 0.0},
         }
         for key, value in overrides.items():
             data.setdefault(key, {}).update(value)
