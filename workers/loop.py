@@ -34,7 +34,7 @@ from frontier.priority import distribute, url_host
 from frontier.robots import RobotsCache, RobotsFetchResult, RobotsRules, robots_url
 from frontier.settings import JobSettings
 from frontier.simhash import NearDuplicateIndex, hamming, simhash64
-from frontier.store import FrontierStore
+from frontier.store import FrontierStore, redis_boundary
 from frontier.urls import canonicalize
 from frontier.worker_report import WorkerReport
 from workers.archive import (
@@ -826,8 +826,9 @@ class Worker:
         checked = [f for f in batch if f.simhash is not None and f.simhash_checked is False]
         if not checked:
             return
-        matches = await self.near_dups.match_pages(
-            [f.simhash for f in checked], [f.completion.lease.url for f in checked])
+        async with redis_boundary("near-duplicate check"):  # a failover: retried later
+            matches = await self.near_dups.match_pages(
+                [f.simhash for f in checked], [f.completion.lease.url for f in checked])
         for f, match in zip(checked, matches):
             f.simhash_checked = True
             if match is not None:
