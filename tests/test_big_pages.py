@@ -19,6 +19,7 @@ from warcio.archiveiterator import ArchiveIterator
 from frontier.cli import _crawl
 from frontier.settings import load_settings
 from frontier.store import FrontierStore
+from tests.loopback import start_site
 from tests.servers import RedisServer
 from workers.offload import PagePool
 
@@ -55,13 +56,7 @@ async def serve(pages: dict[tuple[str, str], bytes],
             return web.Response(status=404)
         return web.Response(body=body, content_type="text/html")
 
-    app = web.Application()
-    app.router.add_get("/{tail:.*}", handle)
-    runner = web.AppRunner(app)
-    await runner.setup()
-    site = web.TCPSite(runner, "127.0.0.1", 0)
-    await site.start()
-    return runner, site._server.sockets[0].getsockname()[1]  # type: ignore[union-attr]
+    return await start_site(handle)
 
 
 async def crawl(tmp_path: Path, redis_url: str, pages: dict[tuple[str, str], bytes],

@@ -27,6 +27,7 @@ from frontier.cli import _crawl
 from frontier.digests import Capture, PayloadDigestIndex
 from frontier.keys import Keys
 from frontier.settings import load_settings
+from tests.loopback import start_site
 from tests.servers import RedisServer
 from workers.archive import WarcArchive, payload_digest
 
@@ -102,13 +103,7 @@ async def crawl(tmp_path: Path, redis_url: str, pages: dict[tuple[str, str], byt
     client = connect(redis_url)
     await client.flushall()
     await client.aclose()
-    app = web.Application()
-    app.router.add_get("/{tail:.*}", handle)
-    runner = web.AppRunner(app)
-    await runner.setup()
-    site = web.TCPSite(runner, "127.0.0.1", 0)
-    await site.start()
-    port = site._server.sockets[0].getsockname()[1]  # type: ignore[union-attr]
+    runner, port = await start_site(handle)
     try:
         data: dict[str, Any] = {
             "name": "dups", "seeds": ["http://site.test/"], "redis": {"url": redis_url},

@@ -19,6 +19,7 @@ from frontier.admin_auth import CSRF_HEADER, TOKEN_ENV
 from frontier.cli import _crawl
 from frontier.redis_client import connect
 from frontier.settings import load_settings
+from tests.loopback import start_site
 from tests.servers import RedisServer
 
 UA = "sluice-test/0.1 (+http://operator.test/contact)"
@@ -53,13 +54,7 @@ async def test_pause_resume_and_a_seed_added_mid_crawl(
                                 content_type="text/html")
         return web.Response(status=404)
 
-    app = web.Application()
-    app.router.add_get("/{tail:.*}", handle)
-    runner = web.AppRunner(app)
-    await runner.setup()
-    site = web.TCPSite(runner, "127.0.0.1", 0)
-    await site.start()
-    port = site._server.sockets[0].getsockname()[1]  # type: ignore[union-attr]
+    runner, port = await start_site(handle)
     client = connect(redis_server.url)
     await client.flushall()
     await client.aclose()

@@ -18,6 +18,7 @@ from frontier.cli import _crawl
 from frontier.keys import Keys
 from frontier.redis_client import connect
 from frontier.settings import load_settings
+from tests.loopback import start_site
 from tests.servers import RedisServer
 
 UA = "sluice-test/0.1 (+http://operator.test/contact)"
@@ -42,13 +43,7 @@ async def crawl_chain(tmp_path: Path, redis_url: str, seed: str,
             raise web.HTTPMovedPermanently(f"http://h{nxt}.test:{port}/x/{nxt}")
         return web.Response(status=404)
 
-    app = web.Application()
-    app.router.add_get("/{tail:.*}", handle)
-    runner = web.AppRunner(app)
-    await runner.setup()
-    site = web.TCPSite(runner, "127.0.0.1", 0)
-    await site.start()
-    port = site._server.sockets[0].getsockname()[1]  # type: ignore[union-attr]
+    runner, port = await start_site(handle)
     client = connect(redis_url)
     try:
         await client.flushall()

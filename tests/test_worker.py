@@ -13,6 +13,7 @@ from aiohttp import web
 
 from frontier.cli import _crawl
 from frontier.settings import load_settings
+from tests.loopback import start_site
 from tests.servers import RedisServer
 
 UA = "sluice-test/0.1 (+http://operator.test/contact)"
@@ -49,13 +50,7 @@ async def run_site(tmp_path: Path, redis_url: str, pages: dict[str, Any], *,
             return await answer if inspect.isawaitable(answer) else answer
         return web.Response(text=item, content_type="text/html")
 
-    app = web.Application()
-    app.router.add_get("/{tail:.*}", handle)
-    runner = web.AppRunner(app)
-    await runner.setup()
-    site = web.TCPSite(runner, "127.0.0.1", 0)
-    await site.start()
-    port = site._server.sockets[0].getsockname()[1]  # type: ignore[union-attr]
+    runner, port = await start_site(handle)
     try:
         from frontier.redis_client import connect
         if fresh:
