@@ -13,12 +13,26 @@ Web Crawling" (WWW 2007): split the 64 bits into k + 1 blocks; two fingerprints
 that differ in at most k bits agree exactly on at least one block. Each block
 value names a Redis set (a bucket) of fingerprints, so a lookup reads k + 1
 buckets and checks the candidates' real distance.
+
+Within 3 bits only about 60 % of pages with 0.5 % of their words changed are found
+(Charikar's law: about 3.5 bits differ at that similarity). So the index also takes
+candidates up to ``sketch_k`` = 6 bits (blocks = 8, every pair of blocks a table: two
+fingerprints within 6 bits agree on at least 2 of 8 blocks) and confirms those beyond k
+with a second sketch stored beside each fingerprint: the ``SKETCH_SIZE`` smallest
+32-bit shingle hashes (Broder, "On the resemblance and containment of documents",
+1997, the MIN_s sketch), confirmed when the estimated resemblance is at least
+``RESEMBLANCE_THRESHOLD``. Distinct pages of one template can be a few bits apart in
+SimHash (even within 3 bits), but their shingle sets differ in all their own text,
+so their resemblance stays low: every candidate with both sketches is confirmed by it.
 """
 
 from __future__ import annotations
 
 import functools
+import heapq
+import itertools
 import re
+from array import array
 from collections.abc import Callable
 from typing import Any
 
@@ -39,6 +53,16 @@ SHINGLE_WORDS = 3
 DEFAULT_MAX_DISTANCE = 3
 """k in Manku et al.: 64-bit fingerprints within 3 bits are near-duplicates."""
 HASH_SEED = 0
+DEFAULT_SKETCH_DISTANCE = 6
+"""Candidates up to this many bits apart are confirmed by the resemblance sketch."""
+DEFAULT_SKETCH_BLOCKS = 8
+"""Blocks for ``sketch_k`` = 6: tables keyed on every pair of blocks (16-bit keys)."""
+SKETCH_SIZE = 64
+"""s in Broder 1997: how many smallest shingle hashes a page keeps (4 bytes each)."""
+RESEMBLANCE_THRESHOLD = 0.85
+"""Estimated resemblance at or above which a candidate beyond k bits is a near copy."""
+MAX_CONFIRM = 8
+"""Candidates whose URL and sketch are read per page (the closest first)."""
 
 _BYTES = FP_BITS // 8
 _HASH_BYTES = 16
@@ -52,6 +76,52 @@ _ASCII_WORDS = bytes(
 _hash128 = (mmh3.hash_bytes if HASH_SEED == 0  # mmh3's default seed: no keyword to pass
             else functools.partial(mmh3.hash_bytes, seed=HASH_SEED))
 """128-bit MurmurHash3 (x64) of a shingle, bytes little-endian."""
+
+
+
+class Fingerprint(int):
+    """A page's 64-bit SimHash (the int value) carrying its resemblance sketch.
+
+    ``sketch`` is the page's ``SKETCH_SIZE`` smallest distinct 32-bit shingle hashes,
+    sorted, packed little-endian (Broder 1997's MIN_s). It travels with the fingerprint
+    (also through pickling to and from the offload children) so callers that pass plain
+    ints keep working: a plain int simply has no sketch.
+    """
+
+    sketch: bytes
+
+    def __new__(cls, value: int, sketch: bytes = b"") -> "Fingerprint":
+        self = super().__new__(cls, value)
+        self.sketch = sketch
+        return self
+
+    def __reduce__(self) -> tuple[Any, tuple[int, bytes]]:
+        return (Fingerprint, (int(self), self.sketch))
+
+
+def sketch_of(fp: int) -> bytes:
+    """The resemblance sketch a fingerprint carries (empty for a plain int)."""
+    return getattr(fp, "sketch", b"")
+
+
+def resemblance(a: bytes, b: bytes, size: int = SKETCH_SIZE) -> float:
+    """Broder (1997) estimate of the resemblance of two pages from their MIN_s sketches:
+    |MIN_s(A u B) n MIN_s(A) n MIN_s(B)| / |MIN_s(A u B)|. 0.0 if either is empty."""
+    if not a or not b:
+        return 0.0
+    sa = set(memoryview(a).cast("I"))
+    sb = set(memoryview(b).cast("I"))
+    union = heapq.nsmallest(size, sa | sb)
+    both = sa & sb
+    return sum(1 for v in union if v in both) / len(union)
+
+
+def _sketch(packed: bytes, count: int = SKETCH_SIZE) -> bytes:
+    """MIN_s of the shingle hashes in ``packed``: 32 bits of each 128-bit hash's high half
+    (bytes 8..12, independent of the low 64 bits SimHash uses), smallest first."""
+    values = memoryview(packed).cast("I")[2::4]
+    return array("I", heapq.nsmallest(count, set(values))).tobytes()
+
 
 TableKey = Callable[[int, int], str]
 PageKey = Callable[[int], str]
@@ -78,7 +148,7 @@ def _ascii_shingles(text: str, width: int) -> list[bytes]:
     return list(map(b" ".join, zip(*(words[i:] for i in range(width)))))
 
 
-def simhash64(text: str, *, shingle_words: int = SHINGLE_WORDS) -> int:
+def simhash64(text: str, *, shingle_words: int = SHINGLE_WORDS) -> Fingerprint:
     """Unsigned 64-bit SimHash of ``text`` over word shingles (0 for no words).
 
     Each shingle occurrence adds +1 to coordinate i where bit i of its mmh3
@@ -86,11 +156,12 @@ def simhash64(text: str, *, shingle_words: int = SHINGLE_WORDS) -> int:
     iff coordinate i ends positive. Cost is linear in the text: about 1 ms
     per 1,500 words, so a text at the parser's 200,000-character cap takes
     tens of milliseconds (worth an executor if the event loop must stay snappy).
+    The result also carries the page's resemblance sketch (:class:`Fingerprint`).
     """
     features = _ascii_shingles(text, shingle_words) if text.isascii() else shingles(
         text, shingle_words)
     if not features:
-        return 0
+        return Fingerprint(0)
     # mmh3.hash_bytes gives the 128-bit hash little-endian; its first 8 bytes
     # are the unsigned 64-bit value mmh3.hash64 returns first.
     packed = b"".join(map(_hash128, features))
@@ -106,7 +177,7 @@ def simhash64(text: str, *, shingle_words: int = SHINGLE_WORDS) -> int:
             if 2 * (plane & mask).bit_count() > total:
                 fingerprint |= bit
             bit <<= 1
-    return fingerprint
+    return Fingerprint(fingerprint, _sketch(packed))
 
 
 @functools.lru_cache(maxsize=1024)
@@ -151,8 +222,8 @@ def split_blocks(fp: int, widths: list[int]) -> list[int]:
 
 LOOKUP_AND_ADD = """
 -- near-duplicate lookup and store for a batch of fingerprints, on one server
--- KEYS: the k + 1 bucket keys of each fingerprint, fingerprint after fingerprint
--- ARGV[1] k + 1 (keys per fingerprint)  ARGV[2 ..] the fingerprints (signed decimal)
+-- KEYS: the bucket keys (one per table) of each fingerprint, fingerprint after fingerprint
+-- ARGV[1] tables (keys per fingerprint)  ARGV[2 ..] the fingerprints (signed decimal)
 -- Returns per fingerprint the union of its buckets as they were before this batch.
 local w = tonumber(ARGV[1])
 local out = {}
@@ -170,30 +241,65 @@ return out
 """
 
 
+def table_blocks(blocks: int, distance: int) -> list[tuple[int, ...]]:
+    """The tables of a block layout: every choice of ``blocks - distance`` blocks.
+
+    Two fingerprints within ``distance`` bits differ in at most ``distance`` blocks, so
+    they agree on at least ``blocks - distance`` of them: on one whole table key
+    (pigeonhole; Manku, Jain & Das Sarma 2007 s.3.1.1, with blocks = k + 1 one table
+    per block)."""
+    if not 0 <= distance < blocks:
+        raise ValueError(f"need 0 <= distance < blocks, got {distance} and {blocks}")
+    return list(itertools.combinations(range(blocks), blocks - distance))
+
+
 class NearDuplicateIndex:
     """Redis-backed index answering "is a stored fingerprint within k bits?".
 
-    Each fingerprint is added to k + 1 bucket sets, one per block. Members are
-    decimal strings of the signed 64-bit value. Lookups are not atomic with
-    adds: two workers adding near-duplicates at the same instant may both miss
-    each other, which costs one extra stored page, never a lost one.
+    Each fingerprint is added to one bucket set per table. Members are decimal strings
+    of the signed 64-bit value. With ``sketch_k`` > k the tables reach ``sketch_k`` bits
+    and :meth:`match_pages` confirms a candidate beyond k bits only when the two pages'
+    resemblance sketches agree (Broder 1997); :meth:`find` and
+    :meth:`check_and_add_many` answer within k bits only. Lookups are not atomic with
+    adds: two workers adding near-duplicates at the same instant may both miss each
+    other, which costs one extra stored page, never a lost one.
     """
 
     def __init__(self, redis: Any, table_key: TableKey, k: int = DEFAULT_MAX_DISTANCE,
-                 page_key: PageKey | None = None) -> None:
+                 page_key: PageKey | None = None, *,
+                 sketch_k: int | None = DEFAULT_SKETCH_DISTANCE,
+                 blocks: int | None = None,
+                 threshold: float = RESEMBLANCE_THRESHOLD) -> None:
         if k < 0:
             raise ValueError(f"k must be >= 0, got {k}")
         self.redis = redis
         self.table_key = table_key
         self.page_key = page_key  # where each fingerprint's first page is kept
         self.k = k
-        self.widths = block_widths(k + 1)
+        self.sketch_k = k if sketch_k is None else max(k, sketch_k)
+        if blocks is None:
+            blocks = self.sketch_k + 1 if self.sketch_k == k else max(
+                DEFAULT_SKETCH_BLOCKS, self.sketch_k + 1)
+        self.widths = block_widths(blocks)
+        self.tables = table_blocks(blocks, self.sketch_k)
+        self.threshold = threshold
         self._script: Any = None
 
+    def table_values(self, fp: int) -> list[int]:
+        """``fp``'s key in each table: its chosen blocks' bits side by side."""
+        parts = split_blocks(to_unsigned(fp), self.widths)
+        values = []
+        for table in self.tables:
+            value = 0
+            for b in table:
+                value = value << self.widths[b] | parts[b]
+            values.append(value)
+        return values
+
     def keys(self, fp: int) -> list[str]:
-        """The bucket keys ``fp`` belongs to, one per block."""
-        blocks = split_blocks(to_unsigned(fp), self.widths)
-        return [self.table_key(index, value) for index, value in enumerate(blocks)]
+        """The bucket keys ``fp`` belongs to, one per table."""
+        return [self.table_key(index, value)
+                for index, value in enumerate(self.table_values(fp))]
 
     async def find(self, fp: int) -> int | None:
         """The closest stored fingerprint within k bits of ``fp``, or None."""
@@ -201,7 +307,7 @@ class NearDuplicateIndex:
         return self._closest(fp, await self._buckets(self.keys(fp)))
 
     async def add(self, fp: int) -> None:
-        """Store ``fp`` in its k + 1 buckets (one round trip)."""
+        """Store ``fp`` in its buckets (one round trip)."""
         fp = to_unsigned(fp)
         await self._add_many([self.keys(fp)], [fp])
 
@@ -220,6 +326,15 @@ class NearDuplicateIndex:
         A fingerprint is also compared with the ones before it in the batch, so two
         near-duplicates fetched together are still caught.
         """
+        out: list[int | None] = []
+        for fp, near in zip(fps, await self._candidates_many(fps)):
+            close = [c for c in near if hamming(fp, c) <= self.k]
+            out.append(close[0] if close else None)
+        return out
+
+    async def _candidates_many(self, fps: list[int]) -> list[list[int]]:
+        """Per fingerprint: stored (or earlier in the batch) fingerprints within
+        ``sketch_k`` bits, closest first; then the batch is stored."""
         if not fps:
             return []
         unsigned = [to_unsigned(fp) for fp in fps]
@@ -227,7 +342,7 @@ class NearDuplicateIndex:
         stored_already = False
         if isinstance(self.redis, RedisCluster):  # one fingerprint's buckets span slots
             flat = await self._buckets([k for ks in keys for k in ks])
-            width = len(self.widths)
+            width = len(self.tables)
             candidates = [flat[i * width:(i + 1) * width] for i in range(len(unsigned))]
         elif isinstance(self.redis, Redis):  # one script call: look up, then store
             found = await self._lookup_and_add(keys, unsigned)
@@ -235,20 +350,18 @@ class NearDuplicateIndex:
             stored_already = True
         else:  # a wrapped client: one SUNION per fingerprint, then the SADDs
             candidates = [[found] for found in await self._unions(keys)]
-        out: list[int | None] = []
-        # earlier fingerprints of the batch by block value: the same pigeonhole as the
-        # index, so a fingerprint is compared only with those sharing a block
-        earlier_by_block: list[dict[int, list[int]]] = [{} for _ in self.widths]
+        out: list[list[int]] = []
+        # earlier fingerprints of the batch by table key: the same pigeonhole as the
+        # index, so a fingerprint is compared only with those sharing a table key
+        earlier_by_table: list[dict[int, list[int]]] = [{} for _ in self.tables]
         for i, fp in enumerate(unsigned):
-            stored = self._closest(fp, candidates[i])
-            blocks = split_blocks(fp, self.widths)
-            near = {e for table, value in zip(earlier_by_block, blocks) for e in table.get(value, ())}
-            earlier = min(((hamming(fp, e), e) for e in near), default=None)
-            if earlier is not None and earlier[0] <= self.k and (
-                    stored is None or earlier[0] < hamming(fp, stored)):
-                stored = earlier[1]
-            out.append(stored)
-            for table, value in zip(earlier_by_block, blocks):
+            values = self.table_values(fp)
+            stored = {to_unsigned(int(m)) for m in set().union(*candidates[i])}
+            near = {e for table, value in zip(earlier_by_table, values)
+                    for e in table.get(value, ())}
+            ranked = sorted((hamming(fp, c), c) for c in stored | near)
+            out.append([c for d, c in ranked if d <= self.sketch_k])
+            for table, value in zip(earlier_by_table, values):
                 table.setdefault(value, []).append(fp)
         if not stored_already:
             await self._add_many(keys, unsigned)
@@ -256,37 +369,56 @@ class NearDuplicateIndex:
 
     async def match_pages(self, fps: list[int],
                           urls: list[str]) -> list[tuple[int, str | None] | None]:
-        """For each page (fingerprint, URL): the stored fingerprint within k bits and the
-        URL of the page first stored with it, or None; then store the pages.
+        """For each page (fingerprint, URL): the stored fingerprint it is a near copy of
+        and the URL of the page first stored with it, or None; then store the pages.
 
-        A match whose page is the same URL is no match: a page fetched again (its first
-        worker died before completing its lease) must not be taken for a copy of itself.
-        Needs ``page_key``; one more round trip than :meth:`check_and_add_many`, and one
-        more when something matched.
+        A candidate within ``sketch_k`` bits is a near copy when the two pages' estimated
+        resemblance (Broder 1997) is at least ``threshold`` (both sketches known: a
+        :class:`Fingerprint` from :func:`simhash64`), else when it is within k bits. A match whose page is the same
+        URL is no match: a page fetched again (its first worker died before completing
+        its lease) must not be taken for a copy of itself. Needs ``page_key``; one more
+        round trip than :meth:`check_and_add_many`, and one more when a candidate was
+        found.
         """
         if self.page_key is None:
             raise ValueError("match_pages needs the index's page_key")
         page_key = self.page_key
-        found = await self.check_and_add_many(fps)
+        near = await self._candidates_many(fps)
         unsigned = [to_unsigned(fp) for fp in fps]
-        matched = [i for i, m in enumerate(found) if m is not None]
-        owners: list[Any] = []
-        if matched:
-            owners = await self._pipelined("page lookup", lambda pipe: [
-                pipe.hget(page_key(found[i]), str(found[i])) for i in matched])  # type: ignore[arg-type]
+        wanted = [cs[:MAX_CONFIRM] for cs in near]  # the closest few candidates per page
+        asked = [(i, c) for i, cs in enumerate(wanted) for c in cs]
+        stored: list[Any] = []
+        if asked:
+            stored = await self._pipelined("page lookup", lambda pipe: [
+                pipe.hmget(page_key(c), str(c), f"s{c}") for _, c in asked])
         await self._pipelined("page store", lambda pipe: [
-            pipe.hsetnx(page_key(fp), str(fp), url) for fp, url in zip(unsigned, urls)])
+            pipe.hsetnx(page_key(u), str(u), url) for u, url in zip(unsigned, urls)] + [
+            pipe.hsetnx(page_key(u), f"s{u}", sketch_of(fp))
+            for u, fp in zip(unsigned, fps) if sketch_of(fp)])
+        batch_owner: dict[int, tuple[str, bytes]] = {}
+        for u, fp, url in zip(reversed(unsigned), reversed(fps), reversed(urls)):
+            batch_owner[u] = (url, sketch_of(fp))
         out: list[tuple[int, str | None] | None] = [None] * len(fps)
-        batch_owner = {fp: url for fp, url in zip(reversed(unsigned), reversed(urls))}
-        for i, owner in zip(matched, owners):
-            fp = found[i]
-            assert fp is not None
+        for (i, c), (owner, sketch) in zip(asked, stored):
+            if out[i] is not None:
+                continue  # a closer candidate already matched
             url = owner.decode("utf-8", "replace") if isinstance(owner, bytes) else owner
-            if url is None:
-                url = batch_owner.get(fp)  # an earlier page of the same batch
-            if url != urls[i]:
-                out[i] = (fp, url)
+            if url is None and c in batch_owner:  # an earlier page of the same batch
+                url, sketch = batch_owner[c]
+            if url == urls[i]:
+                continue
+            if self._confirmed(hamming(unsigned[i], c), sketch_of(fps[i]), sketch or b""):
+                out[i] = (c, url)
         return out
+
+    def _confirmed(self, distance: int, sketch: bytes, stored_sketch: bytes) -> bool:
+        """A candidate is a near copy when both pages have sketches and their estimated
+        resemblance reaches the threshold (Broder 1997), whatever the distance: on a
+        heavy template distinct pages can fall within 3 bits. Without both sketches
+        (a plain int, a page stored before sketches were kept), within k bits."""
+        if sketch and stored_sketch:
+            return resemblance(sketch, stored_sketch) >= self.threshold
+        return distance <= self.k
 
     async def _lookup_and_add(self, keys: list[list[str]], fps: list[int]) -> list[list[Any]]:
         """Unions of each fingerprint's buckets (before the batch), then the adds: one call."""
@@ -295,7 +427,7 @@ class NearDuplicateIndex:
         try:
             result: list[list[Any]] = await self._script(
                 [k for ks in keys for k in ks],
-                [len(self.widths), *(str(to_signed(fp)) for fp in fps)])
+                [len(self.tables), *(str(to_signed(fp)) for fp in fps)])
         except (RedisConnectionError, RedisTimeoutError) as exc:
             raise StoreUnavailable(f"near-duplicate lookup failed: {exc}") from exc
         except RedisError as exc:

@@ -371,7 +371,7 @@ async def test_buckets_hold_signed_decimal_members(client: aioredis.Redis) -> No
     await index.add(fp)
     keys = sorted(k.decode() for k in await client.keys(f"{prefix}:*"))
     assert keys == sorted(index.keys(fp))
-    assert len(keys) == 4
+    assert len(keys) == math.comb(8, 2)  # sketch_k = 6 over 8 blocks: every pair a table
     for k in keys:
         assert await client.smembers(k) == {str(fp - (1 << 64)).encode()}
 
@@ -410,7 +410,7 @@ async def test_a_batch_is_checked_against_itself_as_one_by_one(client: aioredis.
 
 async def test_generalised_k_uses_k_plus_one_blocks(client: aioredis.Redis) -> None:
     _, key = _keyspace()
-    index = NearDuplicateIndex(client, key, k=5)
+    index = NearDuplicateIndex(client, key, k=5, sketch_k=None)
     assert index.widths == [11, 11, 11, 11, 10, 10]
     fp = random.Random(8).getrandbits(64)
     await index.add(fp)
@@ -446,7 +446,7 @@ async def test_check_and_add_takes_two_round_trips(client: aioredis.Redis) -> No
     # for the lookup (on a single server one SUNION of the k+1 buckets), one for the SADDs.
     _, key = _keyspace()
     counting = _CountingRedis(client)
-    index = NearDuplicateIndex(counting, key)
+    index = NearDuplicateIndex(counting, key, sketch_k=None)  # Manku et al.: k + 1 tables
     await index.check_and_add(12345)
     assert counting.round_trips == 2
     assert counting.commands == [["SUNION"], ["SADD"] * 4]
