@@ -548,6 +548,9 @@ def cmd_bench(a: argparse.Namespace) -> int:
     if a.what == "crawl":
         from frontier.bench.crawl_bench import main as crawl_main
         return crawl_main(pages=a.urls or 10_000, profile=a.profile)
+    if a.what == "dedupe":
+        from frontier.bench.dedupe_bench import main as dedupe_main
+        return dedupe_main(pages=a.urls or 5000)
     from frontier.bench.ordering_bench import main as ordering_main
     from frontier.bench.ordering_bench import parse_override
     return ordering_main(a.web, a.seed, a.timing, dict(parse_override(s) for s in a.set),
@@ -627,8 +630,8 @@ def parser() -> argparse.ArgumentParser:
     m.set_defaults(func=cmd_demo)
 
     b = sub.add_parser("bench", help="benchmarks that print JSON")
-    b.add_argument("what", choices=["frontier", "crawl", "ordering"])
-    b.add_argument("--urls", type=int, help="URLs (frontier) or pages (crawl)")
+    b.add_argument("what", choices=["frontier", "crawl", "ordering", "dedupe"])
+    b.add_argument("--urls", type=int, help="URLs (frontier) or pages (crawl, dedupe)")
     b.add_argument("--hosts", type=int)
     b.add_argument("--profile", action="store_true",
                    help="crawl: also run a profiled crawl and print where the time goes")

@@ -282,12 +282,16 @@ class NearDuplicateIndex:
                 DEFAULT_SKETCH_BLOCKS, self.sketch_k + 1)
         self.widths = block_widths(blocks)
         self.tables = table_blocks(blocks, self.sketch_k)
+        self._pairs = ([(i, self.widths[j], j) for i, j in self.tables]
+                       if all(len(t) == 2 for t in self.tables) else None)
         self.threshold = threshold
         self._script: Any = None
 
     def table_values(self, fp: int) -> list[int]:
         """``fp``'s key in each table: its chosen blocks' bits side by side."""
         parts = split_blocks(to_unsigned(fp), self.widths)
+        if self._pairs is not None:
+            return [parts[i] << width | parts[j] for i, width, j in self._pairs]
         values = []
         for table in self.tables:
             value = 0
@@ -298,8 +302,11 @@ class NearDuplicateIndex:
 
     def keys(self, fp: int) -> list[str]:
         """The bucket keys ``fp`` belongs to, one per table."""
-        return [self.table_key(index, value)
-                for index, value in enumerate(self.table_values(fp))]
+        return self._keys_of(self.table_values(fp))
+
+    def _keys_of(self, values: list[int]) -> list[str]:
+        table_key = self.table_key
+        return [table_key(index, value) for index, value in enumerate(values)]
 
     async def find(self, fp: int) -> int | None:
         """The closest stored fingerprint within k bits of ``fp``, or None."""
@@ -338,7 +345,8 @@ class NearDuplicateIndex:
         if not fps:
             return []
         unsigned = [to_unsigned(fp) for fp in fps]
-        keys = [self.keys(fp) for fp in unsigned]
+        table_values = [self.table_values(fp) for fp in unsigned]
+        keys = [self._keys_of(values) for values in table_values]
         stored_already = False
         if isinstance(self.redis, RedisCluster):  # one fingerprint's buckets span slots
             flat = await self._buckets([k for ks in keys for k in ks])
@@ -354,8 +362,7 @@ class NearDuplicateIndex:
         # earlier fingerprints of the batch by table key: the same pigeonhole as the
         # index, so a fingerprint is compared only with those sharing a table key
         earlier_by_table: list[dict[int, list[int]]] = [{} for _ in self.tables]
-        for i, fp in enumerate(unsigned):
-            values = self.table_values(fp)
+        for i, (fp, values) in enumerate(zip(unsigned, table_values)):
             stored = {to_unsigned(int(m)) for m in set().union(*candidates[i])}
             near = {e for table, value in zip(earlier_by_table, values)
                     for e in table.get(value, ())}
