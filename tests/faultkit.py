@@ -466,15 +466,19 @@ def torn_member(path: Path) -> str | None:
     return None
 
 
+CAPTURE_TYPES = ("response", "revisit")  # ISO 28500 s.6.3 and s.6.7: a capture's record
+
+
 def warc_responses(paths: Iterable[Path]) -> tuple[Counter[str], list[str]]:
-    """Response records per WARC-Target-URI over ``paths``, and files that do not read."""
+    """Captures (response records, and revisit records of a payload archived before) per
+    WARC-Target-URI over ``paths``, and files that do not read."""
     counts: Counter[str] = Counter()
     unreadable = []
     for path in paths:
         try:
             with path.open("rb") as fh:
                 for record in ArchiveIterator(fh):
-                    if record.rec_type == "response":
+                    if record.rec_type in CAPTURE_TYPES:
                         counts[record.rec_headers.get_header("WARC-Target-URI")] += 1
         except Exception as exc:  # noqa: BLE001 - reported as a figure, asserted empty
             unreadable.append(f"{path.name}: {type(exc).__name__}: {exc}")
