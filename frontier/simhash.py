@@ -83,9 +83,9 @@ class Fingerprint(int):
     """A page's 64-bit SimHash (the int value) carrying its resemblance sketch.
 
     ``sketch`` is the page's ``SKETCH_SIZE`` smallest distinct 32-bit shingle hashes,
-    sorted, packed little-endian (Broder 1997's MIN_s). It travels with the fingerprint
-    (also through pickling to and from the offload children) so callers that pass plain
-    ints keep working: a plain int simply has no sketch.
+    sorted, as native unsigned 32-bit integers (Broder 1997's MIN_s). It travels with
+    the fingerprint (also through pickling to and from the offload children) so callers
+    that pass plain ints keep working: a plain int simply has no sketch.
     """
 
     sketch: bytes
@@ -381,9 +381,9 @@ class NearDuplicateIndex:
 
         A candidate within ``sketch_k`` bits is a near copy when the two pages' estimated
         resemblance (Broder 1997) is at least ``threshold`` (both sketches known: a
-        :class:`Fingerprint` from :func:`simhash64`), else when it is within k bits. A match whose page is the same
-        URL is no match: a page fetched again (its first worker died before completing
-        its lease) must not be taken for a copy of itself. Needs ``page_key``; one more
+        :class:`Fingerprint` from :func:`simhash64`), else when it is within k bits. A
+        match whose page is the same URL is no match: a page fetched again (its first
+        worker died before completing its lease) must not be taken for a copy of itself. Needs ``page_key``; one more
         round trip than :meth:`check_and_add_many`, and one more when a candidate was
         found.
         """
