@@ -383,9 +383,9 @@ class NearDuplicateIndex:
         resemblance (Broder 1997) is at least ``threshold`` (both sketches known: a
         :class:`Fingerprint` from :func:`simhash64`), else when it is within k bits. A
         match whose page is the same URL is no match: a page fetched again (its first
-        worker died before completing its lease) must not be taken for a copy of itself. Needs ``page_key``; one more
-        round trip than :meth:`check_and_add_many`, and one more when a candidate was
-        found.
+        worker died before completing its lease) must not be taken for a copy of itself.
+        Needs ``page_key``; one more round trip than :meth:`check_and_add_many`, and one
+        more when a candidate was found.
         """
         if self.page_key is None:
             raise ValueError("match_pages needs the index's page_key")
