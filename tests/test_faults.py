@@ -23,6 +23,7 @@ from __future__ import annotations
 import json
 import os
 import random
+import shutil
 import signal
 import subprocess
 import time
@@ -246,6 +247,7 @@ def tmpfs(tmp_path: Path) -> Iterator[Path]:
     try:
         yield where
     finally:
+        shutil.copytree(where, tmp_path / "out-kept")  # for a look after a failure
         if subprocess.run(["umount", str(where)], check=False).returncode != 0:
             subprocess.run(["umount", "-l", str(where)], check=False)
 
