@@ -552,4 +552,7 @@ def assert_clean(fig: Mapping[str, Any]) -> None:
     assert fig["repeats_http"] <= fig["repeat_bound"], (fig["repeats_http"], fig["repeat_bound"])
     # every URL the frontier counts as fetched has its line in a fetch log, once
     assert fig["log_fetched_urls"] == s["fetched"], (fig["log_fetched_urls"], s["fetched"])
-    assert fig["log_fetched_lines"] == fig["log_fetched_urls"]
+    # lines are written before their completion (at least once): a page whose worker died
+    # in between has a line from each fetch, within the repeats a crash may cost
+    extra_lines = fig["log_fetched_lines"] - fig["log_fetched_urls"]
+    assert extra_lines <= fig["repeat_bound"], (extra_lines, fig["repeat_bound"])

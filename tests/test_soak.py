@@ -91,6 +91,8 @@ def test_an_hour_of_crawling_keeps_the_worker_flat(tmp_path: Path) -> None:
             if proc is not None and proc.poll() is None:
                 proc.kill()
                 proc.wait()
+        if web.stdout is not None:
+            web.stdout.close()
 
     def window(lo: float, hi: float, key: str) -> list[float]:
         return [s[key] for s in samples if lo <= s["t_s"] < hi]

@@ -64,7 +64,7 @@ PAGE_PROCESSES = max(1, (os.cpu_count() or 2) // 2)
 
 @dataclass
 class Finished:
-    """A lease's end, waiting to be written to the frontier (and then to the fetch log)."""
+    """A lease's end, waiting to be written to the fetch log and then to the frontier."""
 
     completion: Completion
     links: list[Candidate] = field(default_factory=list)
@@ -72,6 +72,7 @@ class Finished:
     entry: FetchEntry | None = None
     simhash: int | None = None  # checked against the near-duplicate index at flush time
     simhash_checked: bool = False  # a retried flush must not find the page itself
+    logged: bool = False  # its fetch-log line is written (a retried flush writes no second)
 
 
 @dataclass(slots=True)
@@ -748,6 +749,14 @@ class Worker:
                 if links or linked:
                     self.metrics.count_admitted(await self.admission.admit(links, linked=linked))
                     self.metrics.links.inc(len(links) + len(linked))
+                # the lines go to the log (flushed, fsynced) before the completions: a
+                # worker killed between the two leaves a line for a page the frontier
+                # then has fetched again (at least once), never a page without a line
+                for f in batch:
+                    if f.entry is not None and not f.logged:
+                        self._log(f.entry)
+                        f.logged = True
+                self._log_flush()
                 statuses = await self.store.complete_many([f.completion for f in batch])
             except StoreUnavailable as exc:
                 self.metrics.store_errors.inc()
@@ -760,17 +769,14 @@ class Worker:
             released = 0
             for f, status in zip(batch, statuses):
                 self._held.pop(f.completion.lease.member, None)
-                if status != "ok":  # expired: another worker will fetch it, and log it
+                if status != "ok":  # expired: another worker fetches and logs it again
                     self.metrics.count_lost(status)
                     log.info("lease %s for %s was %s", f.completion.lease.id,
                              f.completion.lease.url, status)
-                elif f.entry is not None:
-                    self._log(f.entry)
                 if status != "ok" or f.completion.outcome is not Outcome.FETCHED:
                     released += 1
                 else:
                     self._remember_fetched(f.completion.lease.url)
-            self._log_flush()  # no await since the completion: the lines follow it at once
             if await self._log_ended():
                 self._log_flush()
             await self.budget.release(released)
