@@ -757,6 +757,9 @@ class Worker:
                         self._log(f.entry)
                         f.logged = True
                 self._log_flush()
+                if self._fault is not None:  # the log took no lines: complete nothing, the
+                    self._finished = batch + self._finished  # leases are handed back
+                    return
                 statuses = await self.store.complete_many([f.completion for f in batch])
             except StoreUnavailable as exc:
                 self.metrics.store_errors.inc()
