@@ -12,7 +12,9 @@ the frontier's own accounting from ``sluice status``.
 from __future__ import annotations
 
 import asyncio
+import contextlib
 import json
+import shutil
 import os
 import signal
 import subprocess
@@ -21,7 +23,7 @@ import threading
 import time
 import zlib
 from collections import Counter
-from collections.abc import Callable, Iterable, Mapping, Sequence
+from collections.abc import Callable, Iterable, Iterator, Mapping, Sequence
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
@@ -143,6 +145,22 @@ def merge(base: dict[str, Any], over: Mapping[str, Any]) -> dict[str, Any]:
         else:
             out[key] = value
     return out
+
+
+@contextlib.contextmanager
+def tmpfs_at(where: Path, size: str, keep_to: Path | None = None) -> Iterator[Path]:
+    """A tmpfs of ``size`` mounted on a new folder ``where`` (needs root), unmounted after;
+    its files are copied to ``keep_to`` first, for a look after a failure."""
+    where.mkdir()
+    subprocess.run(["mount", "-t", "tmpfs", "-o", f"size={size}", "tmpfs", str(where)],
+                   check=True)
+    try:
+        yield where
+    finally:
+        if keep_to is not None:
+            shutil.copytree(where, keep_to)
+        if subprocess.run(["umount", str(where)], check=False).returncode != 0:
+            subprocess.run(["umount", "-l", str(where)], check=False)
 
 
 def job_settings(name: str, web: WebThread, **over: Any) -> dict[str, Any]:

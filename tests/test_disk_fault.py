@@ -17,8 +17,8 @@ import pytest
 from frontier.cli import EXIT_DISK_FAULT
 from frontier.redis_client import connect
 from tests.faultkit import (
-    Proc, WebThread, make_web, reachable, run_json, sluice, torn_member, warc_responses,
-    write_job)
+    Proc, WebThread, make_web, reachable, run_json, sluice, tmpfs_at, torn_member,
+    warc_responses, write_job)
 from tests.servers import RedisServer
 
 SMALL_DISK = "256k"  # a fraction of what this crawl writes (WARC files and fetch log)
@@ -27,15 +27,8 @@ ROOMY_DISK = "64m"
 
 @pytest.fixture
 def small_disk(tmp_path: Path) -> Iterator[Path]:
-    where = tmp_path / "disk"
-    where.mkdir()
-    subprocess.run(["mount", "-t", "tmpfs", "-o", f"size={SMALL_DISK}", "tmpfs", str(where)],
-                   check=True)
-    try:
+    with tmpfs_at(tmp_path / "disk", SMALL_DISK) as where:
         yield where
-    finally:
-        if subprocess.run(["umount", str(where)], check=False).returncode != 0:
-            subprocess.run(["umount", "-l", str(where)], check=False)
 
 
 async def test_crawl_on_a_full_disk_exits_3_and_resumes(

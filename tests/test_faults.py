@@ -23,7 +23,6 @@ from __future__ import annotations
 import json
 import os
 import random
-import shutil
 import signal
 import subprocess
 import time
@@ -48,6 +47,7 @@ from tests.faultkit import (
     sluice,
     wait_until,
     write_job,
+    tmpfs_at,
 )
 from tests.servers import RedisServer
 
@@ -240,16 +240,8 @@ ROOMY_DISK = "64m"
 @pytest.fixture
 def tmpfs(tmp_path: Path) -> Iterator[Path]:
     """A small tmpfs of our own as the output folder (needs root), unmounted after."""
-    where = tmp_path / "out"
-    where.mkdir()
-    subprocess.run(["mount", "-t", "tmpfs", "-o", f"size={SMALL_DISK}", "tmpfs", str(where)],
-                   check=True)
-    try:
+    with tmpfs_at(tmp_path / "out", SMALL_DISK, keep_to=tmp_path / "out-kept") as where:
         yield where
-    finally:
-        shutil.copytree(where, tmp_path / "out-kept")  # for a look after a failure
-        if subprocess.run(["umount", str(where)], check=False).returncode != 0:
-            subprocess.run(["umount", "-l", str(where)], check=False)
 
 
 def test_disk_full_worker_exits_then_resume_drains(tmp_path: Path, tmpfs: Path,
