@@ -17,8 +17,8 @@ DEMO_DRIP_S = 3.0  # the slow-drip page stops after this long
 
 async def _demo(out: Path, hosts: int, pages: int, max_pages: int, quiet: bool) -> dict[str, Any]:
     from frontier.cli import _crawl
-    from workers.synthweb.graph import SyntheticWeb, WebSpec
-    from workers.synthweb.server import SyntheticServer
+    from synthweb.graph import SyntheticWeb, WebSpec
+    from synthweb.server import SyntheticServer
 
     web = SyntheticWeb.generate(WebSpec(seed=42, hosts=hosts, pages=pages))
     server = SyntheticServer(web, slow_delay=DEMO_SLOW_DELAY_S, drip_duration=DEMO_DRIP_S)

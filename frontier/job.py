@@ -200,7 +200,7 @@ def address_resolver(settings: JobSettings) -> Resolver | None:
     """For the 'ip' politeness key: a host's first address, through the address guard."""
     if settings.politeness.key != "ip":
         return None
-    from workers.guard import GuardedResolver, parse_host_map
+    from frontier.guard import GuardedResolver, parse_host_map
 
     guard = GuardedResolver(parse_host_map(settings.fetch.map_hosts),
                             allow_private=settings.fetch.allow_private)

@@ -40,8 +40,8 @@ from frontier.settings import JobSettings
 from frontier.store import redis_tuning
 from frontier.urls import canonicalize
 from tests.servers import CLUSTER_CONFIG_FILE, CLUSTER_SLOTS, cluster_port, find_cli_binary
-from workers.synthweb.graph import SyntheticWeb, WebSpec
-from workers.synthweb.server import RequestRecord, SyntheticServer
+from synthweb.graph import SyntheticWeb, WebSpec
+from synthweb.server import RequestRecord, SyntheticServer
 
 REPO = Path(__file__).resolve().parent.parent
 BIN = Path(sys.executable).parent

@@ -15,8 +15,8 @@ import aiohttp
 from frontier.embedded import free_port
 from frontier.redis_client import connect
 from tests.servers import RedisServer
-from workers.synthweb.graph import SyntheticWeb, WebSpec
-from workers.synthweb.server import SyntheticServer
+from synthweb.graph import SyntheticWeb, WebSpec
+from synthweb.server import SyntheticServer
 
 UA = "sluice-test/0.1 (+http://operator.test/contact)"
 TOKEN = "admin-token-for-the-cli-test-0123456789"

@@ -28,8 +28,8 @@ from frontier.seeds import parse_seed_lines, read_seed_file, seed_problem
 from frontier.settings import load_settings
 from frontier.urls import canonicalize
 from tests.servers import RedisServer
-from workers.synthweb.graph import SyntheticWeb, WebSpec
-from workers.synthweb.server import SyntheticServer
+from synthweb.graph import SyntheticWeb, WebSpec
+from synthweb.server import SyntheticServer
 
 REPO = Path(__file__).resolve().parents[1]
 SLUICE = str(REPO / ".venv" / "bin" / "sluice")

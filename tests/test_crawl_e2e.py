@@ -21,7 +21,7 @@ from frontier.robots import product_token
 from frontier.settings import load_settings
 from frontier.urls import canonicalize
 from tests.servers import RedisServer
-from workers.synthweb.graph import (
+from synthweb.graph import (
     BIG_ROBOTS_HOST,
     GARBAGE_ROBOTS_HOST,
     RFC_EXAMPLE_HOST,
@@ -31,7 +31,7 @@ from workers.synthweb.graph import (
     SyntheticWeb,
     WebSpec,
 )
-from workers.synthweb.server import SyntheticServer
+from synthweb.server import SyntheticServer
 
 UA = "sluice-test/0.1 (+http://operator.test/contact)"
 MIN_DELAY_S = 0.05
@@ -123,7 +123,7 @@ def test_every_reachable_allowed_page_fetched_once(crawl_result: dict[str, Any])
 
 
 # What RFC 9309 allows the crawler, worked out by hand for each robots.txt the synthetic
-# web serves (workers/synthweb/robots_bodies.py). The crawler's product token,
+# web serves (synthweb/robots_bodies.py). The crawler's product token,
 # "sluice-test", has a group of its own in no file, so each file's "*" group applies
 # (s.2.2.1); the longest matching rule decides, allow winning a tie, no match allows
 # (s.2.2.2); "*" is any sequence and a final "$" the end (s.2.2.3).

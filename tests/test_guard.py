@@ -28,7 +28,7 @@ from frontier.cli import _job_flags, _overrides
 from frontier.exceptions import AddressRefused, ConfigError, FetchError
 from frontier.settings import FetchSettings, load_settings
 from workers.fetcher import Fetcher
-from workers.guard import (
+from frontier.guard import (
     GuardedConnector,
     GuardedResolver,
     HostMap,
@@ -219,7 +219,7 @@ def test_legacy_spellings_agree_with_inet_aton(value: int, parts: int, radixes: 
 
 
 def test_host_map_entries_and_lookup() -> None:
-    # Project contract (workers/guard.py); host names compare case-insensitively
+    # Project contract (frontier/guard.py); host names compare case-insensitively
     # (RFC 4343) and a trailing dot is the absolute form of the same name (RFC 1034 s.3.1).
     host_map = parse_host_map(
         ["*.test=127.0.0.1", "*.deep.site.test=127.0.0.2:8401", "exact.test=[::1]:9000"]

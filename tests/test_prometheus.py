@@ -33,8 +33,8 @@ from frontier.redis_client import connect
 from frontier.settings import load_settings
 from tests.servers import RedisServer
 from workers.loop import Worker
-from workers.synthweb.graph import SyntheticWeb, WebSpec
-from workers.synthweb.server import SyntheticServer
+from synthweb.graph import SyntheticWeb, WebSpec
+from synthweb.server import SyntheticServer
 
 ROOT = Path(__file__).resolve().parent.parent
 DASHBOARD = ROOT / "deploy" / "grafana" / "sluice-dashboard.json"

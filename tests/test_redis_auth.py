@@ -30,8 +30,8 @@ from frontier.redis_client import (
 )
 from frontier.settings import load_settings
 from tests.servers import SecureRedisServer, TlsFiles
-from workers.synthweb.graph import SyntheticWeb, WebSpec
-from workers.synthweb.server import SyntheticServer
+from synthweb.graph import SyntheticWeb, WebSpec
+from synthweb.server import SyntheticServer
 
 UA = "sluice-test/0.1 (+http://operator.test/contact)"
 PASSWORD = "pw-Qz7-never-shown-4b1e9d"

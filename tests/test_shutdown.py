@@ -23,9 +23,9 @@ import pytest
 from tests.faultkit import (
     PLAIN, Proc, WebThread, fetch_log_lines, reachable, run_json, sluice, wait_until,
     warc_responses, write_job)
-from workers.synthweb.graph import SyntheticWeb, WebSpec
-from workers.synthweb.model import Behaviour
-from workers.synthweb.server import _BAD_RESPONDERS
+from synthweb.graph import SyntheticWeb, WebSpec
+from synthweb.model import Behaviour
+from synthweb.server import _BAD_RESPONDERS
 
 DRIP_URL = "http://bad.test/slow-drip.html"
 STARTUP_TIMEOUT_S = 90.0  # two loaded cores: the crawl starts its own Redis first

@@ -58,7 +58,7 @@ def fetched_lines(log: Path) -> int:
 def test_an_hour_of_crawling_keeps_the_worker_flat(tmp_path: Path) -> None:
     bin_dir = Path(sys.executable).parent
     web = subprocess.Popen(
-        [sys.executable, "-m", "workers.synthweb", "--hosts", str(HOSTS), "--pages", str(PAGES),
+        [sys.executable, "-m", "synthweb", "--hosts", str(HOSTS), "--pages", str(PAGES),
          "--plain", "--seed", "7"], stdout=subprocess.PIPE, text=True)
     crawl = None
     try:

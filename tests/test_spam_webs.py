@@ -1,4 +1,4 @@
-"""The adversarial webs (workers/synthweb/adversarial.py) and the ordering bench's scores.
+"""The adversarial webs (synthweb/adversarial.py) and the ordering bench's scores.
 
 Labels are checked against graph properties counted here by hand, doorways against the
 real loopback server, the scores against networkx and a PageRank solved by hand.
@@ -41,9 +41,9 @@ from frontier.demo import DEMO_MIN_DELAY_S
 from frontier.exceptions import ConfigError
 from frontier.priority import url_host
 from tests.servers import RedisServer
-from workers.synthweb import adversarial as adv
-from workers.synthweb.model import NAV_FANOUT
-from workers.synthweb.server import SyntheticServer
+from synthweb import adversarial as adv
+from synthweb.model import NAV_FANOUT
+from synthweb.server import SyntheticServer
 
 PSL = PublicSuffixList()
 BUILT = [n for n in adv.FAMILY if n != adv.DEMO]
@@ -96,7 +96,7 @@ def test_webs_do_not_depend_on_the_hash_seed() -> None:
     """Same web in a process with other string hashing (sets iterate in hash order)."""
     here = {name: digest(adv.generate(name, 3)) for name in BUILT}
     code = ("import json,sys; from tests.test_spam_webs import digest, BUILT; "
-            "from workers.synthweb import adversarial as adv; "
+            "from synthweb import adversarial as adv; "
             "print(json.dumps({n: digest(adv.generate(n, 3)) for n in BUILT}))")
     for hash_seed in ("0", "12345"):
         out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True,

@@ -24,8 +24,8 @@ from frontier.exceptions import ConfigError, FolderInUse, RedisLaunchError
 from frontier.folders import (
     LOCK_FILE, FolderLock, Owner, command_name, read_owner, writable_folder,
 )
-from workers.synthweb.graph import SyntheticWeb, WebSpec
-from workers.synthweb.server import SyntheticServer
+from synthweb.graph import SyntheticWeb, WebSpec
+from synthweb.server import SyntheticServer
 
 REPO = Path(__file__).resolve().parents[1]
 SLUICE = str(REPO / ".venv" / "bin" / "sluice")

@@ -45,8 +45,8 @@ from frontier.worker_report import ROBOTS_FAILURES_KEPT, WorkerReport, read_robo
 from tests.conftest import Clock, StoreFactory
 from tests.servers import RedisServer
 from workers.loop import Worker
-from workers.synthweb.graph import SyntheticWeb, WebSpec
-from workers.synthweb.server import SyntheticServer
+from synthweb.graph import SyntheticWeb, WebSpec
+from synthweb.server import SyntheticServer
 
 UA = "sluice-test/0.1 (+http://operator.test/contact)"
 JOB = "status-demo"

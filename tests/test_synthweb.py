@@ -16,7 +16,7 @@ from protego import Protego
 from selectolax.lexbor import LexborHTMLParser as HTMLParser
 
 from frontier.exceptions import ConfigError
-from workers.synthweb.graph import (
+from synthweb.graph import (
     BAD_HOST,
     BIG_ROBOTS_HOST,
     CALENDAR_HOST,
@@ -34,7 +34,7 @@ from workers.synthweb.graph import (
     calendar_path,
     host_of,
 )
-from workers.synthweb.server import HUGE_BODY_BYTES, SyntheticServer, render_page
+from synthweb.server import HUGE_BODY_BYTES, SyntheticServer, render_page
 
 UA = "sluicetest/1.0"
 UA_TOKEN = "sluicetest"
@@ -429,7 +429,7 @@ async def test_bad_inputs_are_what_they_claim(small_web: SyntheticWeb) -> None:
 
 async def test_cli_prints_port_and_seeds() -> None:
     proc = await asyncio.create_subprocess_exec(
-        sys.executable, "-m", "workers.synthweb", "--port", "0", "--seed", "3",
+        sys.executable, "-m", "synthweb", "--port", "0", "--seed", "3",
         "--hosts", "10", "--pages", "200", stdout=asyncio.subprocess.PIPE,
     )
     try:

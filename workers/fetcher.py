@@ -16,7 +16,7 @@ import aiohttp
 
 from frontier.exceptions import AddressRefused, FetchError
 from frontier.settings import FetchSettings
-from workers.guard import GuardedConnector, GuardedResolver
+from frontier.guard import GuardedConnector, GuardedResolver
 
 READ_CHUNK = 64 * 1024
 ACCEPT = "text/html,application/xhtml+xml;q=0.9,*/*;q=0.5"

@@ -50,7 +50,7 @@ def start_web(pages: int, seed: int) -> tuple[subprocess.Popen[str], int, list[s
     """
     hosts = max(1, pages // PAGES_PER_HOST)
     proc = subprocess.Popen(
-        [sys.executable, "-m", "workers.synthweb", "--plain", "--prerender", "--seed", str(seed),
+        [sys.executable, "-m", "synthweb", "--plain", "--prerender", "--seed", str(seed),
          "--hosts", str(hosts), "--pages", str(pages), "--zipf", str(HOST_SIZE_EXPONENT)],
         stdout=subprocess.PIPE, text=True)
     assert proc.stdout is not None

@@ -1,6 +1,6 @@
 """``sluice bench ordering``: does sluice fetch valuable pages first and spam last?
 
-The webs are the adversarial family of ``workers.synthweb.adversarial`` (link farms near
+The webs are the adversarial family of ``synthweb.adversarial`` (link farms near
 and far from the seeds, a farm of many subdomains, a link-exchange ring, doorways that
 redirect into a farm, an honest dense cluster, and the web ``sluice demo`` crawls). On
 each, the real frontier crawls with simulated fetches and clock
@@ -55,7 +55,7 @@ from frontier.demo import DEMO_MIN_DELAY_S, DEMO_USER_AGENT
 from frontier.exceptions import ConfigError
 from frontier.priority import url_host
 from frontier.settings import JobSettings
-from workers.synthweb.adversarial import DEMO, FAMILY, LabelledWeb, breadth_first, generate
+from synthweb.adversarial import DEMO, FAMILY, LabelledWeb, breadth_first, generate
 
 DEMO_LIVE = "demo-live"
 WEBS: tuple[str, ...] = (*FAMILY, DEMO_LIVE)

@@ -28,8 +28,8 @@ from frontier.priority import distribute
 from frontier.redis_client import connect
 from frontier.settings import JobSettings
 from frontier.store import FrontierStore, redis_tuning
-from workers.synthweb.graph import SyntheticWeb
-from workers.synthweb.model import Behaviour
+from synthweb.graph import SyntheticWeb
+from synthweb.model import Behaviour
 
 CLOCK_START = 1_000_000.0
 LEASE_CHUNK_DIVISOR = 4  # as workers/loop.py: lease once a quarter of a batch is free
