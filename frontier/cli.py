@@ -4,12 +4,9 @@ from __future__ import annotations
 
 import argparse
 import asyncio
-import contextlib
 import json
 import logging
-import signal
 import sys
-import time
 from pathlib import Path
 from typing import Any
 
@@ -18,39 +15,15 @@ from prometheus_client import CollectorRegistry
 from frontier.exceptions import ConfigError, DiskFault, SluiceError
 from frontier.process import crawl_process
 from frontier.process import run as run_loop
+from frontier.runner import EXIT_DISK_FAULT, default_processes, watch_signals
 from frontier.settings import JobSettings, load_settings
 
 log = logging.getLogger("sluice")
 
 # Exit status of sluice crawl and sluice worker (and every command): 0 done (or stopped
-# by a signal, resumable), 2 an error (a bad setting, Redis unreachable), 3 the output
-# folder cannot be written (disk full, quota, read-only, gone): the worker stopped leasing
-# and handed its leases back; free space and run the same command again to resume.
-EXIT_DISK_FAULT = 3
-
-
-def dump_tasks() -> None:
-    """SIGUSR1: print what every asyncio task is waiting on (for a crawl that seems stuck)."""
-    for task in asyncio.all_tasks():
-        task.print_stack(limit=12, file=sys.stderr)
-    sys.stderr.flush()
-
-
-def watch_signals(on_stop: Any, on_cancel: Any = None) -> None:
-    """The first SIGINT/SIGTERM stops cleanly (``on_stop``), a second one calls
-    ``on_cancel`` (stop at once), if given; SIGUSR1 dumps the tasks."""
-    loop = asyncio.get_running_loop()
-    signals = 0
-
-    def received() -> None:
-        nonlocal signals
-        signals += 1
-        (on_cancel if signals > 1 and on_cancel is not None else on_stop)()
-
-    with contextlib.suppress(NotImplementedError):
-        loop.add_signal_handler(signal.SIGINT, received)
-        loop.add_signal_handler(signal.SIGTERM, received)
-        loop.add_signal_handler(signal.SIGUSR1, dump_tasks)
+# by a signal, resumable), 2 an error (a bad setting, Redis unreachable), EXIT_DISK_FAULT
+# (3) the output folder cannot be written (disk full, quota, read-only, gone): the worker
+# stopped leasing and handed its leases back; free space and run the same command again.
 
 
 # -- flags shared by crawl and daemon --------------------------------------------------------
@@ -155,151 +128,6 @@ def _settings(a: argparse.Namespace, **extra: Any) -> JobSettings:
 
 # -- commands -----------------------------------------------------------------------------
 
-async def _crawl(settings: JobSettings, out: Path, workers: int, *, quiet: bool = False,
-                 admin: str | None = None, progress_every: float | None = None) -> dict[str, Any]:
-    """Scheduler loops and ``workers`` workers in this process, until drained or spent.
-    The output folder has one owner at a time (frontier/folders.py)."""
-    from frontier.folders import FolderLock, say_taken_over
-    from frontier.seeds import parse_seed_lines, usable_seeds
-
-    if not settings.seeds:
-        raise ConfigError("no seeds: pass --seeds FILE (one URL a line) or set seeds in the "
-                          "job file")
-    seeds = usable_seeds(parse_seed_lines(
-        settings.seeds, source="seeds item", max_length=settings.scope.max_url_length,
-        schemes=frozenset(settings.scope.schemes)), "seeds")
-    settings = settings.model_copy(update={"seeds": tuple(seeds)})
-    if not settings.fetch.user_agent:
-        raise ConfigError("fetch.user_agent is required: pass --user-agent "
-                          "'name/1.0 (+https://you.example/contact)', an honest User-Agent "
-                          "with a way to reach you")
-    lock = FolderLock(out, label="--out", fix="stop that crawl first, or pass another --out")
-    say_taken_over(out, lock.take())
-    registry = CollectorRegistry()
-    try:
-        with crawl_process():
-            return await _crawl_job(settings, out, workers, registry, quiet=quiet, admin=admin,
-                                    progress_every=progress_every)
-    finally:
-        lock.release()
-
-
-def _fresh_hint(settings: JobSettings) -> str:
-    return ("start afresh with another --out" if settings.redis.url is None
-            else "start afresh with another --job")
-
-
-def _nothing_to_do(settings: JobSettings, counts: dict[str, Any]) -> str | None:
-    """Why a (resumed) job has nothing to fetch before its workers start, or None."""
-    name, fetched = settings.name, counts.get("fetched", 0)
-    limit = settings.budget.max_pages
-    if limit is not None and fetched >= limit:
-        return (f"nothing to do: job {name!r} has spent its page budget ({fetched} of {limit} "
-                f"pages fetched); raise --max-pages to fetch more, or {_fresh_hint(settings)}")
-    if counts.get("queued", 0) == 0 and counts.get("leased", 0) == 0:
-        return (f"nothing to do: job {name!r} has no URL left to fetch ({fetched} fetched of "
-                f"{counts.get('admitted', 0)} admitted); add seeds with 'sluice seeds add', "
-                f"or {_fresh_hint(settings)}")
-    return None
-
-
-def _ending(settings: JobSettings, counts: dict[str, Any], interrupted: bool) -> str:
-    """Why the crawl's workers stopped, in words (the summary's ``ended``)."""
-    limit = settings.budget.max_pages
-    if interrupted:
-        return "interrupted"
-    if limit is not None and counts.get("fetched", 0) >= limit:
-        return "page budget spent"
-    if counts.get("queued", 0) == 0 and counts.get("leased", 0) == 0:
-        return "nothing left to fetch"
-    return "stopped"
-
-
-async def _crawl_job(settings: JobSettings, out: Path, workers: int, registry: CollectorRegistry,
-                     *, quiet: bool, admin: str | None,
-                     progress_every: float | None = None) -> dict[str, Any]:
-    from frontier.daemon import Daemon, serve_admin
-    from frontier.job import admit_seeds, open_job
-    from frontier.metrics import WorkerMetrics
-    from frontier.progress import Progress
-    from workers.loop import Worker
-
-    async with open_job(settings) as job:
-        if job.server is not None:  # a private server: leases of an earlier run are orphans
-            await job.store.recover()
-        await admit_seeds(job, settings.seeds)
-        daemon = Daemon(job, registry)
-        before = await daemon.stats_once()
-        idle = _nothing_to_do(job.settings, before)
-        if idle is not None:
-            print(f"sluice: {idle}", file=sys.stderr, flush=True)
-        stop = asyncio.Event()
-        metrics = WorkerMetrics(registry)  # one set of counters for all workers here
-        crew = [Worker(job.store, job.admission, out, metrics=metrics, drain=True)
-                for _ in range(workers)]
-        interrupted = False
-
-        def interrupt() -> None:  # lease no more; in-flight work gets fetch.stop_grace_s
-            nonlocal interrupted
-            interrupted = True
-            stop.set()
-            for w in crew:
-                w.stop()
-
-        def cancel() -> None:  # a second signal: hand back what is in flight, at once
-            for w in crew:
-                w.abandon()
-
-        async def run_worker(w: Worker) -> None:
-            try:
-                await w.run()
-            except BaseException:  # a full disk, a bug: the others stop at once too
-                cancel()
-                raise
-
-        watch_signals(interrupt, cancel)
-        runner = await serve_admin(daemon, admin) if admin else None
-        background = asyncio.create_task(daemon.run(stop))
-        watchdog = asyncio.create_task(_watch_server(job.server, stop, interrupt))
-        started = time.monotonic()
-        progress = Progress(daemon, quiet=quiet, **(
-            {"every_s": progress_every} if progress_every is not None else {}))
-        progress.start_from(before)
-        async with progress:
-            try:
-                ends = await asyncio.gather(*(run_worker(w) for w in crew),
-                                            return_exceptions=True)
-                for end in ends:
-                    if isinstance(end, BaseException):
-                        raise end
-            finally:
-                stop.set()
-                await background
-                await watchdog
-                if runner is not None:
-                    await runner.cleanup()
-            summary = await daemon.stats_once()
-            summary["elapsed_s"] = round(time.monotonic() - started, 2)
-            summary["interrupted"] = interrupted
-            summary["ended"] = _ending(job.settings, summary, interrupted)
-            summary["out"] = str(out)
-            progress.final(summary)  # the last frame shows these very numbers
-        return summary
-
-
-SERVER_CHECK_S = 1.0
-
-
-async def _watch_server(server: Any, stop: asyncio.Event, interrupt: Any) -> None:
-    """Stop the crawl when its embedded Redis exits (no server: nothing to watch)."""
-    from frontier.daemon import wait_or_timeout
-
-    while server is not None and not await wait_or_timeout(stop, SERVER_CHECK_S):
-        if not server.is_running():
-            interrupt()
-            return
-
-
 def cmd_crawl(a: argparse.Namespace) -> int:
     from frontier.folders import writable_folder
 
@@ -308,8 +136,11 @@ def cmd_crawl(a: argparse.Namespace) -> int:
     writable_folder(out, "--out")
     if settings.redis.url is None:
         writable_folder(settings.state_dir, "--state" if a.state else "state_dir")
-    summary = run_loop(_crawl(settings, out, a.workers, quiet=a.quiet, admin=a.admin,
-                              progress_every=a.progress_every))
+    from frontier.runner import crawl
+
+    processes = a.processes or default_processes(embedded=settings.redis.url is None)
+    summary = run_loop(crawl(settings, out, workers=a.workers, processes=processes,
+                             quiet=a.quiet, admin=a.admin, progress_every=a.progress_every))
     print(json.dumps(summary, indent=2))
     return 0
 
@@ -347,9 +178,25 @@ def cmd_worker(a: argparse.Namespace) -> int:
     from frontier.daemon import metrics_app, serve
     from frontier.job import open_job
     from frontier.metrics import WorkerMetrics
+    from frontier.runner import run_together
     from workers.loop import Worker
 
     base = load_settings(None, {"name": a.job, "redis": {"url": a.redis}})
+    processes = a.processes or default_processes(embedded=False)
+    if processes > 1:
+        from frontier.runner import run_worker_processes, worker_command
+        if a.metrics:
+            raise ConfigError("--metrics serves one process: give it with --processes 1 "
+                              "(run one such command per metrics address)")
+
+        async def stored() -> JobSettings:  # the job exists and Redis answers: else say so here
+            async with open_job(base, stored=True) as job:
+                return job.settings
+
+        settings = run_loop(stored())
+        command = worker_command(a.redis, a.job, Path(a.out), workers=a.workers,
+                                 concurrency=a.concurrency, drain=a.drain)
+        return run_loop(run_worker_processes(command, processes, settings.fetch.stop_grace_s))
 
     async def run() -> int:
         async with open_job(base, stored=True) as job:
@@ -357,17 +204,18 @@ def cmd_worker(a: argparse.Namespace) -> int:
                 fetch = job.settings.fetch.model_copy(update={"concurrency": a.concurrency})
                 job.store.settings = job.settings.model_copy(update={"fetch": fetch})
             registry = CollectorRegistry()
-            worker = Worker(job.store, job.admission, Path(a.out),
-                            metrics=WorkerMetrics(registry), drain=a.drain)
-            watch_signals(worker.stop, worker.abandon)
+            metrics = WorkerMetrics(registry)
+            crew = [Worker(job.store, job.admission, Path(a.out), metrics=metrics,
+                           drain=a.drain) for _ in range(a.workers)]
+            watch_signals(lambda: [w.stop() for w in crew], lambda: [w.abandon() for w in crew])
             runner = await serve(metrics_app(registry), a.metrics) if a.metrics else None
             try:
                 with crawl_process():
-                    await worker.run()
+                    await run_together(crew)
             finally:
                 if runner is not None:
                     await runner.cleanup()
-            print(json.dumps({"pages": worker.pages}))
+            print(json.dumps({"pages": sum(w.pages for w in crew)}))
             return 0
 
     return run_loop(run())
@@ -565,7 +413,11 @@ def parser() -> argparse.ArgumentParser:
     c = sub.add_parser("crawl", help="scheduler and workers in one process")
     _job_flags(c)
     c.add_argument("--out", required=True, help="output folder (WARC files, fetch log, state)")
-    c.add_argument("--workers", type=_positive(int), default=1)
+    c.add_argument("--workers", type=_positive(int), default=1,
+                   help="worker loops in each worker process (default 1)")
+    c.add_argument("--processes", type=_positive(int), metavar="N",
+                   help="worker processes (default: one per core, less one for the embedded "
+                   "Redis); 1 runs the worker in this process")
     c.add_argument("--progress-every", type=_positive(float), metavar="SECONDS",
                    help="seconds between progress lines when the output is not a terminal "
                    "(default 5)")
@@ -583,6 +435,10 @@ def parser() -> argparse.ArgumentParser:
     w.add_argument("--job", required=True)
     w.add_argument("--out", required=True)
     w.add_argument("--concurrency", type=int)
+    w.add_argument("--processes", type=_positive(int), metavar="N",
+                   help="worker processes (default: one per core)")
+    w.add_argument("--workers", type=_positive(int), default=1,
+                   help="worker loops in each worker process (default 1)")
     w.add_argument("--metrics", help="HOST:PORT for /metrics")
     w.add_argument("--drain", action="store_true", help="exit once nothing is queued or leased")
     w.set_defaults(func=cmd_worker)

@@ -16,7 +16,7 @@ DEMO_DRIP_S = 3.0  # the slow-drip page stops after this long
 
 
 async def _demo(out: Path, hosts: int, pages: int, max_pages: int, quiet: bool) -> dict[str, Any]:
-    from frontier.cli import _crawl
+    from frontier.runner import crawl as run_crawl
     from synthweb.graph import SyntheticWeb, WebSpec
     from synthweb.server import SyntheticServer
 
@@ -37,7 +37,7 @@ async def _demo(out: Path, hosts: int, pages: int, max_pages: int, quiet: bool) 
                       "concurrency": 64, "total_timeout_s": 10.0, "read_timeout_s": 5.0},
             "lease": {"ttl_s": 30.0},
         })
-        summary = await _crawl(settings, out, 1, quiet=quiet)
+        summary = await run_crawl(settings, out, quiet=quiet)
         summary["synthetic_web"] = {"port": port, "requests": len(server.log),
                                     "max_concurrency_per_host": max(
                                         server.max_concurrency_per_host().values(), default=0)}

@@ -16,7 +16,7 @@ from typing import Any
 from aiohttp import web
 from warcio.archiveiterator import ArchiveIterator
 
-from frontier.cli import _crawl
+from frontier.runner import crawl as _crawl
 from frontier.settings import load_settings
 from frontier.store import FrontierStore
 from tests.loopback import start_site

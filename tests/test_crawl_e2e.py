@@ -16,7 +16,7 @@ from typing import Any
 import pytest
 from warcio.archiveiterator import ArchiveIterator
 
-from frontier.cli import _crawl
+from frontier.runner import crawl as _crawl
 from frontier.robots import product_token
 from frontier.settings import load_settings
 from frontier.urls import canonicalize

@@ -23,7 +23,7 @@ from typing import Any
 from aiohttp import web
 from warcio.archiveiterator import ArchiveIterator
 
-from frontier.cli import _crawl
+from frontier.runner import crawl as _crawl
 from frontier.digests import Capture, PayloadDigestIndex
 from frontier.keys import Keys
 from frontier.settings import load_settings

@@ -16,7 +16,7 @@ import pytest
 from aiohttp import web
 
 from frontier.admin_auth import CSRF_HEADER, TOKEN_ENV
-from frontier.cli import _crawl
+from frontier.runner import crawl as _crawl
 from frontier.redis_client import connect
 from frontier.settings import load_settings
 from tests.loopback import start_site

@@ -14,7 +14,7 @@ from typing import Any
 
 from aiohttp import web
 
-from frontier.cli import _crawl
+from frontier.runner import crawl as _crawl
 from frontier.keys import Keys
 from frontier.redis_client import connect
 from frontier.settings import load_settings

@@ -11,7 +11,7 @@ from typing import Any
 
 from aiohttp import web
 
-from frontier.cli import _crawl
+from frontier.runner import crawl as _crawl
 from frontier.settings import load_settings
 from tests.loopback import start_site
 from tests.servers import RedisServer

@@ -102,7 +102,7 @@ async def bare_loop(urls: list[str], port: int, concurrency: int) -> float:
 
 async def crawl(pages: int, port: int, seeds: list[str], out: Path, redis_url: str,
                 profile: bool) -> tuple[float, list[str], str]:
-    from frontier.cli import _crawl
+    from frontier.runner import crawl as run_crawl
     # the modules a crawl imports on its way in (~0.25 s here) are start-up, not throughput
     import frontier.daemon, frontier.job, frontier.progress, workers.loop  # noqa: F401, E401
 
@@ -119,7 +119,7 @@ async def crawl(pages: int, port: int, seeds: list[str], out: Path, redis_url: s
     started = time.perf_counter()
     if prof:
         prof.enable()
-    summary = await _crawl(settings, out, 1, quiet=True)
+    summary = await run_crawl(settings, out, quiet=True)
     if prof:
         prof.disable()
     elapsed = time.perf_counter() - started
