@@ -260,6 +260,14 @@ def sluice(*args: str) -> list[str]:
     return [SLUICE, *args]
 
 
+def child_pids(pid: int) -> list[int]:
+    """The processes ``pid`` started (Linux /proc; its main thread's children)."""
+    try:
+        return [int(c) for c in Path(f"/proc/{pid}/task/{pid}/children").read_text().split()]
+    except (OSError, ValueError):
+        return []
+
+
 def run_json(args: Sequence[str], timeout: float = 60.0) -> dict[str, Any]:
     """Run a sluice command that prints one JSON document; return it."""
     done = subprocess.run(list(args), capture_output=True, text=True, timeout=timeout, cwd=REPO,
@@ -304,13 +312,13 @@ class Crew:
         return self.daemon
 
     def start_worker(self, folder: Path | None = None) -> Proc:
-        """A draining worker; its output goes to ``folder``, else a folder of its own
-        (out/wN)."""
+        """A draining worker of one process (killing it kills the worker itself); its
+        output goes to ``folder``, else a folder of its own (out/wN)."""
         self._serial += 1
         name = f"w{self._serial}"
         out = folder if folder is not None else self.root / "out" / name
         proc = self._spawn(sluice("worker", "--redis", self.redis_url, "--job", self.name,
-                                  "--out", str(out), "--drain"), name)
+                                  "--out", str(out), "--drain", "--processes", "1"), name)
         self.workers.append(proc)
         return proc
 
