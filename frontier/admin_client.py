@@ -130,7 +130,10 @@ class AdminClient:
             raise SluiceError(f"admin API at {self.base}: /status did not answer with URL "
                               "counts (is this a sluice admin API?)")
         self._same_job(job, data.get("job"))
-        return {k: data[k] for k in STATUS_KEYS}
+        out = {k: data[k] for k in STATUS_KEYS}
+        if "mirrors" in data:  # mirror hosts (an older API has none)
+            out["mirrors"] = data["mirrors"]
+        return out
 
     async def check_job(self, job: str | None) -> None:
         """ConfigError unless the API serves ``job`` (None: any job)."""

@@ -308,6 +308,7 @@ def cmd_host(a: argparse.Namespace) -> int:
 
 def cmd_status(a: argparse.Namespace) -> int:
     from frontier.job import open_job
+    from frontier.mirrors import read_mirrors
 
     api = _admin_api(a)
     if api is not None:
@@ -324,6 +325,7 @@ def cmd_status(a: argparse.Namespace) -> int:
             counts = await job.store.counts()
             data = counts.as_dict()
             data["balanced"] = counts.balanced
+            data["mirrors"] = await read_mirrors(job.store)  # hosts that copy other hosts
             print(json.dumps(data, indent=2))
 
     run_loop(run())

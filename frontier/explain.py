@@ -23,6 +23,7 @@ from typing import Any
 import orjson
 
 from frontier.exceptions import UrlError
+from frontier.mirrors import format_mirror, mirror_state
 from frontier.model import CASH_SCALE, CASH_UNIT, decode_score
 from frontier.priority import trap_factor, trap_signs
 from frontier.store import FrontierStore
@@ -241,6 +242,7 @@ async def explain(store: FrontierStore, url: str, logs: Iterable[Path] = ()) -> 
         "crawl_delay_ms": int(fields.get("crawl_ms", 0)),
     }
     out["spam"] = _spam(store, fields, counts)
+    out["mirror"] = await mirror_state(store, key)
     out["schedule"] = _schedule(facts, int(store.clock() * 1000))
     out["trap"] = {"signs": trap_signs(canonical, s.priority),
                    "factor": trap_factor(canonical, s.priority)}
@@ -311,6 +313,9 @@ def format_explain(info: dict[str, Any]) -> str:
         f"          priority factor {sp['priority_factor']:g}"
         + (f", at least {sp['lease_gap_s']:g} s between fetches" if sp["lease_gap_s"] else ""),
     ]
+    if "mirror" in info:
+        lines += textwrap.wrap(format_mirror(info["mirror"]), width=WRAP,
+                               initial_indent="copies:   ", subsequent_indent=" " * 10)
     sch = info["schedule"]
     lines.append(f"schedule: partition {sch['partition']}: {sch['place']}")
     if sch["priority"] is not None:

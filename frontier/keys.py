@@ -116,6 +116,16 @@ class PartitionKeys:
         """HyperLogLog of the other hosts that link to this host (budget growth)."""
         return f"{self.tag}:in-hosts:{host}"
 
+    def copies(self, host: str) -> str:
+        """HASH of one politeness key's duplicate counters: 'pages' compared, 'dups' that
+        copy another host's page, and '>' + other host -> copies of that host's pages."""
+        return f"{self.tag}:copies:{host}"
+
+    @property
+    def mirrors(self) -> str:
+        """SET of this partition's politeness keys found to be mirror hosts."""
+        return f"{self.tag}:mirrors"
+
     @property
     def controlled(self) -> str:
         """SET of this partition's politeness keys under operator control: paused, blocked,

@@ -138,6 +138,9 @@ class WorkerMetrics:
         self.near_duplicates = out.add(Counter(
             "sluice_near_duplicates_total", "Pages found near-duplicate by SimHash",
             registry=None))
+        self.exact_duplicates = out.add(Counter(
+            "sluice_exact_duplicates_total", "Pages whose payload was captured before under "
+            "another URL (written as revisit records)", registry=None))
         self.in_flight = out.add(Gauge(
             "sluice_worker_in_flight", "Leases this worker is working on", registry=None))
         self.store_errors = out.add(Counter(
@@ -235,6 +238,12 @@ class FrontierMetrics:
         self.hosts = out.add(Gauge(
             "sluice_hosts_known", "Politeness keys (hosts) the frontier has a record of",
             registry=None))
+        self.mirrors = out.add(Gauge(
+            "sluice_mirror_hosts", "Hosts found to be mirrors of other hosts (their pages "
+            "mostly copies), their budgets cut", registry=None))
+        self.mirror_cut = out.add(Gauge(
+            "sluice_mirror_excluded_urls", "URLs excluded because their host is a mirror "
+            "(reason mirror_host)", registry=None))
         self.controlled = out.add(Gauge(
             "sluice_hosts_controlled",
             "Hosts under operator control, by control (paused, blocked, boosted, delayed); "
@@ -263,6 +272,11 @@ class FrontierMetrics:
         if self.budget not in self._exposed.metrics:
             self._exposed.add(self.budget)
         self.budget.set(max_pages)
+
+    def update_mirrors(self, hosts: int, excluded: int) -> None:
+        """Mirror hosts found, and the URLs excluded for it."""
+        self.mirrors.set(hosts)
+        self.mirror_cut.set(excluded)
 
     def update_board(self, workers: int, hosts_known: int, controlled: dict[str, int]) -> None:
         """Figures the status board read: live workers, known hosts, hosts under control."""

@@ -215,6 +215,22 @@ class PrioritySettings(_Part):
     )
 
 
+class DedupeSettings(_Part):
+    """Duplicates: mirror hosts (docs/duplicates.md). A host whose fetched pages are mostly
+    copies (exact or near) of other hosts' pages is a mirror (Bharat, Broder, Dean &
+    Henzinger, JASIS 2000); its budget is cut to the new pages it has shown plus a slack."""
+
+    mirror_min_pages: int = Field(
+        default=10, ge=0, description="pages of a host compared before it may be called a "
+        "mirror (0: mirror hosts are neither found nor cut); common practice, no source")
+    mirror_share: float = Field(
+        default=0.6, gt=0, le=1, description="share of those pages that copy another host's "
+        "pages from which the host is a mirror; common practice, no source")
+    mirror_slack: int = Field(
+        default=5, ge=1, description="URLs a mirror host may hold beyond the new (not copied) "
+        "pages it has shown")
+
+
 class OutputSettings(_Part):
     warc_max_bytes: int = Field(default=1_000_000_000, ge=1_000_000)
     warc_prefix: str = "sluice"
@@ -250,6 +266,7 @@ class JobSettings(BaseSettings):
     redis: RedisSettings = RedisSettings()
     fetch: FetchSettings = FetchSettings()
     priority: PrioritySettings = PrioritySettings()
+    dedupe: DedupeSettings = DedupeSettings()
     output: OutputSettings = OutputSettings()
     admin: AdminSettings = AdminSettings()
 

@@ -20,6 +20,7 @@ from frontier.budget import PageBudget
 from frontier.host_table import HostTable, read_hosts
 from frontier.job import Job
 from frontier.metrics import FrontierMetrics
+from frontier.mirrors import MIRROR_REASON, read_mirrors
 from frontier.worker_report import read_robots, read_workers
 
 RATE_SAMPLES = 180  # six minutes of samples at the daemon's 2 s
@@ -119,6 +120,8 @@ class StatusBoard:
         table = await self.hosts()
         workers = await read_workers(self.job.redis, self.job.store.keys)
         self.metrics.update_board(len(workers), table.known, table.control_counts)
+        mirrors = await read_mirrors(self.job.store, shown=0)
+        self.metrics.update_mirrors(mirrors["count"], reasons.get(f"excluded:{MIRROR_REASON}", 0))
 
     async def snapshot(self) -> dict[str, Any]:
         """Everything the status page shows, as JSON-ready values (text unescaped: the
@@ -146,6 +149,7 @@ class StatusBoard:
         data["hosts"]["read_ago_s"] = (self.clock() - self._hosts_at
                                        if self._hosts_at is not None else None)
         data["errors"] = self.errors(counts.reasons)
+        data["mirrors"] = await read_mirrors(store)
         robots = await read_robots(self.job.redis, store.keys, ROBOTS_FAILURES_SHOWN)
         data["robots"] = robots
         return data

@@ -29,6 +29,7 @@ from frontier.digests import Capture, PayloadDigestIndex
 from frontier.exceptions import (
     AddressRefused, DiskFault, FetchError, SluiceError, StoreError, StoreUnavailable)
 from frontier.metrics import WorkerMetrics
+from frontier.mirrors import MirrorHosts
 from frontier.model import Candidate, Completion, Lease, Outcome
 from frontier.priority import distribute, url_host
 from frontier.robots import RobotsCache, RobotsFetchResult, RobotsRules, robots_url
@@ -73,6 +74,7 @@ class Finished:
     simhash: int | None = None  # checked against the near-duplicate index at flush time
     simhash_checked: bool = False  # a retried flush must not find the page itself
     logged: bool = False  # its fetch-log line is written (a retried flush writes no second)
+    copies_counted: bool = False  # counted for its host's mirror figures (frontier/mirrors.py)
 
 
 @dataclass(slots=True)
@@ -168,6 +170,7 @@ class Worker:
         self.near_dups = NearDuplicateIndex(store.redis, store.keys.near_dup,
                                             page_key=store.keys.near_dup_page)
         self.first_captures = PayloadDigestIndex(store.redis, store.keys.payload_digests)
+        self.mirrors = MirrorHosts(store)
         self._fetcher = Fetcher(self.settings.fetch, ua)
         self._robots = RobotsCache(
             store.redis, lambda h: store.keys.part_for(h).robots(h),
@@ -649,6 +652,8 @@ class Worker:
         linked = self._links_to_fetched(lease, follow) if done else []
         reason = join_reasons(p.reason, "links_capped" if page.links_capped else None,
                               "exact_duplicate" if first is not None else None)
+        if first is not None:
+            self.metrics.exact_duplicates.inc()
         entry = self._entry(lease, Outcome.FETCHED, reason, p.resp, p.fetched_at,
                             simhash=fingerprint, duplicate_of=first.url if first else None,
                             **ref)
@@ -744,6 +749,7 @@ class Worker:
             batch, self._finished = self._finished, []
             try:
                 await self._mark_near_duplicates(batch)
+                await self._count_copies(batch)  # before the admit: a mirror's links are cut
                 links = [c for f in batch for c in f.links]
                 linked = [pair for f in batch for pair in f.linked]
                 if links or linked:
@@ -827,6 +833,21 @@ class Worker:
         if len(self._fetched_urls) >= FETCHED_MEMORY:
             self._fetched_urls.clear()
         self._fetched_urls.add(url)
+
+    async def _count_copies(self, batch: list[Finished]) -> None:
+        """Each fetched page compared for copies (a payload digest or a SimHash) counts
+        for its host's mirror figures, as a copy when it copies another host's page
+        (frontier/mirrors.py); a batch retried after a Redis error is not counted twice."""
+        fresh = [f for f in batch if not f.copies_counted and f.entry is not None
+                 and f.entry.outcome == Outcome.FETCHED.value
+                 and (f.entry.simhash is not None or f.entry.duplicate_of is not None)]
+        if not fresh:
+            return
+        await self.mirrors.record([
+            (f.completion.lease.host, f.entry.duplicate_of or f.entry.near_duplicate_of)
+            for f in fresh if f.entry is not None])
+        for f in fresh:
+            f.copies_counted = True
 
     async def _mark_near_duplicates(self, batch: list[Finished]) -> None:
         """A near-duplicate page stays archived in full and its links still go to

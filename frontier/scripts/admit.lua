@@ -44,6 +44,8 @@
 -- `probation` distinct trusted hosts link to it; lease_take.lua holds its first fetch
 -- back meanwhile (a farm's hosts are linked by few trusted hosts and wait; an honest
 -- host's trusted in-links keep coming).
+-- A mirror host (mirror.lua set 'mlim') may hold no more than 'mlim' URLs: beyond, a URL
+-- is excluded as 'mirror_host', not remembered as seen (the limit grows with new pages).
 -- Returns {new, credited, excluded, duplicates}.
 local now = tonumber(ARGV[1])
 local cap = tonumber(ARGV[2])
@@ -219,7 +221,7 @@ for g = 0, ngroups - 1 do
   local k0 = 7 + 6 * g
   local hk, hot, cold = KEYS[k0 + 1], KEYS[k0 + 2], KEYS[k0 + 3]
   local linking, out, trusted = KEYS[k0 + 4], KEYS[k0 + 5], KEYS[k0 + 6]
-  local f = redis.call('HMGET', hk, 'state', 'admitted', 'seeded', 'suspect')
+  local f = redis.call('HMGET', hk, 'state', 'admitted', 'seeded', 'suspect', 'mlim')
   local state, admitted, seeded, suspect = f[1], tonumber(f[2] or '0'), f[3], f[4]
   if not state then
     state = 'active'
@@ -244,6 +246,10 @@ for g = 0, ngroups - 1 do
   local n = tonumber(ARGV[a])
   a = a + 1
   local limit, earned = host_limit(budget, linking, trusted, admitted + n, seeded, suspect)
+  local cut = earned and 'host_link_budget' or 'host_budget'
+  if f[5] and (limit == 0 or tonumber(f[5]) < limit) then  -- a mirror host (mirror.lua)
+    limit, earned, cut = math.max(1, tonumber(f[5])), true, 'mirror_host'
+  end
   local changed = false  -- something was queued or credited: the host's counters change
   local q = nil
   local prior_best = nil  -- best score before this batch (nil: the host queued nothing)
@@ -261,7 +267,7 @@ for g = 0, ngroups - 1 do
       if state == 'blocked' then
         exclude('host_blocked', url)
       elseif full then
-        exclude(earned and 'host_link_budget' or 'host_budget', url)
+        exclude(cut, url)
       else
         if not q then
           q = queue_open(hot, cold, cap)
