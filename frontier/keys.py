@@ -132,6 +132,16 @@ class PartitionKeys:
         boosted or delayed (kept by the control script)."""
         return f"{self.tag}:controlled"
 
+    @property
+    def revisits(self) -> str:
+        """ZSET 'host url' -> when the page is due again (ms): the revisit schedule."""
+        return f"{self.tag}:revisits"
+
+    def revisit_state(self, host: str) -> str:
+        """HASH url -> packed revisit state of one politeness key's fetched pages
+        (visits, changes, times, validators, digest; frontier/revisit.py)."""
+        return f"{self.tag}:rv:{host}"
+
     def held_hot(self, host: str) -> str:
         """ZSET: a blocked host's hot window, set aside until it is unblocked."""
         return f"{self.tag}:held-hot:{host}"

@@ -231,6 +231,34 @@ class DedupeSettings(_Part):
         "pages it has shown")
 
 
+class RevisitSettings(_Part):
+    """Continuous crawling (docs/revisits.md): a fetched page goes back to its host's queue
+    after an interval set by its estimated change rate (Cho & Garcia-Molina, ACM TOIT
+    2003) and the optimal-freshness allocation of the host's revisit budget (Cho &
+    Garcia-Molina, ACM TODS 2003), kept between the two bounds below."""
+
+    enabled: bool = Field(default=False, description="revisit fetched pages (the crawl "
+                          "then runs until stopped or its page budget is spent)")
+    min_interval_s: float = Field(
+        default=3600.0, gt=0, allow_inf_nan=False,
+        description="shortest time between two fetches of one page; common practice, no source")
+    max_interval_s: float = Field(
+        default=30 * 86400.0, gt=0, allow_inf_nan=False,
+        description="longest time between two fetches of one page; common practice, no source")
+    host_fetches_per_day: float = Field(
+        default=2880.0, gt=0, allow_inf_nan=False,
+        description="the host's share of the revisit budget: revisits a day spread over its "
+        "pages (politeness still applies); common practice, no source")
+
+    @field_validator("max_interval_s")
+    @classmethod
+    def _ordered(cls, value: float, info: Any) -> float:
+        low = info.data.get("min_interval_s")
+        if low is not None and value < low:
+            raise ValueError(f"must be at least min_interval_s ({low:g}), got {value:g}")
+        return value
+
+
 class OutputSettings(_Part):
     warc_max_bytes: int = Field(default=1_000_000_000, ge=1_000_000)
     warc_prefix: str = "sluice"
@@ -267,6 +295,7 @@ class JobSettings(BaseSettings):
     fetch: FetchSettings = FetchSettings()
     priority: PrioritySettings = PrioritySettings()
     dedupe: DedupeSettings = DedupeSettings()
+    revisit: RevisitSettings = RevisitSettings()
     output: OutputSettings = OutputSettings()
     admin: AdminSettings = AdminSettings()
 

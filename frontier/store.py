@@ -406,9 +406,12 @@ class FrontierStore:
                 pk.due, pk.ready, pk.prio, pk.claims]
 
     async def complete_many(
-        self, completions: Iterable[Completion], now: int | None = None
+        self, completions: Iterable[Completion], now: int | None = None, *,
+        also: Sequence[ScriptCall] = (),
     ) -> list[str]:
-        """End leases; one status per completion, in order: 'ok', 'not_held' or 'expired'."""
+        """End leases; one status per completion, in order: 'ok', 'not_held' or 'expired'.
+        ``also``: more script calls sent after the completions, in the same pipeline (the
+        revisit records of the same fetches: frontier/revisit_store.py)."""
         t = self._now(now)
         items = list(completions)
         by_part: dict[int, list[int]] = {}
@@ -417,7 +420,8 @@ class FrontierStore:
         statuses = [""] * len(items)
         async with redis_boundary("complete"):
             results = await run_many(self.redis, [
-                self._complete_call(p, [items[i] for i in idx], t) for p, idx in by_part.items()])
+                *(self._complete_call(p, [items[i] for i in idx], t)
+                  for p, idx in by_part.items()), *also])
         for idx, res in zip(by_part.values(), results):
             for i, status in zip(idx, res):
                 statuses[i] = status.decode() if isinstance(status, bytes) else status
