@@ -8,11 +8,14 @@ where a default comes from a published source, the source is named beside it.
 
 from __future__ import annotations
 
+import math
 import tomllib
 from pathlib import Path
 from typing import Annotated, Any, Literal
 
-from pydantic import BaseModel, ConfigDict, Field, ValidationError, field_validator
+from pydantic import (
+    BaseModel, ConfigDict, Field, ValidationError, field_validator, model_validator,
+)
 from pydantic_settings import (
     BaseSettings,
     PydanticBaseSettingsSource,
@@ -264,6 +267,77 @@ class OutputSettings(_Part):
     warc_prefix: str = "sluice"
 
 
+class FocusSettings(_Part):
+    """Topic focus (docs/focus.md): the subject by example pages and/or weighted terms.
+
+    Relevance: multinomial naive Bayes over hashed words (Manning, Raghavan & Schütze,
+    IIR ch. 13) and/or BM25 (Robertson & Zaragoza 2009); a page's links get their cash
+    times its relevance (soft focus, Chakrabarti, van den Berg & Dom, WWW 1999)."""
+
+    model_config = ConfigDict(frozen=True, extra="forbid", allow_inf_nan=False)
+
+    examples: tuple[Path, ...] = Field(
+        default=(), max_length=1000, description="files of pages about the subject (HTML or "
+        "text), read by every process at start; needs background pages")
+    background: tuple[Path, ...] = Field(
+        default=(), max_length=1000, description="files of pages not about the subject (naive "
+        "Bayes's other class; BM25's IDF and average length)")
+    terms: dict[str, float] = Field(
+        default_factory=dict, max_length=10_000,
+        description="subject words and their weights (> 0), scored by BM25")
+    threshold: float = Field(
+        default=0.5, ge=0, le=1, description="relevance below which a page is off topic: "
+        "archived, its links' cash times off_topic_factor")
+    off_topic_factor: float = Field(
+        default=0.01, ge=0, le=1, description="cash factor of an off-topic page's links (0: its "
+        "links are not followed)")
+    evidence_words: int = Field(
+        default=50, ge=1, le=1_000_000, description="a page counts as at most this many words "
+        "of naive-Bayes evidence (our rule against NB's overconfidence on long pages)")
+    hash_bits: int = Field(default=18, ge=8, le=24, description="2**bits word buckets (mmh3)")
+    bm25_k1: float = Field(default=1.2, ge=0, le=100, description="BM25 term-frequency "
+                           "saturation (Robertson & Zaragoza 2009: 1.2 typical)")
+    bm25_b: float = Field(default=0.75, ge=0, le=1, description="BM25 length normalisation "
+                          "(0.75 typical)")
+    terms_avg_words: float = Field(
+        default=300.0, gt=0, le=1e7, description="BM25 average page length without background "
+        "pages (common practice, no source)")
+    terms_half_score: float = Field(
+        default=1.0, gt=0, le=1e6, description="BM25 score at which the terms' relevance is "
+        "one half")
+
+    @field_validator("terms")
+    @classmethod
+    def _words(cls, value: dict[str, float]) -> dict[str, float]:
+        from frontier.focus import WORD_RE
+
+        out: dict[str, float] = {}
+        for term, weight in value.items():
+            word = term.strip().casefold()
+            if not WORD_RE.fullmatch(word):
+                raise ValueError(f"term {term!r} is not one word of two or more letters "
+                                 "(phrases, digits and punctuation are not matched)")
+            if not (math.isfinite(weight) and weight > 0):
+                raise ValueError(f"term {term!r}: weight {weight!r} must be a finite number "
+                                 "above 0")
+            if word in out:
+                raise ValueError(f"term {term!r} is given twice (words are matched "
+                                 "case-folded)")
+            out[word] = weight
+        return out
+
+    @model_validator(mode="after")
+    def _subject(self) -> FocusSettings:
+        if not self.examples and not self.terms:
+            raise ValueError("[focus] needs examples (files of pages about the subject, with "
+                             "background files) or terms (word = weight); remove [focus] to "
+                             "order by link importance alone")
+        if self.examples and not self.background:
+            raise ValueError("focus.examples need focus.background: files of pages not about "
+                             "the subject, which the model learns the subject's words against")
+        return self
+
+
 class AdminSettings(_Part):
     """The admin HTTP API. Its token is never stored with the job: it comes from the
     ``SLUICE_ADMIN_TOKEN`` variable or the file named here."""
@@ -298,6 +372,7 @@ class JobSettings(BaseSettings):
     revisit: RevisitSettings = RevisitSettings()
     output: OutputSettings = OutputSettings()
     admin: AdminSettings = AdminSettings()
+    focus: FocusSettings | None = None  # no [focus]: link importance alone
 
     @classmethod
     def settings_customise_sources(
