@@ -48,6 +48,9 @@ def _job_flags(p: argparse.ArgumentParser) -> None:
                    help="allow --map-hosts entries to non-loopback addresses")
     p.add_argument("--allow-host", action="append", default=[], help="extra in-scope host pattern")
     p.add_argument("--state", type=Path, help="state folder of the embedded Redis")
+    p.add_argument("--revisit", action="store_true", default=None,
+                   help="keep fetched pages fresh: revisit each as its changes suggest "
+                   "(runs until stopped or --max-pages fetches; docs/revisits.md)")
 
 
 def _overrides(a: argparse.Namespace) -> dict[str, Any]:
@@ -74,6 +77,7 @@ def _overrides(a: argparse.Namespace) -> dict[str, Any]:
     put("fetch.map_hosts", a.map_hosts)
     put("fetch.map_ports", a.map_port)
     put("fetch.map_remote", a.map_remote)
+    put("revisit.enabled", getattr(a, "revisit", None))
     put("state_dir", str(a.state) if a.state else None)
     if a.seeds:
         from frontier.job import read_seeds
@@ -401,6 +405,9 @@ def cmd_bench(a: argparse.Namespace) -> int:
     if a.what == "dedupe":
         from frontier.bench.dedupe_bench import main as dedupe_main
         return dedupe_main(pages=a.urls or 5000)
+    if a.what == "revisit":
+        from frontier.bench.revisit_bench import main as revisit_main
+        return revisit_main(seeds=a.seed)
     from frontier.bench.ordering_bench import main as ordering_main
     from frontier.bench.ordering_bench import parse_override
     return ordering_main(a.web, a.seed, a.timing, dict(parse_override(s) for s in a.set),
@@ -488,7 +495,7 @@ def parser() -> argparse.ArgumentParser:
     m.set_defaults(func=cmd_demo)
 
     b = sub.add_parser("bench", help="benchmarks that print JSON")
-    b.add_argument("what", choices=["frontier", "crawl", "ordering", "dedupe"])
+    b.add_argument("what", choices=["frontier", "crawl", "ordering", "dedupe", "revisit"])
     b.add_argument("--urls", type=int, help="URLs (frontier) or pages (crawl, dedupe)")
     b.add_argument("--hosts", type=int)
     b.add_argument("--profile", action="store_true",
