@@ -16,6 +16,8 @@ from frontier.model import (
     CASH_SCALE, CASH_UNIT, DEPTH_SCALE, MAX_DEPTH, MAX_HOPS, AdmitResult, Candidate,
 )
 from frontier.settings import JobSettings
+from frontier.sitemaps import MARK as SITEMAP_MARK
+from frontier.sitemaps import fingerprint_form, sitemap_url, split_sitemap
 from frontier.store import FrontierStore, PartitionBatch, QueuedUrl
 from frontier.urls import (
     Scope, canonicalize, fingerprint, host_of, politeness_key, registered_domain,
@@ -209,11 +211,16 @@ class Admission:
         return place
 
     def _url_facts(self, raw: str) -> tuple[str, str, int] | str:
-        """(canonical URL, host, fingerprint) of an offered URL, or why it is refused."""
+        """(canonical URL, host, fingerprint) of an offered URL, or why it is refused.
+        A sitemap keeps its kind mark (frontier/sitemaps.py)."""
+        sitemap = split_sitemap(raw) if SITEMAP_MARK in raw else None
         try:
-            url = canonicalize(raw, max_length=self.max_length, schemes=self.schemes)
+            url = canonicalize(sitemap[0] if sitemap else raw, max_length=self.max_length,
+                               schemes=self.schemes)
         except UrlError as exc:
             return f"url_{exc.reason}"
+        if sitemap is not None:
+            return sitemap_url(url, sitemap[1]), host_of(url), fingerprint(fingerprint_form(url))
         return url, host_of(url), fingerprint(url)
 
     def _key(self, host: str) -> str:

@@ -33,6 +33,8 @@ def _job_flags(p: argparse.ArgumentParser) -> None:
     p.add_argument("--job", help="job name")
     p.add_argument("--redis", help="redis:// URL (a Cluster: redis+cluster://); none: embedded")
     p.add_argument("--seeds", type=Path, help="file of seed URLs, one a line")
+    p.add_argument("--sitemap", action="append", default=[], metavar="URL",
+                   help="a sitemap (or sitemap index) to read (repeatable; docs/sitemaps.md)")
     p.add_argument("--max-pages", type=int)
     p.add_argument("--max-pages-per-host", type=int)
     p.add_argument("--max-depth", type=int)
@@ -79,6 +81,7 @@ def _overrides(a: argparse.Namespace) -> dict[str, Any]:
     put("fetch.map_remote", a.map_remote)
     put("revisit.enabled", getattr(a, "revisit", None))
     put("state_dir", str(a.state) if a.state else None)
+    put("sitemaps.urls", a.sitemap)
     if a.seeds:
         from frontier.job import read_seeds
         put("seeds", read_seeds(a.seeds))
@@ -88,7 +91,7 @@ def _overrides(a: argparse.Namespace) -> dict[str, Any]:
 # settings whose flag is not --<last part of the key, dashed>
 SETTING_FLAGS = {"name": "--job", "redis.url": "--redis", "scope.allow_hosts": "--allow-host",
                  "politeness.min_delay_s": "--min-delay", "fetch.map_ports": "--map-port",
-                 "state_dir": "--state", "seeds": "--seeds"}
+                 "state_dir": "--state", "seeds": "--seeds", "sitemaps.urls": "--sitemap"}
 
 
 def _flag_of(loc: tuple[Any, ...]) -> str:

@@ -221,6 +221,10 @@ class Keys:
         """STRING: one worker's heartbeat as JSON (host, pid, pages...), set to expire."""
         return f"{self.tag}:worker:{worker_id}"
 
+    def sitemaps_of(self, host: str) -> str:
+        """SET of the sitemap URLs admitted on one host (at most sitemaps.max_per_host)."""
+        return f"{self.tag}:sitemaps:{host}"
+
     @property
     def robots_outcomes(self) -> str:
         """HASH robots.txt policy (rules, allow_all, disallow_all) -> fetches."""

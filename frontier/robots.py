@@ -33,6 +33,7 @@ import asyncio
 import logging
 import re
 import secrets
+import itertools
 import time
 import zlib
 from collections import OrderedDict
@@ -58,6 +59,7 @@ STATE_DISALLOW_ALL = "disallow_all"
 ROBOTS_PATH = "/robots.txt"
 MAX_TTL_S = 86400.0  # RFC 9309 s.2.4: SHOULD NOT use a cached copy for more than 24 hours
 DEFAULT_TTL_S = MAX_TTL_S
+MAX_SITEMAP_LINES = 1000  # Sitemap: lines kept from one file (common practice, no source)
 DEFAULT_ERROR_TTL_S = 600.0  # common practice, no source: retry an unreachable host sooner
 DEFAULT_CRAWL_DELAY_CAP_S = 30.0
 MIN_PARSE_BYTES = 500 * 1024  # RFC 9309 s.2.5: parse at least 500 KiB
@@ -302,12 +304,14 @@ class RobotsRules:
         *,
         group: RuleGroup | None = None,
         crawl_delay_s: float | None = None,
+        sitemaps: tuple[str, ...] = (),
     ) -> None:
         if state not in (STATE_RULES, STATE_ALLOW_ALL, STATE_DISALLOW_ALL):
             raise ValueError(f"unknown robots state {state!r}")
         self.state = state
         self._group = group
         self._crawl_delay_s = crawl_delay_s
+        self.sitemaps = sitemaps  # the file's Sitemap: lines, as written (any group)
 
     @classmethod
     def from_entry(
@@ -337,7 +341,11 @@ class RobotsRules:
         agent = token if token.lower() in _group_names(text) else "*"
         delay = parser.crawl_delay(agent)
         capped = None if delay is None else min(delay, crawl_delay_cap_s)
-        return cls(STATE_RULES, group=group, crawl_delay_s=capped)
+        try:  # Sitemap: lines stand outside the groups (sitemaps.org protocol 0.9)
+            sitemaps = tuple(itertools.islice(parser.sitemaps, MAX_SITEMAP_LINES))
+        except Exception:  # noqa: BLE001 - a hostile body must not stop the crawl
+            sitemaps = ()
+        return cls(STATE_RULES, group=group, crawl_delay_s=capped, sitemaps=sitemaps)
 
     def allowed(self, url: str) -> bool:
         """May ``url`` (absolute, on this host) be fetched? ``/robots.txt`` always may."""

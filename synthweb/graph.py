@@ -132,6 +132,8 @@ class SyntheticWeb:
     redirect_loop: list[str] = field(default_factory=list)
     near_duplicate_groups: list[list[str]] = field(default_factory=list)
     ssrf_urls: list[str] = field(default_factory=list)
+    # URL -> (status, body, headers): files served as they are (synthweb/sitemaps.py)
+    files: dict[str, tuple[int, bytes, dict[str, str]]] = field(default_factory=dict)
     _parsers: dict[str, Protego] = field(default_factory=dict, repr=False, compare=False)
 
     @classmethod

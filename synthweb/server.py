@@ -337,6 +337,9 @@ class SyntheticServer:
         await asyncio.sleep(self.slow_delay if host in self.web.slow_hosts else self.latency)
         if request.path == ROBOTS_PATH:
             return self._robots(host, outcome)
+        served = self.web.files.get(f"http://{host}{request.path_qs}")
+        if served is not None:
+            return self._simple(outcome, *served)
         page = self.web.resolve(f"http://{host}{request.path_qs}")
         if page is None:
             return self._simple(outcome, 404, b"<html><body>not found</body></html>\n",

@@ -114,8 +114,10 @@ class Fetcher:
             await self._session.close()
             self._session = None
 
-    async def get(self, url: str, *, max_body: int | None = None) -> Response:
-        """GET ``url`` without following redirects. Raises FetchError or AddressRefused."""
+    async def get(self, url: str, *, max_body: int | None = None,
+                  max_decoded: int | None = None) -> Response:
+        """GET ``url`` without following redirects. Raises FetchError or AddressRefused.
+        ``max_body``/``max_decoded`` replace the job's caps (a sitemap's are its own)."""
         assert self._session is not None, "use 'async with Fetcher(...)'"
         s = self.settings
         limit = max_body or s.max_body_bytes
@@ -125,7 +127,8 @@ class Fetcher:
                 header_bytes = sum(len(k) + len(v) + 4 for k, v in resp.raw_headers)
                 if header_bytes > s.max_header_bytes:
                     raise FetchError("headers_too_large", f"{header_bytes} bytes of headers")
-                decoder = Decoder(resp.headers.get("Content-Encoding"), s.max_decompressed_bytes)
+                decoder = Decoder(resp.headers.get("Content-Encoding"),
+                                  max_decoded or s.max_decompressed_bytes)
                 truncated = None
                 raw = 0
                 try:

@@ -35,6 +35,7 @@ from frontier.priority import distribute, url_host
 from frontier.robots import RobotsCache, RobotsFetchResult, RobotsRules, robots_url
 from frontier.settings import JobSettings
 from frontier.simhash import NearDuplicateIndex, hamming, simhash64
+from frontier.sitemaps import SitemapReader, sitemap_url, split_sitemap
 from frontier.store import FrontierStore, redis_boundary
 from frontier.urls import canonicalize
 from frontier.worker_report import WorkerReport
@@ -179,6 +180,8 @@ class Worker:
             error_ttl_s=self.settings.politeness.robots_error_ttl_s,
             crawl_delay_cap_s=self.settings.politeness.crawl_delay_cap_s,
             lock_key_for_host=lambda h: store.keys.part_for(h).robots_lock(h))
+        self.sitemaps = SitemapReader(self.settings, store.redis, store.keys,
+                                      self._robots.rules_for)
         self._finished: list[Finished] = []
         self._fetched: list[FetchedPage] = []  # HTML pages not yet parsed and archived
         # URLs this worker fetched (completion accepted): links to them are not offered as
@@ -241,6 +244,7 @@ class Worker:
             self._fault = exc
             raise self._fault_report() from exc
         self.metrics.watch_archive(self.archive)
+        await self._offer_sitemaps(self.sitemaps.operator_candidates())
         flusher = asyncio.create_task(self._flush_loop(), name="write-back")
         flusher.add_done_callback(self._loop_ended)
         heartbeat = asyncio.create_task(self._heartbeat_loop(), name="lease heartbeat")
@@ -477,14 +481,20 @@ class Worker:
         """Robots, then the fetch; an HTML page is left for the batched page phase."""
         pol = self.settings.politeness
         crawl_delay: float | None = None
+        sitemap = split_sitemap(lease.url)  # a sitemap: fetched at its URL, read apart
+        target = sitemap[0] if sitemap else lease.url
         if pol.obey_robots:
-            rules = await self._rules(lease.url)
+            rules = await self._rules(target)
             crawl_delay = rules.crawl_delay()
-            if not rules.allowed(lease.url):
+            if not rules.allowed(target):
                 c = Completion(lease, Outcome.EXCLUDED, "robots", crawl_delay_s=crawl_delay)
                 return Finished(c), self._entry(lease, Outcome.EXCLUDED, "robots")
         try:
-            resp = await self._fetcher.get(lease.url)
+            if sitemap:
+                cap = self.settings.sitemaps.max_bytes
+                resp = await self._fetcher.get(target, max_body=cap, max_decoded=cap)
+            else:
+                resp = await self._fetcher.get(lease.url)
         except AddressRefused as exc:
             c = Completion(lease, Outcome.EXCLUDED, f"address_{exc.reason}")
             return Finished(c), self._entry(lease, Outcome.EXCLUDED, c.reason)
@@ -511,7 +521,31 @@ class Worker:
             c = Completion(lease, Outcome.FAILED, f"http_{resp.status}", response_s=resp.elapsed_s,
                            crawl_delay_s=crawl_delay)
             return Finished(c), self._entry(lease, Outcome.FAILED, c.reason, resp)
+        if sitemap:
+            return await self._sitemap(lease, resp, base, *sitemap)
         return await self._page(lease, resp, base)
+
+    async def _sitemap(self, lease: Lease, resp: Response, base: Completion, url: str,
+                       level: int) -> tuple[Finished, FetchEntry]:
+        """A fetched sitemap: archived under its own URL, read into candidates (its URLs,
+        or an index's sitemaps); a hostile or broken one ends failed with its reason."""
+        read = await self.sitemaps.read(lease, url, level, resp.body, resp.truncated)
+        at = datetime.now(UTC)
+        ref = await self._archive_any(dataclasses.replace(lease, url=url), resp, None, at)
+        c = dataclasses.replace(base, outcome=read.outcome, reason=read.reason)
+        return Finished(c, read.candidates), self._entry(lease, read.outcome, read.reason,
+                                                         resp, at, **ref)
+
+    async def _offer_sitemaps(self, candidates: list[Candidate]) -> None:
+        """Admit sitemaps found outside a lease (the job's own, robots.txt lines), within
+        their hosts' quota; a Redis failure loses them until the robots.txt is read again."""
+        if not candidates:
+            return
+        try:
+            kept, _ = await self.sitemaps.within_quota(candidates)
+            self.metrics.count_admitted(await self.admission.admit(kept))
+        except StoreError as exc:
+            log.warning("could not admit %d sitemaps: %s", len(candidates), exc)
 
     async def _redirect(self, lease: Lease, resp: Response,
                         base: Completion) -> tuple[Finished, FetchEntry]:
@@ -522,7 +556,10 @@ class Worker:
                            crawl_delay_s=base.crawl_delay_s)
             return Finished(c), self._entry(lease, Outcome.FAILED, "redirect_limit", resp)
         if location:  # one more depth and one more hop: a chain's hosts are not seeded
-            links.append(Candidate(canonical_or_raw(location, lease.url), depth=lease.depth + 1,
+            target = canonical_or_raw(location, lease.url)
+            if sitemap := split_sitemap(lease.url):  # a moved sitemap is still one
+                target = sitemap_url(target, sitemap[1])
+            links.append(Candidate(target, depth=lease.depth + 1,
                                    cash=lease.cash, credit=lease.cash, source_host=lease.host,
                                    hops=lease.hops + 1))
         at = datetime.now(UTC)
@@ -720,7 +757,13 @@ class Worker:
             if 300 <= resp.status < 400 and resp.header("Location"):
                 target = canonical_or_raw(resp.header("Location") or "", target)
                 continue
-            return RobotsFetchResult(resp.status, resp.body, None)
+            result = RobotsFetchResult(resp.status, resp.body, None)
+            if self.settings.sitemaps.enabled and 200 <= resp.status < 300:
+                named = RobotsRules.from_entry(resp.status, resp.body,
+                                               user_agent=self.user_agent).sitemaps
+                await self._offer_sitemaps(
+                    self.sitemaps.robots_candidates(origin_of(url), named))
+            return result
         return RobotsFetchResult(None, b"", "too_many_redirects")
 
     # -- writing back -------------------------------------------------------------------
