@@ -408,6 +408,10 @@ def cmd_bench(a: argparse.Namespace) -> int:
     if a.what == "dedupe":
         from frontier.bench.dedupe_bench import main as dedupe_main
         return dedupe_main(pages=a.urls or 5000)
+    if a.what == "focus":
+        from frontier.bench.focus_bench import DEFAULT_PLOT as FOCUS_PLOT
+        from frontier.bench.focus_bench import main as focus_main
+        return focus_main(plot_path=a.plot or FOCUS_PLOT)
     if a.what == "revisit":
         from frontier.bench.revisit_bench import main as revisit_main
         return revisit_main(seeds=a.seed)
@@ -498,7 +502,7 @@ def parser() -> argparse.ArgumentParser:
     m.set_defaults(func=cmd_demo)
 
     b = sub.add_parser("bench", help="benchmarks that print JSON")
-    b.add_argument("what", choices=["frontier", "crawl", "ordering", "dedupe", "revisit"])
+    b.add_argument("what", choices=["frontier", "crawl", "ordering", "dedupe", "focus", "revisit"])
     b.add_argument("--urls", type=int, help="URLs (frontier) or pages (crawl, dedupe)")
     b.add_argument("--hosts", type=int)
     b.add_argument("--profile", action="store_true",
@@ -517,7 +521,7 @@ def parser() -> argparse.ArgumentParser:
                    help="ordering: a job setting for the crawl, e.g. priority.jump_floor=1e-4")
     b.add_argument("--plot", type=Path, metavar="PNG",
                    help="ordering: draw the plot here (default docs/ordering.png when every "
-                   "web runs)")
+                   "web runs); focus: default docs/focus.png")
     b.set_defaults(func=cmd_bench)
     return p
 

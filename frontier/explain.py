@@ -23,6 +23,7 @@ from typing import Any
 import orjson
 
 from frontier.exceptions import UrlError
+from frontier.focus import explain_focus, format_focus
 from frontier.mirrors import format_mirror, mirror_state
 from frontier.model import CASH_SCALE, CASH_UNIT, decode_score
 from frontier.priority import trap_factor, trap_signs
@@ -250,6 +251,7 @@ async def explain(store: FrontierStore, url: str, logs: Iterable[Path] = ()) -> 
     out["logged"] = [{k: entry.get(k) for k in ("outcome", "reason", "fetched_at", "status",
                                                 "warc_file", "warc_offset")}
                      for entry in logged_outcomes(canonical, logs)]
+    out["focus"] = explain_focus(s, out["logged"])
     return out
 
 
@@ -324,6 +326,7 @@ def format_explain(info: dict[str, Any]) -> str:
     trap = info["trap"]
     signs = ", ".join(trap["signs"]) or "none"
     lines.append(f"trap:     signs {signs}; cash factor {trap['factor']:g}")
+    lines += format_focus(info["focus"]) if "focus" in info else []
     lines += textwrap.wrap(info["cash_sources"], width=WRAP, initial_indent="sources:  ",
                            subsequent_indent=" " * len("sources:  "))
     return "\n".join(lines)

@@ -42,15 +42,22 @@ import mmh3
 from frontier.exceptions import ConfigError
 from frontier.model import Candidate
 
-WORD_RE = re.compile(r"[^\W\d_]{2,}")  # letters only, two or more
+WORD_RE = re.compile(r"\w{2,}")  # kept when all letters (twice as fast as [^\W\d_]{2,})
 MAX_SCORED_CHARS = 100_000  # a page's text beyond this is not scored (per-page CPU bound)
 MEMO_SIZE = 1 << 16  # words whose bucket weight is remembered
 EXPLAIN_TERMS = 10  # the strongest subject words shown by explain
 
 
 def words(text: str) -> list[str]:
-    """The words of ``text``: runs of two or more letters, case-folded."""
-    return WORD_RE.findall(text.casefold())
+    """The words of ``text``, case-folded: runs of two or more word characters (letters,
+    digits, underscores) made of letters only."""
+    return [w for w in WORD_RE.findall(text.casefold()) if w.isalpha()]
+
+
+def is_word(term: str) -> bool:
+    """Whether ``term`` (case-folded) is one word as :func:`words` finds them."""
+    folded = term.casefold()
+    return WORD_RE.fullmatch(folded) is not None and folded.isalpha()
 
 
 def bucket(word: str, bits: int) -> int:
@@ -83,6 +90,7 @@ class NaiveBayes:
     log_prior_ratio: float  # ln P(subject) - ln P(background)
     llr: dict[int, float]  # per bucket of V: ln P(t|subject) - ln P(t|background)
     vocabulary: dict[int, str] = field(default_factory=dict)  # a word seen in each bucket
+    _memo: dict[str, float | None] = field(default_factory=dict, repr=False, compare=False)
 
     @classmethod
     def train(cls, subject: Sequence[str], background: Sequence[str], bits: int) -> NaiveBayes:
@@ -106,16 +114,28 @@ class NaiveBayes:
         prior = math.log(len(subject)) - math.log(len(background))
         return cls(bits, prior, llr, names)
 
-    def log_odds(self, tokens: Iterable[str], evidence_words: int | None = None) -> float:
+    def weight(self, word: str) -> float | None:
+        """The log-likelihood ratio of a word's bucket (None: outside V); remembered."""
+        memo = self._memo
+        if word in memo:
+            return memo[word]
+        if len(memo) >= MEMO_SIZE:
+            memo.clear()
+        v = memo[word] = self.llr.get(bucket(word, self.bits))
+        return v
+
+    def log_odds(self, tokens: Iterable[str] | Counter[str],
+                 evidence_words: int | None = None) -> float:
         """ln P(subject|d) - ln P(background|d); words outside V are skipped. With
         ``evidence_words``, the words' sum counts as at most that many words."""
+        counts = tokens if isinstance(tokens, Counter) else Counter(tokens)
         total, n = 0.0, 0
-        llr, bits = self.llr, self.bits
-        for w in tokens:
-            v = llr.get(bucket(w, bits))
+        weight = self.weight
+        for w, k in counts.items():
+            v = weight(w)
             if v is not None:
-                total += v
-                n += 1
+                total += v * k
+                n += k
         if evidence_words is not None and n > evidence_words:
             total *= evidence_words / n
         return self.log_prior_ratio + total
@@ -163,13 +183,14 @@ class TermScorer:
             idf, avgdl = dict.fromkeys(weights, 1.0), default_avgdl
         return cls(weights, idf, avgdl, k1, b)
 
-    def score(self, tokens: Sequence[str]) -> float:
-        """The BM25 score of a page with these words."""
+    def score(self, tokens: Sequence[str] | Counter[str]) -> float:
+        """The BM25 score of a page with these words (a list, or their counts)."""
+        counts = tokens if isinstance(tokens, Counter) else Counter(tokens)
         weights = self.weights
-        tf = Counter(w for w in tokens if w in weights)
+        tf = {t: counts[t] for t in weights if t in counts}
         if not tf:
             return 0.0
-        norm = self.k1 * (1 - self.b + self.b * len(tokens) / self.avgdl)
+        norm = self.k1 * (1 - self.b + self.b * counts.total() / self.avgdl)
         return sum(weights[t] * self.idf[t] * f * (self.k1 + 1) / (f + norm)
                    for t, f in tf.items())
 
@@ -203,7 +224,7 @@ class Focus:
 
     def score(self, text: str) -> Relevance:
         """Relevance of a page's text (title and visible text)."""
-        tokens = words(text[:MAX_SCORED_CHARS])
+        tokens = Counter(words(text[:MAX_SCORED_CHARS]))
         parts: list[float] = []
         out = Relevance(0.0)
         if self.bayes is not None:
@@ -288,3 +309,60 @@ def build_focus(settings: Any) -> Focus | None:
                                  fs.terms_avg_words)
     return Focus(fs.threshold, fs.off_topic_factor, fs.evidence_words, fs.terms_half_score,
                  bayes, terms)
+
+
+# --- sluice explain -------------------------------------------------------------------------
+
+FOCUS_OFF_NOTE = "no [focus]: URLs are ordered by link importance alone"
+CASH_NOTE = ("a queued URL's cash already carries g(r) of each page that linked to it "
+             "(not kept per URL: the score holds only the sum)")
+
+
+def explain_focus(settings: Any, logged: Sequence[dict[str, Any]]) -> dict[str, Any]:
+    """The relevance part of a URL for ``sluice explain``: the model in brief, the rule,
+    and what the fetch log says of the URL's own page (``off_topic`` among its reasons)."""
+    if getattr(settings, "focus", None) is None:
+        return {"on": False, "note": FOCUS_OFF_NOTE}
+    out: dict[str, Any] = {"on": True, "cash": CASH_NOTE}
+    try:
+        focus = build_focus(settings)
+    except ConfigError as exc:  # the example files are on another machine
+        out["model"] = None
+        out["model_error"] = str(exc)
+        fs = settings.focus
+        out["threshold"], out["off_topic_factor"] = fs.threshold, fs.off_topic_factor
+    else:
+        assert focus is not None
+        out["model"] = focus.describe()
+        out["threshold"], out["off_topic_factor"] = focus.threshold, focus.off_topic_factor
+    fetched = [e for e in logged if e.get("outcome") == "fetched"]
+    if not fetched:
+        out["page"] = "not fetched (or not in the fetch logs given)"
+    elif "off_topic" in (fetched[-1].get("reason") or "").split(","):
+        out["page"] = (f"off topic: relevance below {out['threshold']:g}, its links' cash x "
+                       f"{out['off_topic_factor']:g}" + (" (not followed)"
+                                                         if out["off_topic_factor"] == 0 else ""))
+    else:
+        out["page"] = "on topic: its links' cash x its relevance"
+    return out
+
+
+def format_focus(info: dict[str, Any]) -> list[str]:
+    """Plain-text lines of :func:`explain_focus`."""
+    if not info["on"]:
+        return [f"focus:    {info['note']}"]
+    lines = [f"focus:    page {info['page']}",
+             f"          rule: links' cash x r if r >= {info['threshold']:g}, else x "
+             f"{info['off_topic_factor']:g}; {info['cash']}"]
+    model = info.get("model")
+    if model is None:
+        lines.append(f"          model not built here: {info.get('model_error')}")
+        return lines
+    if "bayes" in model:
+        top = ", ".join(w for w, _ in model["bayes"]["strongest_words"])
+        lines.append(f"          naive Bayes, {model['bayes']['vocabulary']} words; "
+                     f"strongest: {top}")
+    if "terms" in model:
+        terms = ", ".join(f"{t} ({v['weight']:g})" for t, v in model["terms"].items())
+        lines.append(f"          BM25 terms: {terms}")
+    return lines

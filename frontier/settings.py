@@ -342,12 +342,12 @@ class FocusSettings(_Part):
     @field_validator("terms")
     @classmethod
     def _words(cls, value: dict[str, float]) -> dict[str, float]:
-        from frontier.focus import WORD_RE
+        from frontier.focus import is_word
 
         out: dict[str, float] = {}
         for term, weight in value.items():
             word = term.strip().casefold()
-            if not WORD_RE.fullmatch(word):
+            if not is_word(word):
                 raise ValueError(f"term {term!r} is not one word of two or more letters "
                                  "(phrases, digits and punctuation are not matched)")
             if not (math.isfinite(weight) and weight > 0):
@@ -469,6 +469,9 @@ def load_settings(
             raise ConfigError(f"{config_file}: no such job file") from exc
         except tomllib.TOMLDecodeError as exc:
             raise ConfigError(f"{config_file}: not valid TOML: {exc}") from exc
+        except UnicodeDecodeError as exc:  # TOML v1.0.0: "a TOML file must be ... UTF-8"
+            raise ConfigError(f"{config_file}: not UTF-8 text at byte {exc.start} (a TOML "
+                              "file is UTF-8)") from exc
     try:
         env_only = JobSettings()  # reads SLUICE_ variables over defaults
         env_set = env_only.model_dump(exclude_unset=True)

@@ -26,6 +26,7 @@ from prometheus_client import CollectorRegistry
 from frontier.admission import Admission
 from frontier.budget import PageBudget
 from frontier.digests import Capture, PayloadDigestIndex
+from frontier.focus import build_focus
 from frontier.exceptions import (
     AddressRefused, DiskFault, FetchError, SluiceError, StoreError, StoreUnavailable)
 from frontier.metrics import WorkerMetrics
@@ -122,8 +123,8 @@ async def _set_within(event: asyncio.Event, seconds: float) -> bool:
 
 def join_reasons(*reasons: str | None) -> str | None:
     """Several reasons for one fetch-log line, comma-separated in the order given (the
-    worker's order: truncation, links_capped, exact_duplicate, near_duplicate); None if
-    there are none."""
+    worker's order: truncation, links_capped, off_topic, exact_duplicate, near_duplicate);
+    None if there are none."""
     kept = [r for r in reasons if r]
     return ",".join(kept) if kept else None
 
@@ -171,6 +172,7 @@ class Worker:
         self.near_dups = NearDuplicateIndex(store.redis, store.keys.near_dup,
                                             page_key=store.keys.near_dup_page)
         self.first_captures = PayloadDigestIndex(store.redis, store.keys.payload_digests)
+        self.focus = build_focus(self.settings)  # None without [focus] (docs/focus.md)
         self.mirrors = MirrorHosts(store)
         self._fetcher = Fetcher(self.settings.fetch, ua)
         self._robots = RobotsCache(
@@ -687,8 +689,13 @@ class Worker:
         candidates = distribute(lease.url, lease.cash, lease.depth, follow,
                                 self.settings.priority, known=done)
         linked = self._links_to_fetched(lease, follow) if done else []
+        off_topic = None
+        if self.focus is not None and first is None:  # soft focus (frontier/focus.py)
+            relevance = self.focus.relevance(f"{page.title} {page.text}")
+            candidates = self.focus.steer(candidates, relevance)
+            off_topic = None if self.focus.expands(relevance) else "off_topic"
         reason = join_reasons(p.reason, "links_capped" if page.links_capped else None,
-                              "exact_duplicate" if first is not None else None)
+                              off_topic, "exact_duplicate" if first is not None else None)
         if first is not None:
             self.metrics.exact_duplicates.inc()
         entry = self._entry(lease, Outcome.FETCHED, reason, p.resp, p.fetched_at,

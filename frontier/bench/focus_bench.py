@@ -103,15 +103,23 @@ class _FocusedCrawl(_Crawl):
 
 
 async def focused_crawl(web: SyntheticWeb, settings: JobSettings, limit: int, tmp: Path,
-                        timing: Timing = Timing()) -> tuple[CrawlResult, float, int]:
+                        timing: Timing = Timing(), redis_url: str | None = None,
+                        ) -> tuple[CrawlResult, float, int]:
     """``ordering_crawl.crawl`` with the job's focus: (result, CPU seconds spent on
-    relevance, pages scored)."""
+    relevance, pages scored). On a private redis-server living in ``tmp``, or on the
+    server at ``redis_url`` (flushed first)."""
     settings = settings.laid_out(cluster=False)
-    server = RedisProcess(tmp / "redis", appendonly=False, extra_config=redis_tuning(settings))
-    server.start()
-    client = connect(server.url)
+    server = None
+    if redis_url is None:
+        server = RedisProcess(tmp / "redis", appendonly=False,
+                              extra_config=redis_tuning(settings))
+        server.start()
+        redis_url = server.url
+    client = connect(redis_url)
     clock = Clock()
     try:
+        if server is None:
+            await client.flushall()
         store = FrontierStore(client, settings, clock=clock)
         admission = Admission(store, scope_from_settings(settings, web.seeds))
         job = Job(settings, store, admission, None)
@@ -125,7 +133,8 @@ async def focused_crawl(web: SyntheticWeb, settings: JobSettings, limit: int, tm
         return result, sim.cpu_s, sim.scored
     finally:
         await client.aclose()
-        server.stop()
+        if server is not None:
+            server.stop()
 
 
 def focus_settings(tw: TopicalWeb, folder: Path, kind: str) -> FocusSettings:
@@ -201,6 +210,8 @@ async def run_web(subject: str, seed: int, tmp: Path) -> tuple[dict[str, Any], d
             cpu[kind] = {"pages_scored": scored,
                          "us_per_page": round(cpu_s / scored * 1e6, 1)}
     orders["bfs"] = bfs[:limit]
+    model = build_focus(job_settings(focus_settings(tw, tmp / "focused", "focused")))
+    assert model is not None
     budgets = score(tw, orders, reachable)
     res = {
         "web": f"topical-{subject}", "subject": subject, "seed": seed,
@@ -208,7 +219,8 @@ async def run_web(subject: str, seed: int, tmp: Path) -> tuple[dict[str, Any], d
         "on_topic_pages": len(tw.on_topic()),
         "on_topic_share": round(len(tw.on_topic()) / reachable, 4),
         "seeds": tw.seeds, "fetched": {n: len(o) for n, o in orders.items()},
-        "harvest_rate": budgets, "relevance_cpu": cpu,
+        "harvest_rate": budgets, "relevance_cpu_in_crawl": cpu,
+        "relevance_cpu_per_page": cpu_figures(tw, model),
         "targets": targets(budgets),
         "seconds": round(time.perf_counter() - started, 1),
     }
@@ -217,6 +229,49 @@ async def run_web(subject: str, seed: int, tmp: Path) -> tuple[dict[str, Any], d
               for n, o in orders.items()}
     curves["x"] = [x / reachable for x in xs]
     return res, curves
+
+
+CPU_PAGES = 300
+CPU_BIG_REPEAT = 8  # a page's text repeated: about 10 KB of HTML
+
+
+def cpu_figures(tw: TopicalWeb, focus: Focus) -> dict[str, Any]:
+    """Per-page CPU of relevance against what the worker already spends on every page:
+    parsing the served HTML (``workers.parser.parse_html``) and its SimHash (median of
+    ``CPU_PAGES`` pages, as served and with the text repeated to about 10 KB)."""
+    from synthweb.server import render_page
+    from frontier.simhash import simhash64
+    from workers.parser import parse_html
+
+    out: dict[str, Any] = {}
+    pages = list(tw.web.pages.values())[:CPU_PAGES]
+    for name, repeat in (("served", 1), ("10kb", CPU_BIG_REPEAT)):
+        parse, sim, rel, size = [], [], [], []
+        for page in pages:
+            if repeat > 1:
+                page = Page(url=page.url, host=page.host, path=page.path, title=page.title,
+                            text=" ".join([page.text] * repeat), links=page.links)
+            body = render_page(page)
+            t0 = time.perf_counter()
+            parsed = parse_html(body, page.url)
+            t1 = time.perf_counter()
+            simhash64(parsed.text)
+            t2 = time.perf_counter()
+            focus.relevance(f"{parsed.title} {parsed.text}")
+            t3 = time.perf_counter()
+            parse.append(t1 - t0)
+            sim.append(t2 - t1)
+            rel.append(t3 - t2)
+            size.append(len(body))
+        base = statistics.median(parse) + statistics.median(sim)
+        out[name] = {
+            "html_bytes": round(statistics.median(size)),
+            "relevance_us": round(statistics.median(rel) * 1e6, 1),
+            "parse_us": round(statistics.median(parse) * 1e6, 1),
+            "simhash_us": round(statistics.median(sim) * 1e6, 1),
+            "relevance_over_parse_and_simhash": round(statistics.median(rel) / base, 3),
+        }
+    return out
 
 
 def medians(results: list[dict[str, Any]]) -> dict[str, Any]:
