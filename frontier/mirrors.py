@@ -3,11 +3,11 @@
 Bharat, Broder, Dean & Henzinger, "A comparison of techniques to find mirrored hosts on
 the WWW" (JASIS 51(12), 2000; first at the WWW 1999 workshop on web data mining) find
 mirrors offline, by comparing what two hosts serve. Here the same evidence is gathered
-online, from what the crawl fetches: each fetched page that is an exact copy (same payload
+online, from what the crawl fetches: a fetched page that is an exact copy (same payload
 digest) or a near copy (SimHash, confirmed by resemblance) of a page of *another* host
-counts against its host. Per politeness key, in the key's own partition (one Cluster
-slot per script call), a hash keeps the pages compared, the copies among them and the
-copies per other host; once a host has ``dedupe.mirror_min_pages`` pages and at least
+shares a page of each host with the other. Per politeness key, in the key's own
+partition (one Cluster slot per script call), a hash keeps the pages compared, those
+shared with other hosts (each once) and the shared pages per other host; once a host has ``dedupe.mirror_min_pages`` pages and at least
 ``dedupe.mirror_share`` of them are copies, it is a mirror of the host it copies most,
 and it may hold no more URLs than the new pages it has shown plus ``dedupe.mirror_slack``
 (``frontier/scripts/mirror.lua``; ``admit.lua`` excludes the rest as ``mirror_host``).
@@ -23,7 +23,7 @@ from typing import Any
 from frontier.exceptions import ConfigError
 from frontier.scripts import ScriptCall, run_many, script_source
 from frontier.store import FrontierStore, redis_boundary
-from frontier.urls import host_of, politeness_key
+from frontier.urls import fingerprint, host_of, politeness_key
 
 MIRROR_REASON = "mirror_host"
 MIRRORS_SHOWN = 100  # mirror hosts listed by status (the count covers them all)
@@ -33,9 +33,8 @@ MIRRORS_SHOWN = 100  # mirror hosts listed by status (the count covers them all)
 class HostCopies:
     """One batch's figures for one politeness key."""
 
-    pages: int = 0
-    dups: int = 0
-    of: dict[str, int] = field(default_factory=dict)  # other host -> copies of its pages
+    pages: int = 0  # its pages compared in this batch
+    shared: list[tuple[int, str]] = field(default_factory=list)  # (page mark, other key)
 
 
 def _text(value: Any) -> str:
@@ -63,25 +62,32 @@ class MirrorHosts:
         except ConfigError:
             return host
 
-    def tally(self, pages: Iterable[tuple[str, str | None]]) -> dict[str, HostCopies]:
-        """Per politeness key: ``pages`` are (the page's key, the URL it copies or None).
-        A copy of a page of the same key is no evidence of a mirror (it counts as a
-        page, not as a copy)."""
+    def tally(self, pages: Iterable[tuple[str, str, str | None]]) -> dict[str, HostCopies]:
+        """Per politeness key: ``pages`` are (the page's key, its URL, the URL of the
+        page of another host it copies, or None). A copy shares a page of each host with
+        the other (whichever was fetched first: hosts crawled side by side meet their
+        copies in either order); a copy of a page of the same key is no evidence of a
+        mirror. A page is marked by its URL's fingerprint (counted once per host)."""
         out: dict[str, HostCopies] = {}
-        for key, copied in pages:
-            row = out.get(key)
-            if row is None:
-                row = out[key] = HostCopies()
-            row.pages += 1
+
+        def row(key: str) -> HostCopies:
+            found = out.get(key)
+            if found is None:
+                found = out[key] = HostCopies()
+            return found
+
+        for key, url, copied in pages:
+            here = row(key)
+            here.pages += 1
             if copied is None:
                 continue
             other = self.key_of(copied)
             if other != key:
-                row.dups += 1
-                row.of[other] = row.of.get(other, 0) + 1
+                here.shared.append((fingerprint(url), other))
+                row(other).shared.append((fingerprint(copied), key))
         return out
 
-    async def record(self, pages: Iterable[tuple[str, str | None]],
+    async def record(self, pages: Iterable[tuple[str, str, str | None]],
                      now: int | None = None) -> set[str]:
         """Count a batch of compared pages (see :meth:`tally`): one script call per
         partition, all in one go. Returns the keys that are mirrors now."""
@@ -112,9 +118,9 @@ class MirrorHosts:
         for key in keys:
             row = rows[key]
             redis_keys += (pk.host(key), pk.copies(key), pk.hot(key), pk.cold(key))
-            args += (key, row.pages, row.dups, len(row.of))
-            for other, count in row.of.items():
-                args += (other, count)
+            args += (key, row.pages, len(row.shared))
+            for mark, other in row.shared:
+                args += (mark, other)
         return (self._script, redis_keys, args)
 
 

@@ -894,7 +894,8 @@ class Worker:
         if not fresh:
             return
         await self.mirrors.record([
-            (f.completion.lease.host, f.entry.duplicate_of or f.entry.near_duplicate_of)
+            (f.completion.lease.host, f.completion.lease.url,
+             f.entry.duplicate_of or f.entry.near_duplicate_of)
             for f in fresh if f.entry is not None])
         for f in fresh:
             f.copies_counted = True

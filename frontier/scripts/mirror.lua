@@ -1,5 +1,5 @@
--- mirror: count the copies among a partition's fetched pages and cut the budget of
--- mirror hosts (Bharat, Broder, Dean & Henzinger, "A comparison of techniques to find
+-- mirror: count the pages a partition's hosts share with other hosts and cut the budget
+-- of mirror hosts (Bharat, Broder, Dean & Henzinger, "A comparison of techniques to find
 -- mirrored hosts on the WWW", JASIS 2000: a host whose pages are mostly the pages of
 -- another host is its mirror).
 -- KEYS[1] counts  KEYS[2] reasons  KEYS[3] mirrors SET  KEYS[4] ended journal
@@ -7,14 +7,18 @@
 -- KEYS[9 ..] per host i (0-based): host hash, copies hash, hot ZSET, cold LIST (4 keys)
 -- ARGV[1] now (ms)  ARGV[2] hot capacity  ARGV[3] min pages (0: off)  ARGV[4] share
 -- ARGV[5] slack  ARGV[6] number of hosts
--- then per host: host, pages compared, copies of other hosts' pages, m,
---                m times (other host, copies of its pages)
--- A host's copies hash keeps 'pages', 'dups' and '>' .. other host -> copies. Once
--- pages >= min pages and dups >= share x pages, the host is a mirror of the other host
--- it copies most: its hash gets 'mirror' (that host) and 'mlim' = pages - dups + slack,
--- the URLs it may hold in all (admit.lua excludes more as 'mirror_host'), and its queue
--- is cut to what is left of that limit (the worst URLs go, excluded as 'mirror_host').
--- A host below the share again is a mirror no more.
+-- then per host: host, pages compared (new fetches), m, m times (page mark, other host):
+--                one of its pages found to be shared with a page of the other host
+-- A host's copies hash keeps 'pages', 'dups' (its pages shared with other hosts, each
+-- counted once: the field '#' .. page mark remembers it), and '>' .. other host -> its
+-- pages shared with that host. A page is shared whichever of the two was fetched first:
+-- hosts crawled side by side meet their copies in either order. Once pages >= min
+-- pages and dups >= share x pages, the host is a mirror of the other host it shares most
+-- with: its hash gets 'mirror' (that host) and 'mlim' = pages - dups + slack, the URLs it
+-- may hold in all (admit.lua excludes more as 'mirror_host'), and its queue is cut to
+-- what is left of that limit (the worst URLs go, excluded as 'mirror_host'). A host that
+-- had a seed is vouched for by the operator and is never cut. A host below the share
+-- again is a mirror no more.
 -- Returns per host: 1 if it is a mirror now, else 0; then the URLs cut from queues.
 local now, cap = tonumber(ARGV[1]), tonumber(ARGV[2])
 local min_pages, share, slack = tonumber(ARGV[3]), tonumber(ARGV[4]), tonumber(ARGV[5])
@@ -24,17 +28,21 @@ local out = {}
 local cut_total = 0
 local a = 7
 for i = 0, n - 1 do
-  local host, pages, dups, m = ARGV[a], tonumber(ARGV[a + 1]), tonumber(ARGV[a + 2]),
-                               tonumber(ARGV[a + 3])
-  a = a + 4
+  local host, pages, m = ARGV[a], tonumber(ARGV[a + 1]), tonumber(ARGV[a + 2])
+  a = a + 3
   local hk, ck, hot, cold = KEYS[9 + 4 * i], KEYS[10 + 4 * i], KEYS[11 + 4 * i], KEYS[12 + 4 * i]
   local p = redis.call('HINCRBY', ck, 'pages', pages)
-  local d = redis.call('HINCRBY', ck, 'dups', dups)
+  local added = 0
   for j = a, a + 2 * (m - 1), 2 do
-    redis.call('HINCRBY', ck, '>' .. ARGV[j], ARGV[j + 1])
+    if redis.call('HSETNX', ck, '#' .. ARGV[j], ARGV[j + 1]) == 1 then
+      redis.call('HINCRBY', ck, '>' .. ARGV[j + 1], 1)
+      added = added + 1
+    end
   end
   a = a + 2 * m
+  local d = redis.call('HINCRBY', ck, 'dups', added)
   local mirror = min_pages > 0 and p >= min_pages and d >= share * p
+      and redis.call('HEXISTS', hk, 'seeded') == 0
   if mirror then
     local best, most = nil, 0
     local all = redis.call('HGETALL', ck)
