@@ -295,27 +295,6 @@ class SitemapSettings(_Part):
         return value
 
 
-class SitemapSettings(_Part):
-    """Sitemaps (sitemaps.org protocol 0.9; docs/sitemaps.md): read from robots.txt
-    ``Sitemap:`` lines and from ``urls``; their URLs admitted with a priority of their own."""
-
-    enabled: bool = Field(default=True, description="read robots.txt Sitemap: lines")
-    urls: tuple[str, ...] = Field(default=(), description="sitemaps the operator names")
-    max_index_depth: int = Field(
-        default=2, ge=0, le=8, description="index files below a named sitemap followed "
-        "(0: none); common practice, no source")
-    # sitemaps.org protocol 0.9: a file holds at most 50,000 URLs and 50 MB uncompressed
-    max_bytes: int = Field(default=50 * 1024 * 1024, ge=1024, le=50 * 1024 * 1024)
-    max_urls: int = Field(default=50_000, ge=1, le=50_000)
-    max_per_host: int = Field(
-        default=100, ge=1, description="sitemaps admitted per host; common practice, no source")
-    robots_cash: float = Field(
-        default=0.1, gt=0, description="cash of a sitemap named in robots.txt")
-    url_cash: float = Field(
-        default=0.001, ge=0, description="cash each listed URL gets on top of its share "
-        "(docs/priority.md, Sitemaps)")
-
-
 class OutputSettings(_Part):
     warc_max_bytes: int = Field(default=1_000_000_000, ge=1_000_000)
     warc_prefix: str = "sluice"
