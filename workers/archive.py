@@ -129,6 +129,9 @@ RESPONSE_CONTENT_TYPE = "application/http; msgtype=response"
 DIGEST_ALGORITHM = "sha1"
 REVISIT_PROFILE = "http://netpreserve.org/warc/1.1/revisit/identical-payload-digest"
 """ISO 28500:2017 s.6.7.2: the WARC 1.1 identical-payload-digest profile."""
+NOT_MODIFIED_PROFILE = "http://netpreserve.org/warc/1.1/revisit/server-not-modified"
+"""ISO 28500:2017 s.6.7.3 (from memory): the server-not-modified profile, for a 304
+answer to a conditional GET; no payload digest (there is no payload)."""
 
 _CRLF = "\r\n"
 _RECORD_END = b"\r\n\r\n"
@@ -674,6 +677,7 @@ class WarcArchive:
         record_id: str | None = None,
         payload_digest: str | None = None,
         revisit_of: Capture | None = None,
+        revisit_profile: str = REVISIT_PROFILE,
     ) -> RecordRef:
         """Write request, response (or revisit) and (with outlinks) metadata records.
 
@@ -715,8 +719,9 @@ class WarcArchive:
             response = _gzip_record(
                 "revisit", response_id, date, target,
                 f"{ip_field}WARC-Concurrent-To: {request_id}{_CRLF}"
-                f"{_revisit_fields(revisit_of)}", RESPONSE_CONTENT_TYPE,
-                (http_head,), payload_digest or _digest(body),
+                f"{_revisit_fields(revisit_of, revisit_profile)}", RESPONSE_CONTENT_TYPE,
+                (http_head,), None if revisit_profile == NOT_MODIFIED_PROFILE
+                else payload_digest or _digest(body),
             )
         else:
             response = _gzip_record(
@@ -896,11 +901,12 @@ def links_document(target: str, outlinks: Sequence[OutLink]) -> bytes:
         return orjson.dumps(document)
 
 
-def _revisit_fields(first: Capture) -> str:
-    """The identical-payload-digest revisit's named fields (ISO 28500 s.6.7.2, s.5.11,
-    and WARC 1.1's WARC-Refers-To-Target-URI and WARC-Refers-To-Date)."""
-    return (f"WARC-Profile: {REVISIT_PROFILE}{_CRLF}"
-            f"WARC-Refers-To: {first.record_id}{_CRLF}"
+def _revisit_fields(first: Capture, profile: str = REVISIT_PROFILE) -> str:
+    """A revisit's named fields (ISO 28500 s.6.7.2, s.5.11, and WARC 1.1's
+    WARC-Refers-To-Target-URI and WARC-Refers-To-Date); WARC-Refers-To only when the
+    earlier record's ID is known."""
+    refers = f"WARC-Refers-To: {first.record_id}{_CRLF}" if first.record_id else ""
+    return (f"WARC-Profile: {profile}{_CRLF}{refers}"
             f"WARC-Refers-To-Target-URI: {_uri(first.url)}{_CRLF}"
             f"WARC-Refers-To-Date: {first.date}{_CRLF}")
 

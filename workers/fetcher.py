@@ -115,15 +115,17 @@ class Fetcher:
             self._session = None
 
     async def get(self, url: str, *, max_body: int | None = None,
-                  max_decoded: int | None = None) -> Response:
+                  max_decoded: int | None = None,
+                  headers: dict[str, str] | None = None) -> Response:
         """GET ``url`` without following redirects. Raises FetchError or AddressRefused.
-        ``max_body``/``max_decoded`` replace the job's caps (a sitemap's are its own)."""
+        ``max_body``/``max_decoded`` replace the job's caps (a sitemap's are its own);
+        ``headers`` are added to the request (a conditional GET's validators)."""
         assert self._session is not None, "use 'async with Fetcher(...)'"
         s = self.settings
         limit = max_body or s.max_body_bytes
         started = time.monotonic()
         try:
-            async with self._session.get(url, allow_redirects=False) as resp:
+            async with self._session.get(url, allow_redirects=False, headers=headers) as resp:
                 header_bytes = sum(len(k) + len(v) + 4 for k, v in resp.raw_headers)
                 if header_bytes > s.max_header_bytes:
                     raise FetchError("headers_too_large", f"{header_bytes} bytes of headers")

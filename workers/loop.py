@@ -38,10 +38,12 @@ from frontier.settings import JobSettings
 from frontier.simhash import NearDuplicateIndex, hamming, simhash64
 from frontier.sitemaps import SitemapReader, sitemap_url, split_sitemap
 from frontier.store import FrontierStore, redis_boundary
+from frontier.revisit_fetch import WorkerRevisits
 from frontier.urls import canonicalize
 from frontier.worker_report import WorkerReport
 from workers.archive import (
     FetchEntry, FetchLog, OutLink, WarcArchive, new_record_id, payload_digest, warc_date)
+from workers.archive import NOT_MODIFIED_PROFILE
 from workers.fetcher import Fetcher, Response
 from workers.offload import PagePool
 from workers.parser import ParsedPage, looks_binary, parse_html
@@ -172,6 +174,9 @@ class Worker:
         self.near_dups = NearDuplicateIndex(store.redis, store.keys.near_dup,
                                             page_key=store.keys.near_dup_page)
         self.first_captures = PayloadDigestIndex(store.redis, store.keys.payload_digests)
+        # revisits (frontier/revisit_fetch.py): conditional GETs, records, due pages
+        self.revisits = (WorkerRevisits(store, self.first_captures)
+                         if self.settings.revisit.enabled else None)
         self.focus = build_focus(self.settings)  # None without [focus] (docs/focus.md)
         self.mirrors = MirrorHosts(store)
         self._fetcher = Fetcher(self.settings.fetch, ua)
@@ -418,8 +423,12 @@ class Worker:
         granted = await self.budget.reserve(wanted)
         if granted <= 0:
             return []
+        if self.revisits is not None:
+            await self.revisits.release_due()
         leases = await self.store.lease(granted)
         await self.budget.release(granted - len(leases))
+        if self.revisits is not None and leases:
+            await self.revisits.leased(leases)
         return leases
 
     async def _frontier_done(self) -> bool:
@@ -427,6 +436,8 @@ class Worker:
             counts = await self.store.counts()
         except StoreUnavailable:
             return False
+        if self.revisits is not None:  # continuous: done once the page budget is spent
+            return counts.leased == 0 and await self.budget.spent(counts.fetched)
         if counts.leased == 0 and (counts.queued == 0 or await self.budget.spent(counts.fetched)):
             return True
         return False
@@ -496,7 +507,8 @@ class Worker:
                 cap = self.settings.sitemaps.max_bytes
                 resp = await self._fetcher.get(target, max_body=cap, max_decoded=cap)
             else:
-                resp = await self._fetcher.get(lease.url)
+                resp = await self._fetcher.get(
+                    lease.url, headers=self.revisits.headers(lease) if self.revisits else None)
         except AddressRefused as exc:
             c = Completion(lease, Outcome.EXCLUDED, f"address_{exc.reason}")
             return Finished(c), self._entry(lease, Outcome.EXCLUDED, c.reason)
@@ -517,6 +529,8 @@ class Worker:
             c = Completion(lease, Outcome.RETRY, f"http_{resp.status}", response_s=resp.elapsed_s,
                            extra_delay_s=min(wait, pol.max_delay_s), crawl_delay_s=crawl_delay)
             return Finished(c), self._entry(lease, Outcome.RETRY, c.reason, resp)
+        if resp.status == 304 and self.revisits is not None and self.revisits.state(lease):
+            return await self._not_modified(lease, resp, base)
         if 300 <= resp.status < 400:
             return await self._redirect(lease, resp, base)
         if resp.status >= 400:
@@ -548,6 +562,22 @@ class Worker:
             self.metrics.count_admitted(await self.admission.admit(kept))
         except StoreError as exc:
             log.warning("could not admit %d sitemaps: %s", len(candidates), exc)
+
+    async def _not_modified(self, lease: Lease, resp: Response,
+                            base: Completion) -> tuple[Finished, FetchEntry]:
+        """A 304 answer to a conditional GET: archived as a revisit record with the
+        server-not-modified profile, referring to the page's last full capture."""
+        assert self.revisits is not None and self.archive is not None
+        at = datetime.now(UTC)
+        path = "/" + lease.url.split("/", 3)[3] if lease.url.count("/") >= 3 else "/"
+        ref = self.archive.write_exchange(
+            lease.url, ("GET", path, resp.request_headers), resp.status, resp.reason,
+            resp.headers, b"", at, remote_ip=resp.remote_ip,
+            revisit_of=await self.revisits.earlier_capture(lease),
+            revisit_profile=NOT_MODIFIED_PROFILE)
+        self.revisits.observe(lease, resp.header, None, not_modified=True)
+        return Finished(base), self._entry(lease, Outcome.FETCHED, "not_modified", resp, at,
+                                           warc_file=ref.file, warc_offset=ref.offset)
 
     async def _redirect(self, lease: Lease, resp: Response,
                         base: Completion) -> tuple[Finished, FetchEntry]:
@@ -643,6 +673,16 @@ class Worker:
         for i in checked:
             p = pages[i]
             p.digest, p.record_id = payload_digest(p.resp.body), new_record_id()
+        if self.revisits is not None:  # unchanged since its last capture: refer to that
+            for i in [i for i in checked if self.revisits.unchanged(pages[i].lease,
+                                                                     pages[i].digest)]:
+                checked.remove(i)
+                try:
+                    out[i] = await self.first_captures.first(pages[i].digest or "")
+                except StoreError:
+                    self.metrics.store_errors.inc()
+            if not checked:
+                return out
         try:
             firsts = await self.first_captures.claim(
                 [pages[i].digest or "" for i in checked],
@@ -701,6 +741,8 @@ class Worker:
         entry = self._entry(lease, Outcome.FETCHED, reason, p.resp, p.fetched_at,
                             simhash=fingerprint, duplicate_of=first.url if first else None,
                             **ref)
+        if self.revisits is not None:
+            self.revisits.observe(lease, p.resp.header, p.digest)
         # an exact copy is not compared by SimHash: its near-duplicate is its own original
         return Finished(p.base, candidates, linked,
                         simhash=fingerprint if first is None else None), entry
@@ -816,7 +858,10 @@ class Worker:
                 if self._fault is not None:  # the log took no lines: complete nothing, the
                     self._finished = batch + self._finished  # leases are handed back
                     return
-                statuses = await self.store.complete_many([f.completion for f in batch])
+                statuses = await self.store.complete_many(
+                    [f.completion for f in batch],
+                    also=self.revisits.record_calls([f.completion for f in batch])
+                    if self.revisits else ())
             except StoreUnavailable as exc:
                 self.metrics.store_errors.inc()
                 log.warning("frontier unavailable, will retry %d completions: %s", len(batch), exc)
@@ -839,6 +884,8 @@ class Worker:
             if await self._log_ended():
                 self._log_flush()
             await self.budget.release(released)
+            if self.revisits is not None:
+                await self.revisits.settle([f.completion for f in batch])
             await self._finish_pages()  # pages fetched while this batch was written back
 
     async def _log_ended(self, *, force: bool = False) -> bool:
