@@ -232,20 +232,20 @@ async def run_web(subject: str, seed: int, tmp: Path) -> tuple[dict[str, Any], d
 
 
 CPU_PAGES = 300
-CPU_BIG_REPEAT = 8  # a page's text repeated: about 10 KB of HTML
+CPU_BIG_REPEAT = 8  # a page's text repeated 8 times: about 5.6 KB of HTML
 
 
 def cpu_figures(tw: TopicalWeb, focus: Focus) -> dict[str, Any]:
     """Per-page CPU of relevance against what the worker already spends on every page:
     parsing the served HTML (``workers.parser.parse_html``) and its SimHash (median of
-    ``CPU_PAGES`` pages, as served and with the text repeated to about 10 KB)."""
+    ``CPU_PAGES`` pages, as served and with the text repeated 8 times)."""
     from synthweb.server import render_page
     from frontier.simhash import simhash64
     from workers.parser import parse_html
 
     out: dict[str, Any] = {}
     pages = list(tw.web.pages.values())[:CPU_PAGES]
-    for name, repeat in (("served", 1), ("10kb", CPU_BIG_REPEAT)):
+    for name, repeat in (("served", 1), ("text_x8", CPU_BIG_REPEAT)):
         parse, sim, rel, size = [], [], [], []
         for page in pages:
             if repeat > 1:
@@ -290,19 +290,26 @@ def plot(panels: dict[str, dict[str, list[float]]], path: Path) -> None:
     matplotlib.use("Agg")
     import matplotlib.pyplot as plt
 
-    fig, axes = plt.subplots(1, len(panels), figsize=(6 * len(panels), 4.2), squeeze=False)
+    rows = sorted({name.split(" ")[0] for name in panels})
+    cols = max(sum(1 for n in panels if n.split(" ")[0] == r) for r in rows)
+    fig, axes = plt.subplots(len(rows), cols, figsize=(4.6 * cols, 3.6 * len(rows)),
+                             squeeze=False)
     styles = {"focused": "-", "focused_terms": "--", "link_importance": "-.", "bfs": ":"}
-    for ax, (name, curves) in zip(axes[0], panels.items()):
+    places = []
+    for r, row in enumerate(rows):
+        places += [axes[r][c] for c, n in enumerate(n for n in panels if n.split(" ")[0] == row)]
+    ordered = [n for row in rows for n in panels if n.split(" ")[0] == row]
+    for ax, name in zip(places, ordered):
+        curves = panels[name]
         for n in ORDERS:
             ax.plot([x * 100 for x in curves["x"]], curves[n], styles[n], label=n)
         ax.axvline(TARGET_BUDGET * 100, color="grey", linewidth=0.5)
         ax.set_title(name)
-        ax.set_xlabel("budget: % of reachable pages fetched")
-        ax.set_ylabel("harvest rate (share on topic)")
+        ax.set_xlabel("budget: % of reachable pages fetched", fontsize=8)
+        ax.set_ylabel("harvest rate (share on topic)", fontsize=8)
         ax.set_ylim(0, 1.05)
         ax.legend(fontsize=8)
-    fig.suptitle("sluice bench focus: harvest rate over the first half of the crawl "
-                 "(first seed of each web)")
+    fig.suptitle("sluice bench focus: harvest rate over the first half of the crawl")
     fig.tight_layout()
     path.parent.mkdir(parents=True, exist_ok=True)
     fig.savefig(path, dpi=110)
@@ -322,7 +329,7 @@ def main(webs: Iterable[tuple[str, Sequence[int]]] = WEBS, plot_path: Path | Non
                 print(json.dumps(res), flush=True)
                 _table(res)
                 results.append(res)
-                panels.setdefault(f"topical-{subject} (seed {seed})", curves)
+                panels[f"topical-{subject} (seed {seed})"] = curves
             med = medians(results)
             print(json.dumps(med), flush=True)
             ok = ok and med["targets"]["pass"]
