@@ -316,6 +316,7 @@ def cmd_host(a: argparse.Namespace) -> int:
 def cmd_status(a: argparse.Namespace) -> int:
     from frontier.job import open_job
     from frontier.mirrors import read_mirrors
+    from frontier.revisit_store import read_revisits
 
     api = _admin_api(a)
     if api is not None:
@@ -333,6 +334,7 @@ def cmd_status(a: argparse.Namespace) -> int:
             data = counts.as_dict()
             data["balanced"] = counts.balanced
             data["mirrors"] = await read_mirrors(job.store)  # hosts that copy other hosts
+            data["revisits"] = await read_revisits(job.store)  # pages due, fresh; None: off
             print(json.dumps(data, indent=2))
 
     run_loop(run())

@@ -244,6 +244,13 @@ class FrontierMetrics:
         self.mirror_cut = out.add(Gauge(
             "sluice_mirror_excluded_urls", "URLs excluded because their host is a mirror "
             "(reason mirror_host)", registry=None))
+        self.revisit_pages = out.add(Gauge(
+            "sluice_revisit_pages", "Pages kept fresh by revisits: tracked, due (their time "
+            "has come) and fresh (estimated unchanged since their last fetch)", ["state"],
+            registry=None))
+        self.revisit_freshness = out.add(Gauge(
+            "sluice_revisit_freshness", "Estimated freshness of the revisited collection "
+            "(0..1, from each sampled page's estimated change rate)", registry=None))
         self.controlled = out.add(Gauge(
             "sluice_hosts_controlled",
             "Hosts under operator control, by control (paused, blocked, boosted, delayed); "
@@ -277,6 +284,14 @@ class FrontierMetrics:
         """Mirror hosts found, and the URLs excluded for it."""
         self.mirrors.set(hosts)
         self.mirror_cut.set(excluded)
+
+    def update_revisits(self, figures: dict[str, Any]) -> None:
+        """Revisit figures (frontier/revisit_store.py read_revisits)."""
+        for state in ("tracked", "due", "fresh"):
+            if figures.get(state) is not None:
+                self.revisit_pages.labels(state=state).set(figures[state])
+        if figures.get("freshness") is not None:
+            self.revisit_freshness.set(figures["freshness"])
 
     def update_board(self, workers: int, hosts_known: int, controlled: dict[str, int]) -> None:
         """Figures the status board read: live workers, known hosts, hosts under control."""

@@ -205,3 +205,11 @@ class RevisitStore:
                                                                samples=0) or 0)
         return total
 
+
+
+async def read_revisits(store: FrontierStore) -> dict[str, Any] | None:
+    """The revisit figures of a job for ``sluice status``, the status page and the
+    metrics; None when the job does not revisit."""
+    if not store.settings.revisit.enabled:
+        return None
+    return (await RevisitStore(store).figures()).as_dict()

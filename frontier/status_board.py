@@ -21,6 +21,7 @@ from frontier.host_table import HostTable, read_hosts
 from frontier.job import Job
 from frontier.metrics import FrontierMetrics
 from frontier.mirrors import MIRROR_REASON, read_mirrors
+from frontier.revisit_store import read_revisits
 from frontier.worker_report import read_robots, read_workers
 
 RATE_SAMPLES = 180  # six minutes of samples at the daemon's 2 s
@@ -122,6 +123,9 @@ class StatusBoard:
         self.metrics.update_board(len(workers), table.known, table.control_counts)
         mirrors = await read_mirrors(self.job.store, shown=0)
         self.metrics.update_mirrors(mirrors["count"], reasons.get(f"excluded:{MIRROR_REASON}", 0))
+        revisits = await read_revisits(self.job.store)
+        if revisits is not None:
+            self.metrics.update_revisits(revisits)
 
     async def snapshot(self) -> dict[str, Any]:
         """Everything the status page shows, as JSON-ready values (text unescaped: the
@@ -150,6 +154,7 @@ class StatusBoard:
                                        if self._hosts_at is not None else None)
         data["errors"] = self.errors(counts.reasons)
         data["mirrors"] = await read_mirrors(store)
+        data["revisits"] = await read_revisits(store)  # pages due, fresh; None: no revisits
         robots = await read_robots(self.job.redis, store.keys, ROBOTS_FAILURES_SHOWN)
         data["robots"] = robots
         return data

@@ -140,3 +140,33 @@ def test_state_written_by_the_script_reads_back() -> None:
     assert (s.visits, s.changes, s.digest, s.etag, s.last_modified) == (3, 1, "ABC", '"x"', 99)
     assert s.encode() == raw
     assert s.rate == pytest.approx(change_rate(2, 1, 100.0))
+
+
+async def test_status_figures_and_metrics(make_store: StoreFactory, clock: Clock) -> None:
+    """One page seen changed on its only revisit an hour later: the TOIT 2003 estimate is
+    ln(1.5 / 0.5) / 3600 s, so half an hour after that visit the page is unchanged with
+    probability e^(-ln 3 / 2) = 1 / sqrt(3) = 0.5774; that is the collection's estimated
+    freshness, and the metrics carry it."""
+    from prometheus_client import CollectorRegistry, generate_latest
+
+    from frontier.metrics import FrontierMetrics
+    from frontier.revisit_store import read_revisits
+
+    store = make_store(**SETTINGS)
+    rv = RevisitStore(store)
+    await rv.record([Observation("d.test", "http://d.test/a", 4096, False, "sha1:P")])
+    clock.advance(3600)
+    await rv.record([Observation("d.test", "http://d.test/a", 4096, False, "sha1:Q")])
+    clock.advance(1800)
+    figures = await read_revisits(store)
+    assert figures is not None
+    assert figures["freshness"] == pytest.approx(3 ** -0.5, abs=1e-3)
+    assert (figures["tracked"], figures["fresh"], figures["due"]) == (1, 1, 0)
+    registry = CollectorRegistry()
+    metrics = FrontierMetrics(registry, "t")
+    metrics.update_revisits(figures)
+    text = generate_latest(registry).decode()
+    assert 'sluice_revisit_pages{job="t",state="tracked"} 1.0' in text
+    assert 'sluice_revisit_freshness{job="t"} 0.577' in text
+    off = make_store(name="t2")
+    assert await read_revisits(off) is None
