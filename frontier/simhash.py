@@ -45,6 +45,11 @@ from redis.exceptions import TimeoutError as RedisTimeoutError
 
 from frontier.exceptions import StoreError, StoreUnavailable
 
+try:  # optional: counts the bit planes and sorts the sketch in compiled code (same results)
+    import numpy as _np
+except ImportError:  # pragma: no cover - the pure-Python path below is used
+    _np = None
+
 FP_BITS = 64
 FP_MASK = (1 << FP_BITS) - 1
 SIGN_BIT = 1 << (FP_BITS - 1)
@@ -119,8 +124,27 @@ def resemblance(a: bytes, b: bytes, size: int = SKETCH_SIZE) -> float:
 def _sketch(packed: bytes, count: int = SKETCH_SIZE) -> bytes:
     """MIN_s of the shingle hashes in ``packed``: 32 bits of each 128-bit hash's high half
     (bytes 8..12, independent of the low 64 bits SimHash uses), smallest first."""
+    if _np is not None:
+        return _np_sketch(packed, count)
     values = memoryview(packed).cast("I")[2::4]
     return array("I", heapq.nsmallest(count, set(values))).tobytes()
+
+
+def _np_sketch(packed: bytes, count: int = SKETCH_SIZE) -> bytes:
+    """:func:`_sketch` with numpy: sort, drop repeats, keep the first ``count``."""
+    ordered = _np.sort(_np.frombuffer(packed, dtype=_np.uint32)[2::4])
+    if len(ordered) > 1:
+        ordered = ordered[_np.concatenate(([True], ordered[1:] != ordered[:-1]))]
+    return ordered[:count].astype("=u4").tobytes()
+
+
+def _np_bits(packed: bytes, total: int) -> int:
+    """The SimHash bits from the packed 128-bit hashes with numpy: bit i is set when more
+    than half of the hashes have bit i of their low 64 bits set."""
+    low = _np.frombuffer(packed, dtype=_np.uint8).reshape(total, _HASH_BYTES)[:, :_BYTES]
+    ones = _np.unpackbits(low, axis=1, bitorder="little").sum(axis=0, dtype=_np.int64)
+    return int.from_bytes(_np.packbits(2 * ones > total, bitorder="little").tobytes(),
+                          "little")
 
 
 TableKey = Callable[[int, int], str]
@@ -166,6 +190,8 @@ def simhash64(text: str, *, shingle_words: int = SHINGLE_WORDS) -> Fingerprint:
     # are the unsigned 64-bit value mmh3.hash64 returns first.
     packed = b"".join(map(_hash128, features))
     total = len(features)
+    if _np is not None:
+        return Fingerprint(_np_bits(packed, total), _np_sketch(packed))
     masks = _bit_masks(total)
     fingerprint = 0
     bit = 1  # fingerprint bits in order: byte 0 bit 0, byte 0 bit 1, ...

@@ -21,6 +21,7 @@ from typing import Any
 import mmh3
 
 from frontier.bench.frontier_bench import client_limit, redis_cpu_s
+from frontier import simhash
 from frontier.embedded import EmbeddedRedis
 from frontier.keys import Keys
 from frontier.redis_client import connect
@@ -68,11 +69,22 @@ def fingerprint_figures(pages: list[str]) -> dict[str, Any]:
     encoded = [p.encode() for p in pages]
     shingled = [_ascii_shingles(p, SHINGLE_WORDS) for p in pages]
     rate(simhash64, pages[:200])  # warm caches (bit masks, allocator)
+    fast = rate(simhash64, pages)
+    floor = rate(lambda p: b"".join(map(mmh3.hash_bytes, _ascii_shingles(p, SHINGLE_WORDS))),
+                 pages)
+    numpy, simhash._np = simhash._np, None  # the pure-Python path, for comparison
+    try:
+        pure = rate(simhash64, pages)
+    finally:
+        simhash._np = numpy
     return {
         "page_bytes": PAGE_BYTES,
         "pages": len(pages),
         "shingles_per_page": round(sum(map(len, shingled)) / len(shingled)),
-        "simhash64_pages_per_s": round(rate(simhash64, pages)),
+        "numpy": None if numpy is None else numpy.__version__,
+        "simhash64_pages_per_s": round(fast),
+        "simhash64_pure_python_pages_per_s": round(pure),
+        "ratio_to_split_shingle_hash_limit": round(fast / floor, 3),
         "limit_mmh3_page_bytes_pages_per_s": round(rate(mmh3.hash_bytes, encoded)),
         "limit_mmh3_each_shingle_pages_per_s": round(
             rate(lambda s: b"".join(map(mmh3.hash_bytes, s)), shingled)),
@@ -80,9 +92,7 @@ def fingerprint_figures(pages: list[str]) -> dict[str, Any]:
             rate(lambda p: _ascii_shingles(p, SHINGLE_WORDS), pages)),
         # the floor of SimHash over word shingles in this process: split, shingle, hash
         # each shingle; counting the bits and the sketch come on top
-        "limit_split_shingle_hash_pages_per_s": round(rate(
-            lambda p: b"".join(map(mmh3.hash_bytes, _ascii_shingles(p, SHINGLE_WORDS))),
-            pages)),
+        "limit_split_shingle_hash_pages_per_s": round(floor),
         "sketch_pages_per_s": round(rate(_sketch, [
             b"".join(map(mmh3.hash_bytes, s)) for s in shingled])),
     }
