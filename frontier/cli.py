@@ -397,7 +397,7 @@ def cmd_seeds(a: argparse.Namespace) -> int:
 def cmd_demo(a: argparse.Namespace) -> int:
     from frontier.demo import run_demo
     return run_demo(Path(a.out), hosts=a.hosts, pages=a.pages, max_pages=a.max_pages,
-                    quiet=a.quiet)
+                    quiet=a.quiet, sitemaps=a.sitemaps, sitemap_urls=tuple(a.sitemap))
 
 
 def cmd_bench(a: argparse.Namespace) -> int:
@@ -501,6 +501,10 @@ def parser() -> argparse.ArgumentParser:
     m.add_argument("--pages", type=int, default=3000, help="pages over those sites")
     m.add_argument("--max-pages", type=int, default=2000, help="the crawl's page budget")
     m.add_argument("--quiet", action="store_true", help="no live progress")
+    m.add_argument("--sitemaps", action="store_true",
+                   help="give some sites sitemaps (pages no link reaches, a hostile one)")
+    m.add_argument("--sitemap", action="append", default=[], metavar="URL",
+                   help="a sitemap to read (repeatable)")
     m.set_defaults(func=cmd_demo)
 
     b = sub.add_parser("bench", help="benchmarks that print JSON")

@@ -15,12 +15,16 @@ DEMO_SLOW_DELAY_S = 0.2
 DEMO_DRIP_S = 3.0  # the slow-drip page stops after this long
 
 
-async def _demo(out: Path, hosts: int, pages: int, max_pages: int, quiet: bool) -> dict[str, Any]:
+async def _demo(out: Path, hosts: int, pages: int, max_pages: int, quiet: bool,
+                sitemaps: bool = False, sitemap_urls: tuple[str, ...] = ()) -> dict[str, Any]:
     from frontier.runner import crawl as run_crawl
     from synthweb.graph import SyntheticWeb, WebSpec
     from synthweb.server import SyntheticServer
 
     web = SyntheticWeb.generate(WebSpec(seed=42, hosts=hosts, pages=pages))
+    if sitemaps:  # the sitemap variant (synthweb/sitemaps.py); off: the web is unchanged
+        from synthweb.sitemaps import add_sitemaps
+        sitemap_urls += (add_sitemaps(web).operator_sitemap,)
     server = SyntheticServer(web, slow_delay=DEMO_SLOW_DELAY_S, drip_duration=DEMO_DRIP_S)
     port = await server.start("127.0.0.1", 0)
     try:
@@ -29,6 +33,7 @@ async def _demo(out: Path, hosts: int, pages: int, max_pages: int, quiet: bool) 
         settings = load_settings(None, {
             "name": "demo",
             "seeds": list(web.seeds),
+            "sitemaps": {"urls": list(sitemap_urls)},
             "state_dir": str(out / "state"),
             "scope": {"allow_hosts": ["*.test"]},
             "budget": {"max_pages": max_pages, "max_pages_per_host": 200},
@@ -46,8 +51,9 @@ async def _demo(out: Path, hosts: int, pages: int, max_pages: int, quiet: bool) 
         await server.stop()
 
 
-def run_demo(out: Path, *, hosts: int, pages: int, max_pages: int, quiet: bool = False) -> int:
-    summary = run_loop(_demo(out, hosts, pages, max_pages, quiet))
+def run_demo(out: Path, *, hosts: int, pages: int, max_pages: int, quiet: bool = False,
+             sitemaps: bool = False, sitemap_urls: tuple[str, ...] = ()) -> int:
+    summary = run_loop(_demo(out, hosts, pages, max_pages, quiet, sitemaps, sitemap_urls))
     print(json.dumps(summary, indent=2))
     warcs = sorted((out / "warc").glob("*.warc.gz"))
     print(f"\nWARC files: {len(warcs)} under {out / 'warc'}")
