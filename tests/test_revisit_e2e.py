@@ -139,3 +139,7 @@ async def test_conditional_gets_and_revisit_records(tmp_path: Path,
     lines = [json.loads(x) for x in (tmp_path / "fetches.jsonl").read_text().splitlines()]
     assert Counter(x["outcome"] for x in lines)["fetched"] == FETCHES
     assert sum(1 for x in lines if x["reason"] == "not_modified") == len(steady_recs) - 1
+    odd_lines = [x for x in lines if x["url"] == f"http://{HOST}/story/odd.html"]
+    assert "exact_duplicate" not in (odd_lines[0]["reason"] or "")
+    assert all("exact_duplicate" in (x["reason"] or "") and x["duplicate_of"] == x["url"]
+               for x in odd_lines[1:])
