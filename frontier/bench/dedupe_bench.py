@@ -12,6 +12,7 @@ from __future__ import annotations
 import asyncio
 import json
 import random
+import statistics
 import sys
 import tempfile
 import time
@@ -36,6 +37,8 @@ from frontier.simhash import (
 
 PAGE_BYTES = 8192
 BATCH = 64
+ROUNDS = 3
+"""Alternating passes of SimHash (numpy), the floor and SimHash (pure Python); medians."""
 """Pages per match_pages call (a worker's write-back batch is of this order)."""
 
 
@@ -69,17 +72,23 @@ def fingerprint_figures(pages: list[str]) -> dict[str, Any]:
     encoded = [p.encode() for p in pages]
     shingled = [_ascii_shingles(p, SHINGLE_WORDS) for p in pages]
     rate(simhash64, pages[:200])  # warm caches (bit masks, allocator)
-    fast = rate(simhash64, pages)
-    floor = rate(lambda p: b"".join(map(mmh3.hash_bytes, _ascii_shingles(p, SHINGLE_WORDS))),
-                 pages)
-    numpy, simhash._np = simhash._np, None  # the pure-Python path, for comparison
-    try:
-        pure = rate(simhash64, pages)
+    numpy = simhash._np
+    runs: dict[str, list[float]] = {"fast": [], "floor": [], "pure": []}
+    try:  # alternated, medians of ROUNDS: a shared machine's load moves between passes
+        for _ in range(ROUNDS):
+            simhash._np = numpy
+            runs["fast"].append(rate(simhash64, pages))
+            runs["floor"].append(rate(lambda p: b"".join(
+                map(mmh3.hash_bytes, _ascii_shingles(p, SHINGLE_WORDS))), pages))
+            simhash._np = None  # the pure-Python path, for comparison
+            runs["pure"].append(rate(simhash64, pages))
     finally:
         simhash._np = numpy
+    fast, floor, pure = (statistics.median(runs[k]) for k in ("fast", "floor", "pure"))
     return {
         "page_bytes": PAGE_BYTES,
         "pages": len(pages),
+        "rounds": ROUNDS,
         "shingles_per_page": round(sum(map(len, shingled)) / len(shingled)),
         "numpy": None if numpy is None else numpy.__version__,
         "simhash64_pages_per_s": round(fast),
