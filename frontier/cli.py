@@ -403,10 +403,11 @@ def cmd_demo(a: argparse.Namespace) -> int:
 def cmd_bench(a: argparse.Namespace) -> int:
     if a.what == "frontier":
         from frontier.bench.frontier_bench import main as frontier_main
-        return frontier_main(urls=a.urls or 1_000_000, hosts=a.hosts or 10_000, aof=not a.no_aof)
+        return frontier_main(urls=a.urls or 1_000_000, hosts=a.hosts or 10_000, aof=not a.no_aof,
+                             cluster=a.cluster)
     if a.what == "crawl":
         from frontier.bench.crawl_bench import main as crawl_main
-        return crawl_main(pages=a.urls or 10_000, profile=a.profile)
+        return crawl_main(pages=a.urls or 10_000, profile=a.profile, processes=a.processes)
     if a.what == "dedupe":
         from frontier.bench.dedupe_bench import main as dedupe_main
         return dedupe_main(pages=a.urls or 5000)
@@ -515,6 +516,10 @@ def parser() -> argparse.ArgumentParser:
                    help="crawl: also run a profiled crawl and print where the time goes")
     b.add_argument("--no-aof", action="store_true",
                    help="frontier: run the embedded Redis without its append-only file")
+    b.add_argument("--cluster", action="store_true",
+                   help="frontier: also run on a 3-master Redis Cluster on loopback")
+    b.add_argument("--processes", type=_process_counts, default=(1,), metavar="N[,N...]",
+                   help="crawl: worker process counts to measure, e.g. 1,2 (default 1)")
     b.add_argument("--web", action="append", metavar="NAME",
                    help="ordering: a web to run (repeatable; default all): farm-near, farm-far, "
                    "subdomain-farm, link-ring, doorways, honest-cluster, demo, demo-live")
@@ -537,6 +542,17 @@ class _Parser(argparse.ArgumentParser):
 
     def error(self, message: str) -> Any:
         self.exit(2, f"{self.prog}: {message} (see '{self.prog} --help')\n")
+
+
+def _process_counts(text: str) -> tuple[int, ...]:
+    """An argparse type: comma-separated process counts, each 1 to 64."""
+    try:
+        counts = tuple(int(part) for part in text.split(","))
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"{text!r} is not a list of numbers like 1,2") from None
+    if not counts or any(not 1 <= c <= 64 for c in counts):
+        raise argparse.ArgumentTypeError(f"each count must be 1 to 64, got {text}")
+    return counts
 
 
 def _positive(kind: type) -> Any:

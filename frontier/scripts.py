@@ -22,7 +22,7 @@ from frontier.exceptions import StoreUnavailable
 ScriptCall = tuple[AsyncScript, list[Any], list[Any]]
 
 SCRIPT_NAMES = (
-    "admit", "lease_pick", "lease_take", "unclaim", "complete", "reap", "control", "extend",
+    "admit", "lease_pick", "lease_take", "complete", "reap", "control", "extend",
 )
 
 
@@ -42,7 +42,6 @@ class Scripts:
     admit: AsyncScript
     lease_pick: AsyncScript
     lease_take: AsyncScript
-    unclaim: AsyncScript
     complete: AsyncScript
     reap: AsyncScript
     control: AsyncScript

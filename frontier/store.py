@@ -31,7 +31,6 @@ log = logging.getLogger(__name__)
 CONTROL_REFUSED = "control refused:"  # how the control script starts a refusal
 PROMOTE_LIMIT = 1000  # due hosts moved to ready per lease_pick call
 REAP_BATCH = 500  # expired leases handled per reap call and partition
-CLAIM_TTL_MS = 10_000  # a picked host returns to due if not leased within this time
 ORPHAN_CUTOFF_MS = 2**62  # later than any lease's expiry
 ENDED_BATCH = 1000  # ended-journal entries taken per partition and call
 CLOCK_RESYNC_S = 60.0  # how often a store synced with the server's clock checks it again
@@ -202,6 +201,9 @@ class FrontierStore:
         self.clock = clock
         self.buckets = seen_buckets(settings)
         self.scripts = Scripts.register(redis)
+        # lease calls of one process go one at a time: picking writes nothing, so calls
+        # made at once would all choose the same best hosts (and fall back to stand-ins)
+        self._lease_lock = asyncio.Lock()
         self._next_partition = 0
         self._offset_ms = 0  # server clock - local clock, once synced
         # politeness key -> (trust its links hand on, out-linked hosts), as last leased here
@@ -342,9 +344,14 @@ class FrontierStore:
         Every partition is asked at once for a share of ``n`` (``lease.rank_spread`` times
         its fair part, so a partition with many ready hosts can fill in for empty ones and
         the best hosts of the whole job win); the best ``n`` hosts over all partitions are
-        leased and the other claims handed back. A second round
+        leased. Picking writes nothing: the hosts not chosen stay ready and serve as
+        stand-ins, in order, for chosen hosts another caller took meanwhile. A second round
         asks the partitions that gave all they were asked for, if ``n`` is not reached.
         """
+        async with self._lease_lock:
+            return await self._lease(n, now)
+
+    async def _lease(self, n: int, now: int | None) -> list[Lease]:
         await self._resync_clock()
         t = self._now(now)
         parts = list(range(self.partitions))
@@ -366,9 +373,9 @@ class FrontierStore:
                     (chosen if i < want else spare).setdefault(p, []).append(host)
                 expires = t + int(self.settings.lease.ttl_s * 1000)
                 got = await run_many(self.redis, [
-                    *(self._take_call(p, hosts, expires, t) for p, hosts in chosen.items()),
-                    *(self._unclaim_call(p, hosts) for p, hosts in spare.items())])
-                for members in got[:len(chosen)]:
+                    self._take_call(p, hosts + spare.get(p, []), len(hosts), expires, t)
+                    for p, hosts in chosen.items()])
+                for members in got:
                     leases += [Lease.from_member(m.decode(), expires) for m in members]
                 self._remember_trust(leases)
                 parts = [p for p, hosts in zip(parts, picked) if len(hosts) == ask]
@@ -377,27 +384,23 @@ class FrontierStore:
     def _pick_call(self, partition: int, n: int, now: int) -> ScriptCall:
         pk = self.keys.part(partition)
         return (self.scripts.lease_pick, [pk.due, pk.ready, pk.prio, pk.claims],
-                [now, n, now + CLAIM_TTL_MS, PROMOTE_LIMIT])
+                [now, n, 0, PROMOTE_LIMIT])
 
     @staticmethod
     def _picked(flat: list[Any]) -> list[tuple[str, float]]:
         return [(flat[i].decode(), float(flat[i + 1])) for i in range(0, len(flat), 2)]
 
-    def _unclaim_call(self, partition: int, hosts: list[str]) -> ScriptCall:
-        pk = self.keys.part(partition)
-        return (self.scripts.unclaim, [pk.ready, pk.claims, pk.prio], list(hosts))
-
-    def _take_call(self, partition: int, hosts: Sequence[str], expires: int,
+    def _take_call(self, partition: int, hosts: Sequence[str], want: int, expires: int,
                    now: int) -> ScriptCall:
         pk = self.keys.part(partition)
         prio = self.settings.priority
-        keys = [pk.counts, pk.claims, pk.leases, pk.attempts, pk.prio, pk.due]
+        keys = [pk.counts, pk.ready, pk.leases, pk.attempts, pk.prio, pk.due]
         for h in hosts:
             keys += (pk.host(h), pk.hot(h), pk.cold(h), pk.out_hosts(h))
         return (self.scripts.lease_take, keys,
                 [expires, partition, len(hosts), self.settings.store.hot_capacity, now,
                  int(prio.suspect_delay_s * 1000), int(prio.untrusted_delay_s * 1000),
-                 repr(prio.trust_threshold), int(prio.probation_s * 1000), *hosts])
+                 repr(prio.trust_threshold), int(prio.probation_s * 1000), want, *hosts])
 
     # -- complete and reap ---------------------------------------------------------------
 

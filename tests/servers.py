@@ -1,4 +1,5 @@
-"""Real Redis servers for tests: one standalone server or a 3-master cluster.
+"""Real Redis servers for tests: one standalone server or a 3-master cluster (the cluster
+starter itself is frontier/local_cluster.py, which the frontier bench uses too).
 
 Both listen on free loopback ports (never the default 6379) and take the extra
 server settings sluice needs as ``{"name": "value"}`` (passed as ``--name value``).
@@ -15,9 +16,7 @@ server settings sluice needs as ``{"name": "value"}`` (passed as ``--name value`
 
 from __future__ import annotations
 
-import random
 import shutil
-import socket
 import subprocess
 import tempfile
 import time
@@ -32,18 +31,12 @@ from redis.retry import Retry
 
 from frontier.embedded import LOOPBACK, RedisProcess, find_server_binary
 from frontier.exceptions import RedisLaunchError
+from frontier.local_cluster import (  # noqa: F401 - the tests' names for them
+    CLUSTER_CONFIG_FILE, CLUSTER_MASTERS, CLUSTER_SLOTS, LoopbackCluster, cluster_port,
+    find_cli_binary,
+)
 
-CLUSTER_MASTERS = 3
-CLUSTER_NODE_TIMEOUT_MS = 5000
-CLUSTER_CONFIG_FILE = "nodes.conf"
-CLUSTER_BUS_OFFSET = 10000  # the cluster bus listens on port + 10000 (Redis cluster spec)
-CLUSTER_PORT_RANGE = (20000, 65535 - CLUSTER_BUS_OFFSET)
-CLUSTER_PORT_ATTEMPTS = 200
-CLUSTER_SLOTS = 16384
-CLUSTER_READY_TIMEOUT_S = 30.0
-CLUSTER_CREATE_TIMEOUT_S = 60.0
 POLL_INTERVAL_S = 0.05
-CLI_NAMES = ("redis-cli", "valkey-cli")
 
 
 def _make_dir(directory: Path | None, prefix: str) -> tuple[Path, bool]:
@@ -133,60 +126,9 @@ class RedisServer(_TestServers):
 
 
 
-def _port_free(port: int) -> bool:
-    with socket.socket(socket.AF_INET, socket.SOCK_STREAM) as sock:
-        try:
-            sock.bind((LOOPBACK, port))
-        except OSError:
-            return False
-    return True
-
-
-def cluster_port(taken: set[int]) -> int:
-    """A free port whose cluster-bus companion (port + 10000) is free as well."""
-    low, high = CLUSTER_PORT_RANGE
-    for _ in range(CLUSTER_PORT_ATTEMPTS):
-        port = random.randrange(low, high)
-        near = {port, port + CLUSTER_BUS_OFFSET}
-        if near & taken or any(p + CLUSTER_BUS_OFFSET in near for p in taken):
-            continue
-        if _port_free(port) and _port_free(port + CLUSTER_BUS_OFFSET):
-            return port
-    raise RedisLaunchError("no free port pair for a cluster node on loopback")
-
-
-def find_cli_binary(server_binary: str) -> str:
-    """redis-cli / valkey-cli, next to the server binary or on PATH."""
-    folder = Path(server_binary).parent
-    for name in CLI_NAMES:
-        beside = folder / name
-        if beside.is_file():
-            return str(beside)
-    for name in CLI_NAMES:
-        found = shutil.which(name)
-        if found:
-            return found
-    raise RedisLaunchError("no redis-cli or valkey-cli found to create the cluster")
-
-
-def _cluster_info(port: int) -> dict[str, str]:
-    client = redis.Redis(
-        host=LOOPBACK, port=port, decode_responses=True, retry=Retry(NoBackoff(), 0)
-    )
-    try:
-        raw = client.execute_command("CLUSTER", "INFO")
-    except redis.RedisError:
-        return {}
-    finally:
-        client.close()
-    if isinstance(raw, dict):
-        return {str(k): str(v) for k, v in raw.items()}
-    lines = raw.splitlines() if isinstance(raw, str) else []
-    return dict(line.split(":", 1) for line in lines if ":" in line)
-
-
-class RedisCluster(_TestServers):
-    """Three cluster-mode masters with all 16384 slots assigned, on loopback."""
+class RedisCluster(_TestServers, LoopbackCluster):
+    """Three cluster-mode masters with all 16384 slots assigned, on loopback
+    (frontier/local_cluster.py), in a folder of their own unless one is given."""
 
     def __init__(
         self,
@@ -196,87 +138,16 @@ class RedisCluster(_TestServers):
         appendonly: bool = True,
         masters: int = CLUSTER_MASTERS,
     ) -> None:
-        self.dir, self._owns_dir = _make_dir(directory, "sluice-cluster-")
-        self._config = dict(config or {})
-        self._appendonly = appendonly
-        self._masters = masters
-        self.nodes: list[RedisProcess] = []
-
-    @property
-    def ports(self) -> list[int]:
-        return [node.port for node in self.nodes]
-
-    @property
-    def startup_nodes(self) -> list[tuple[str, int]]:
-        """``(host, port)`` of every master, for ``ClusterNode(host, port)``."""
-        return [(LOOPBACK, port) for port in self.ports]
-
-    @property
-    def url(self) -> str:
-        return f"redis://{LOOPBACK}:{self.ports[0]}"
+        folder, self._owns_dir = _make_dir(directory, "sluice-cluster-")
+        LoopbackCluster.__init__(self, folder, config=config, appendonly=appendonly,
+                                 masters=masters)
 
     def start(self) -> RedisCluster:
-        binary = find_server_binary()
-        taken: set[int] = set()
-        try:
-            for index in range(self._masters):
-                port = cluster_port(taken)
-                taken.add(port)
-                node = RedisProcess(
-                    self.dir / f"node{index}",
-                    port=port,
-                    appendonly=self._appendonly,
-                    binary=binary,
-                    extra_config={
-                        "cluster-enabled": "yes",
-                        "cluster-config-file": CLUSTER_CONFIG_FILE,
-                        "cluster-node-timeout": str(CLUSTER_NODE_TIMEOUT_MS),
-                        **self._config,
-                    },
-                )
-                self.nodes.append(node)
-                node.start()
-            self._create(find_cli_binary(binary))
-            self._wait_ok()
-        except BaseException:
-            self.stop()
-            raise
+        LoopbackCluster.start(self)
         return self
 
-    def _create(self, cli: str) -> None:
-        addresses = [f"{LOOPBACK}:{port}" for port in self.ports]
-        result = subprocess.run(
-            [cli, "--cluster", "create", *addresses, "--cluster-replicas", "0", "--cluster-yes"],
-            capture_output=True,
-            text=True,
-            timeout=CLUSTER_CREATE_TIMEOUT_S,
-            check=False,
-        )
-        if result.returncode != 0:
-            raise RedisLaunchError(
-                f"cluster create failed ({result.returncode}):\n{result.stdout}\n{result.stderr}"
-            )
-
-    def _wait_ok(self) -> None:
-        deadline = time.monotonic() + CLUSTER_READY_TIMEOUT_S
-        while True:
-            infos = [_cluster_info(port) for port in self.ports]
-            if all(
-                info.get("cluster_state") == "ok"
-                and info.get("cluster_slots_assigned") == str(CLUSTER_SLOTS)
-                and info.get("cluster_known_nodes") == str(self._masters)
-                for info in infos
-            ):
-                return
-            if time.monotonic() >= deadline:
-                raise RedisLaunchError(f"cluster did not reach cluster_state:ok: {infos}")
-            time.sleep(POLL_INTERVAL_S)
-
     def stop(self) -> None:
-        for node in self.nodes:
-            node.stop()
-        self.nodes = []
-
+        LoopbackCluster.stop(self)
 
 
 # -- servers that need credentials or TLS ----------------------------------------------------

@@ -19,7 +19,9 @@ import asyncio
 import cProfile
 import io
 import json
+import os
 import pstats
+import resource
 import socket
 import statistics
 import subprocess
@@ -101,7 +103,7 @@ async def bare_loop(urls: list[str], port: int, concurrency: int) -> float:
 
 
 async def crawl(pages: int, port: int, seeds: list[str], out: Path, redis_url: str,
-                profile: bool) -> tuple[float, list[str], str]:
+                profile: bool, processes: int = 1) -> tuple[float, list[str], str]:
     from frontier.runner import crawl as run_crawl
     # the modules a crawl imports on its way in (~0.25 s here) are start-up, not throughput
     import frontier.daemon, frontier.job, frontier.progress, workers.loop  # noqa: F401, E401
@@ -119,7 +121,7 @@ async def crawl(pages: int, port: int, seeds: list[str], out: Path, redis_url: s
     started = time.perf_counter()
     if prof:
         prof.enable()
-    summary = await run_crawl(settings, out, quiet=True)
+    summary = await run_crawl(settings, out, processes=processes, quiet=True)
     if prof:
         prof.disable()
     elapsed = time.perf_counter() - started
@@ -143,12 +145,22 @@ def _same_loop_run(main: Any) -> float:
     return run(main)
 
 
-def main(pages: int = 10_000, seed: int = 5, profile: bool = False) -> int:
+def _children_cpu_s() -> float:
+    """CPU seconds of this process's ended and reaped children (the worker processes)."""
+    usage = resource.getrusage(resource.RUSAGE_CHILDREN)
+    return usage.ru_utime + usage.ru_stime
+
+
+def main(pages: int = 10_000, seed: int = 5, profile: bool = False,
+         processes: tuple[int, ...] = (1,)) -> int:
     """Crawl rate and bare rate, alternating, in one run; ``profile`` adds a profiled crawl.
 
     ``ratio`` compares the crawl with the plain loop the goal names (aiohttp on asyncio's
     own event loop); ``ratio_same_loop`` with that loop run on the crawler's event loop,
-    which is the stricter limit when uvloop is installed.
+    which is the stricter limit when uvloop is installed. Each count in ``processes`` gets
+    its crawls (one process: the worker runs in the crawl's process; more: ``sluice
+    worker`` children, their CPU counted when they end); the top-level figures are those
+    of the first count.
     """
     from frontier.embedded import RedisProcess
     from frontier.process import run
@@ -156,8 +168,8 @@ def main(pages: int = 10_000, seed: int = 5, profile: bool = False) -> int:
     from frontier.store import redis_tuning
 
     proc, port, seeds = start_web(int(pages * 1.2), seed)
-    crawl_rates: list[float] = []
-    cpu_us: list[float] = []
+    by_count: dict[int, tuple[list[float], list[float]]] = {n: ([], []) for n in processes}
+    crawl_rates, cpu_us = by_count[processes[0]]
     bare_rates: dict[int, list[float]] = {c: [] for c in BARE_CONCURRENCIES}
     same_loop_rates: dict[int, list[float]] = {c: [] for c in BARE_CONCURRENCIES}
     top = ""
@@ -165,20 +177,22 @@ def main(pages: int = 10_000, seed: int = 5, profile: bool = False) -> int:
         with tempfile.TemporaryDirectory(prefix="sluice-crawlbench-") as tmp:
             for i in range(RUNS + (1 if profile else 0)):
                 profiled = i == RUNS  # cProfile roughly halves the rate: its own crawl
-                server = RedisProcess(Path(tmp) / f"redis{i}",
-                                      extra_config=redis_tuning(JobSettings()))
-                server.start()
-                try:
-                    cpu_before = time.process_time()
-                    rate, urls, top = run(crawl(pages, port, seeds, Path(tmp) / f"out{i}",
-                                                server.url, profiled))
-                    cpu = time.process_time() - cpu_before
-                finally:
-                    server.stop()
+                for n in processes[:1] if profiled else processes:
+                    server = RedisProcess(Path(tmp) / f"redis{i}-{n}",
+                                          extra_config=redis_tuning(JobSettings()))
+                    server.start()
+                    try:
+                        cpu_before = time.process_time() + _children_cpu_s()
+                        rate, urls, top = run(crawl(pages, port, seeds, Path(tmp) / f"out{i}-{n}",
+                                                    server.url, profiled, n))
+                        cpu = time.process_time() + _children_cpu_s() - cpu_before
+                    finally:
+                        server.stop()
+                    if not profiled:
+                        by_count[n][0].append(rate)
+                        by_count[n][1].append(cpu / max(1, len(urls)) * 1e6)
                 if profiled:
                     break
-                crawl_rates.append(rate)
-                cpu_us.append(cpu / max(1, len(urls)) * 1e6)
                 for c in BARE_CONCURRENCIES:
                     bare_rates[c].append(asyncio.run(bare_loop(urls, port, c)))
                     same_loop_rates[c].append(_same_loop_run(bare_loop(urls, port, c)))
@@ -201,6 +215,16 @@ def main(pages: int = 10_000, seed: int = 5, profile: bool = False) -> int:
         "crawl_runs": [round(r, 1) for r in crawl_rates],
         "bare_by_concurrency": {c: round(r, 1) for c, r in bare_by.items()},
         "bare_same_loop_by_concurrency": {c: round(r, 1) for c, r in same_by.items()},
+        "by_processes": {n: {
+            "crawl_pages_per_s": round(statistics.median(rates), 1),
+            "ratio": round(statistics.median(rates) / bare_by[bare_c], 3),
+            "cpu_us_per_page": round(statistics.median(cpus)),
+            "crawl_runs": [round(r, 1) for r in rates]} for n, (rates, cpus) in by_count.items()},
+        "cores": os.cpu_count(),
+        "shares_the_cores": "the synthetic web's server process and Redis run on the same "
+                            "cores as the crawl and the bare loop",
+        "priority_settings": {k: v for k, v in JobSettings().priority.model_dump().items()
+                              if k in ("probation_s", "untrusted_delay_s", "suspect_delay_s")},
     }
     print(json.dumps(result, indent=2))
     if top:

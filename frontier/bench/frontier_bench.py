@@ -2,7 +2,12 @@
 
 Prints one JSON object. Rates are medians over equal slices of each phase; the client
 limit (pipelined EVALSHA of a trivial script from this same process) is measured in the
-same run so the ratios mean something on a noisy machine.
+same run so the ratios mean something on a noisy machine. Redis's own cost is given as
+CPU time per URL (``INFO cpu``, user + system) and as commands per URL (``INFO
+commandstats``: the commands the scripts call, each script call counted once too),
+which a busy machine does not blur. ``--cluster`` runs the same phases on a 3-master
+Redis Cluster on loopback (frontier/local_cluster.py) after the single server, in the
+same run.
 """
 
 from __future__ import annotations
@@ -68,10 +73,24 @@ async def client_limit(client: Any, seconds: float = 2.0, batch: int = 500) -> f
     return calls / (time.perf_counter() - start)
 
 
-async def redis_cpu_s(client: Any) -> float:
-    """CPU seconds the Redis server has used (INFO cpu)."""
-    info = await client.info("cpu")
-    return float(info["used_cpu_user"]) + float(info["used_cpu_sys"])
+async def redis_cpu_s(nodes: list[Any]) -> float:
+    """CPU seconds the Redis servers have used (INFO cpu, summed over the nodes)."""
+    total = 0.0
+    for node in nodes:
+        info = await node.info("cpu")
+        total += float(info["used_cpu_user"]) + float(info["used_cpu_sys"])
+    return total
+
+
+async def redis_calls(nodes: list[Any]) -> int:
+    """Commands the Redis servers have run (INFO commandstats, summed; ``info`` itself and
+    the bench's own reads are a few hundred in a million)."""
+    total = 0
+    for node in nodes:
+        for name, stats in (await node.info("commandstats")).items():
+            if name.startswith("cmdstat_") and isinstance(stats, dict):
+                total += int(stats["calls"])
+    return total
 
 
 async def hosts_with_queue(client: Any, store: FrontierStore) -> int:
@@ -82,28 +101,36 @@ async def hosts_with_queue(client: Any, store: FrontierStore) -> int:
     return total
 
 
-async def memory_by_kind(client: Any, job: str) -> dict[str, int]:
-    """MEMORY USAGE summed per key kind (seen buckets vs queue structures)."""
+async def memory_by_kind(nodes: list[Any], job: str) -> dict[str, int]:
+    """MEMORY USAGE summed per key kind (seen buckets vs queue structures), over the nodes."""
     totals: dict[str, int] = {}
-    batch: list[tuple[str, str]] = []
+    for client in nodes:
+        batch: list[tuple[str, str]] = []
 
-    async def flush() -> None:
-        pipe = client.pipeline(transaction=False)
-        for key, _ in batch:
-            pipe.memory_usage(key, samples=0)
-        for (_, kind), used in zip(batch, await pipe.execute()):
-            totals[kind] = totals.get(kind, 0) + int(used or 0)
-        batch.clear()
+        async def flush() -> None:
+            pipe = client.pipeline(transaction=False)
+            for key, _ in batch:
+                pipe.memory_usage(key, samples=0)
+            for (_, kind), used in zip(batch, await pipe.execute()):
+                totals[kind] = totals.get(kind, 0) + int(used or 0)
+            batch.clear()
 
-    async for raw in client.scan_iter(match=f"sluice:{{{job}.*", count=5000):
-        key = raw.decode()
-        kind = key.split(":")[2]
-        batch.append((key, "seen" if kind == "seen" else "queue"))
-        if len(batch) >= 2000:
+        async for raw in client.scan_iter(match=f"sluice:{{{job}.*", count=5000):
+            key = raw.decode()
+            kind = key.split(":")[2]
+            batch.append((key, "seen" if kind == "seen" else "queue"))
+            if len(batch) >= 2000:
+                await flush()
+        if batch:
             await flush()
-    if batch:
-        await flush()
     return totals
+
+
+async def used_memory(nodes: list[Any]) -> int:
+    total = 0
+    for node in nodes:
+        total += int((await node.info("memory"))["used_memory"])
+    return total
 
 
 SEGMENTS = 5  # admission is timed in equal segments; the median segment rate is reported
@@ -130,9 +157,8 @@ async def admit_pipelined(admission: Admission, candidates: list[Candidate]) -> 
             pass
 
 
-async def run(urls: int, hosts: int, exponent: float, seed: int, state: Path,
-              aof: bool = True) -> dict[str, Any]:
-    settings = JobSettings.model_validate({
+def bench_settings(urls: int, state: Path) -> JobSettings:
+    return JobSettings.model_validate({
         "name": "bench", "state_dir": str(state),
         "store": {"partitions": 16, "expected_urls": urls},
         "budget": {"max_pages_per_host": None},
@@ -140,6 +166,12 @@ async def run(urls: int, hosts: int, exponent: float, seed: int, state: Path,
         "politeness": {"min_delay_s": 0.0, "response_time_factor": 0.0},
         "lease": {"ttl_s": 3600},
     })
+
+
+async def run(urls: int, hosts: int, exponent: float, seed: int, state: Path,
+              aof: bool = True) -> dict[str, Any]:
+    """The phases on the embedded Redis (one server, one core)."""
+    settings = bench_settings(urls, state)
     config = redis_tuning(settings)
     if not aof:  # the embedded default keeps an append-only file; this measures without it
         config["appendonly"] = "no"
@@ -148,86 +180,134 @@ async def run(urls: int, hosts: int, exponent: float, seed: int, state: Path,
     client = connect(server.url)
     try:
         limit = await client_limit(client)
-        store = FrontierStore(client, settings)
-        admission = Admission(store, Scope(allow=[], include=[], exclude=[], max_depth=None))
-        base_mem = int((await client.info("memory"))["used_memory"])
-
-        candidates = list(synthetic_urls(urls, hosts, exponent, seed))
-        gc.freeze()  # the million input objects are bench data: keep the collector off them
-        mean_len = statistics.fmean(len(c.url) for c in candidates)
-        segment_rates: list[float] = []
-        cpu0, redis0 = time.process_time(), await redis_cpu_s(client)
-        t0 = time.perf_counter()
-        segment = max(1, len(candidates) // SEGMENTS)
-        for start in range(0, len(candidates), segment):
-            s = time.perf_counter()
-            await admit_pipelined(admission, candidates[start:start + segment])
-            segment_rates.append(min(segment, len(candidates) - start) / (time.perf_counter() - s))
-        admit_total_s = time.perf_counter() - t0
-        admit_py_cpu, admit_redis_cpu = time.process_time() - cpu0, await redis_cpu_s(client) - redis0
-        del candidates
-        gc.unfreeze()
-        counts = await store.counts()
-        mem = await memory_by_kind(client, settings.name)
-        used_mem = int((await client.info("memory"))["used_memory"]) - base_mem
-
-        full_rates: list[float] = []
-        done = 0
-        thin_rounds = 0
-        cpu1, redis1 = time.process_time(), await redis_cpu_s(client)
-        t1 = time.perf_counter()
-        while thin_rounds < TAIL_ROUNDS:
-            s = time.perf_counter()
-            got = await asyncio.gather(*(store.lease(LEASE_BATCH) for _ in range(LEASERS)))
-            leases = [x for g in got for x in g]
-            if not leases:
-                if (await store.counts()).queued == 0:
-                    break
-                thin_rounds += 1
-                continue
-            await store.complete_many([Completion(x, Outcome.FETCHED) for x in leases])
-            done += len(leases)
-            if len(leases) == LEASE_BATCH * LEASERS:
-                full_rates.append(len(leases) / (time.perf_counter() - s))
-            # the tail: few hosts left, one lease per host at a time (politeness, by design)
-            thin_rounds = thin_rounds + 1 if len(leases) < LEASE_BATCH * LEASERS // 4 else 0
-        lease_total_s = time.perf_counter() - t1
-        lease_py_cpu, lease_redis_cpu = time.process_time() - cpu1, await redis_cpu_s(client) - redis1
-        final = await store.counts()
-        return {
-            "urls": urls, "hosts": hosts, "zipf_exponent": exponent, "partitions": 16,
-            "append_only_file": aof,
-            "admit_urls_per_s": round(statistics.median(segment_rates)),
-            "admit_urls_per_s_overall": round(urls / admit_total_s),
-            "lease_complete_urls_per_s": round(statistics.median(full_rates)) if full_rates else 0,
-            "lease_complete_rounds_with_full_batch": len(full_rates),
-            "lease_complete_urls_per_s_overall_drain": round(done / lease_total_s),
-            "client_limit_ops_per_s": round(limit),
-            "admit_ratio_to_client_limit": round(statistics.median(segment_rates) / limit, 2),
-            "lease_complete_ratio_to_client_limit": round(
-                (statistics.median(full_rates) if full_rates else 0) / limit, 2),
-            "cpu_us_per_admitted_url": {"redis": round(admit_redis_cpu / urls * 1e6, 1),
-                                        "python": round(admit_py_cpu / urls * 1e6, 1)},
-            "cpu_us_per_leased_and_completed_url": {
-                "redis": round(lease_redis_cpu / max(done, 1) * 1e6, 1),
-                "python": round(lease_py_cpu / max(done, 1) * 1e6, 1)},
-            "mean_url_length": round(mean_len, 1),
-            "bytes_per_queued_url": round(mem.get("queue", 0) / counts.queued, 1),
-            "bytes_per_seen_url": round(mem.get("seen", 0) / counts.admitted, 2),
-            "bytes_per_url_used_memory": round(used_mem / counts.admitted, 1),
-            "queued": counts.queued, "fetched": final.fetched,
-            "drained_share": round(final.fetched / counts.queued, 3),
-            "hosts_left_at_stop": await hosts_with_queue(client, store),
-            "balanced": final.balanced,
-        }
+        result = await phases(client, [client], settings, urls, hosts, exponent, seed, limit)
+        return {"append_only_file": aof, **result}
     finally:
         await client.aclose()
         server.stop()
 
 
+async def run_cluster(urls: int, hosts: int, exponent: float, seed: int, state: Path,
+                      limit: float, aof: bool = True) -> dict[str, Any]:
+    """The same phases on a 3-master Redis Cluster on loopback (each master its own
+    process: on this machine they share its cores with the bench)."""
+    from frontier.local_cluster import LoopbackCluster
+
+    settings = bench_settings(urls, state)
+    with LoopbackCluster(state / "cluster", config=redis_tuning(settings),
+                         appendonly=aof) as cluster:
+        client = connect("redis+cluster://" + cluster.url.split("://", 1)[1])
+        nodes = [connect(f"redis://{host}:{port}") for host, port in cluster.startup_nodes]
+        try:
+            result = await phases(client, nodes, settings, urls, hosts, exponent, seed, limit)
+            return {"masters": len(nodes), "append_only_file": aof, **result}
+        finally:
+            await client.aclose()
+            for node in nodes:
+                await node.aclose()
+
+
+async def phases(client: Any, nodes: list[Any], settings: JobSettings, urls: int, hosts: int,
+                 exponent: float, seed: int, limit: float) -> dict[str, Any]:
+    """Admit ``urls`` URLs, then lease and complete them; the figures of both phases."""
+    store = FrontierStore(client, settings)
+    partitions = store.partitions
+    admission = Admission(store, Scope(allow=[], include=[], exclude=[], max_depth=None))
+    base_mem = await used_memory(nodes)
+
+    candidates = list(synthetic_urls(urls, hosts, exponent, seed))
+    gc.freeze()  # the million input objects are bench data: keep the collector off them
+    mean_len = statistics.fmean(len(c.url) for c in candidates)
+    segment_rates: list[float] = []
+    cpu0, redis0, calls0 = time.process_time(), await redis_cpu_s(nodes), await redis_calls(nodes)
+    t0 = time.perf_counter()
+    segment = max(1, len(candidates) // SEGMENTS)
+    for start in range(0, len(candidates), segment):
+        s = time.perf_counter()
+        await admit_pipelined(admission, candidates[start:start + segment])
+        segment_rates.append(min(segment, len(candidates) - start) / (time.perf_counter() - s))
+    admit_total_s = time.perf_counter() - t0
+    admit_py_cpu = time.process_time() - cpu0
+    admit_redis_cpu = await redis_cpu_s(nodes) - redis0
+    admit_calls = await redis_calls(nodes) - calls0
+    del candidates
+    gc.unfreeze()
+    counts = await store.counts()
+    mem = await memory_by_kind(nodes, settings.name)
+    used_mem = await used_memory(nodes) - base_mem
+
+    full_rates: list[float] = []
+    done = 0
+    thin_rounds = 0
+    lease_cpu = complete_cpu = 0.0
+    cpu1, redis1, calls1 = time.process_time(), await redis_cpu_s(nodes), await redis_calls(nodes)
+    t1 = time.perf_counter()
+    while thin_rounds < TAIL_ROUNDS:
+        s = time.perf_counter()
+        r0 = await redis_cpu_s(nodes)
+        got = await asyncio.gather(*(store.lease(LEASE_BATCH) for _ in range(LEASERS)))
+        leases = [x for g in got for x in g]
+        r1 = await redis_cpu_s(nodes)
+        lease_cpu += r1 - r0
+        if not leases:
+            if (await store.counts()).queued == 0:
+                break
+            thin_rounds += 1
+            continue
+        await store.complete_many([Completion(x, Outcome.FETCHED) for x in leases])
+        complete_cpu += await redis_cpu_s(nodes) - r1
+        done += len(leases)
+        if len(leases) == LEASE_BATCH * LEASERS:
+            full_rates.append(len(leases) / (time.perf_counter() - s))
+        # the tail: few hosts left, one lease per host at a time (politeness, by design)
+        thin_rounds = thin_rounds + 1 if len(leases) < LEASE_BATCH * LEASERS // 4 else 0
+    lease_total_s = time.perf_counter() - t1
+    lease_py_cpu = time.process_time() - cpu1
+    lease_redis_cpu = await redis_cpu_s(nodes) - redis1
+    lease_calls = await redis_calls(nodes) - calls1
+    final = await store.counts()
+    lease_rate = statistics.median(full_rates) if full_rates else 0
+    return {
+        "urls": urls, "hosts": hosts, "zipf_exponent": exponent, "partitions": partitions,
+        "rank_spread": settings.lease.rank_spread,
+        "admit_urls_per_s": round(statistics.median(segment_rates)),
+        "admit_urls_per_s_overall": round(urls / admit_total_s),
+        "lease_complete_urls_per_s": round(lease_rate),
+        "lease_complete_rounds_with_full_batch": len(full_rates),
+        "lease_complete_urls_per_s_overall_drain": round(done / lease_total_s),
+        "client_limit_ops_per_s": round(limit),
+        "admit_ratio_to_client_limit": round(statistics.median(segment_rates) / limit, 2),
+        "lease_complete_ratio_to_client_limit": round(lease_rate / limit, 2),
+        "cpu_us_per_admitted_url": {"redis": round(admit_redis_cpu / urls * 1e6, 1),
+                                    "python": round(admit_py_cpu / urls * 1e6, 1)},
+        "cpu_us_per_leased_and_completed_url": {
+            "redis": round(lease_redis_cpu / max(done, 1) * 1e6, 1),
+            "redis_lease": round(lease_cpu / max(done, 1) * 1e6, 1),
+            "redis_complete": round(complete_cpu / max(done, 1) * 1e6, 1),
+            "python": round(lease_py_cpu / max(done, 1) * 1e6, 1)},
+        "redis_commands_per_admitted_url": round(admit_calls / urls, 2),
+        "redis_commands_per_leased_and_completed_url": round(lease_calls / max(done, 1), 2),
+        "mean_url_length": round(mean_len, 1),
+        "bytes_per_queued_url": round(mem.get("queue", 0) / counts.queued, 1),
+        "bytes_per_seen_url": round(mem.get("seen", 0) / counts.admitted, 2),
+        "bytes_per_url_used_memory": round(used_mem / counts.admitted, 1),
+        "queued": counts.queued, "fetched": final.fetched,
+        "drained_share": round(final.fetched / counts.queued, 3),
+        "hosts_left_at_stop": await hosts_with_queue(client, store),
+        "balanced": final.balanced,
+    }
+
+
 def main(urls: int = 1_000_000, hosts: int = 10_000, exponent: float = 1.0, seed: int = 7,
-         aof: bool = True) -> int:
+         aof: bool = True, cluster: bool = False) -> int:
     with tempfile.TemporaryDirectory(prefix="sluice-bench-") as tmp:
-        result = asyncio.run(run(urls, hosts, exponent, seed, Path(tmp), aof))
+        (Path(tmp) / "server").mkdir()
+        result = asyncio.run(run(urls, hosts, exponent, seed, Path(tmp) / "server", aof))
+        if cluster:
+            result = {"server": result, "cluster": asyncio.run(run_cluster(
+                urls, hosts, exponent, seed, Path(tmp), result["client_limit_ops_per_s"], aof))}
+            result["cluster_to_server"] = {
+                k: round(result["cluster"][k] / max(result["server"][k], 1), 2)
+                for k in ("admit_urls_per_s", "lease_complete_urls_per_s")}
     print(json.dumps(result, indent=2))
     return 0

@@ -75,16 +75,15 @@ local function best_url(hot, cold, cap)
   return best[1], best[2]
 end
 
--- Pop the host's best URL (refilling an empty hot window first).
+-- Pop the host's best URL (refilling an empty hot window first). Read and removed by
+-- rank: on a listpack window ZPOPMAX looks its member up again from the head, a scan of
+-- the whole window; removing the last rank is a seek from the tail.
 local function pop_best(hot, cold, cap)
-  local top = redis.call('ZPOPMAX', hot)
-  if #top == 0 then
-    if refill(hot, cold, cap) == 0 then
-      return nil, nil
-    end
-    top = redis.call('ZPOPMAX', hot)
+  local url, score = best_url(hot, cold, cap)
+  if url then
+    redis.call('ZREMRANGEBYRANK', hot, -1, -1)
   end
-  return top[1], top[2]
+  return url, score
 end
 
 local function queue_length(hot, cold)

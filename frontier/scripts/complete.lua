@@ -27,13 +27,18 @@ local tally = {}
 local ended = {}
 local released = {prio = {}, due = {}, idle = {}}
 local requeued = 0  -- leases handed back
+local members = {}
+for i = 0, n - 1 do
+  members[i + 1] = ARGV[8 + 6 * i]
+end
+local expiries = n > 0 and redis.call('ZMSCORE', KEYS[3], unpack(members)) or {}
 local a = 8
 for i = 0, n - 1 do
   local member, outcome, reason = ARGV[a], ARGV[a + 1], ARGV[a + 2]
   local rt, extra, crawl = tonumber(ARGV[a + 3]), tonumber(ARGV[a + 4]), ARGV[a + 5]
   a = a + 6
   local hk, hot, cold = KEYS[10 + 3 * i], KEYS[11 + 3 * i], KEYS[12 + 3 * i]
-  local expiry = redis.call('ZSCORE', KEYS[3], member)
+  local expiry = expiries[i + 1]  -- one ZMSCORE for the batch
   if not expiry or ended[member] then  -- (the leases ZSET is trimmed at the end)
     out[#out + 1] = 'not_held'
   elseif tonumber(expiry) < now then

@@ -1,10 +1,11 @@
--- lease_pick: claim the best hosts of one partition whose next-fetch time has come.
+-- lease_pick: show the best hosts of one partition whose next-fetch time has come.
 -- KEYS[1] due   KEYS[2] ready   KEYS[3] prio   KEYS[4] claims
--- ARGV[1] now (ms)  ARGV[2] how many hosts  ARGV[3] claim expiry (ms)  ARGV[4] promote limit
--- Stale claims (a picker that died before lease_take) go back to due; due hosts whose
--- time has come move to ready at their priority; the best ready hosts are claimed.
--- Returns {host, priority, host, priority, ...}, best first. lease_take (with the hosts'
--- keys) leases them; unclaim puts back the ones the caller does not want.
+-- ARGV[1] now (ms)  ARGV[2] how many hosts  ARGV[3] (unused)  ARGV[4] promote limit
+-- Claims left by an older version (hosts picked and never taken) go back to due; due
+-- hosts whose time has come move to ready at their priority; the best ready hosts are
+-- returned, left in ready: no claim is written, so hosts the caller does not choose cost
+-- nothing. Returns {host, priority, host, priority, ...}, best first. lease_take (with the
+-- hosts' keys) takes each one out of ready as it leases it.
 local now = tonumber(ARGV[1])
 local stale = redis.call('ZRANGEBYSCORE', KEYS[4], '-inf', now, 'LIMIT', 0, 1000)
 for _, host in ipairs(stale) do
@@ -28,13 +29,4 @@ if #due > 0 then
     redis.call('ZADD', KEYS[2], unpack(add))
   end
 end
-local top = redis.call('ZPOPMAX', KEYS[2], tonumber(ARGV[2]))
-local add = {}
-for i = 1, #top, 2 do
-  add[#add + 1] = ARGV[3]
-  add[#add + 1] = top[i]
-end
-if #add > 0 then
-  redis.call('ZADD', KEYS[4], unpack(add))
-end
-return top
+return redis.call('ZREVRANGE', KEYS[2], 0, tonumber(ARGV[2]) - 1, 'WITHSCORES')

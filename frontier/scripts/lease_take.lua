@@ -1,14 +1,16 @@
--- lease_take: lease the best URL of each host claimed by lease_pick.
--- KEYS[1] counts   KEYS[2] claims   KEYS[3] leases   KEYS[4] attempts   KEYS[5] prio
+-- lease_take: lease the best URL of each host lease_pick showed, while it is still ready.
+-- KEYS[1] counts   KEYS[2] ready   KEYS[3] leases   KEYS[4] attempts   KEYS[5] prio
 -- KEYS[6] due
 -- KEYS[7 ..] per host i (0-based): host hash, hot ZSET, cold LIST, out-hosts HLL (4 keys)
 -- ARGV[1] lease expiry (ms)  ARGV[2] partition index  ARGV[3] n  ARGV[4] hot capacity
 -- ARGV[5] now (ms)  ARGV[6] gap between fetches of a suspect (ms)
 -- ARGV[7] gap between fetches of an untrusted host (ms)  ARGV[8] trust threshold
--- ARGV[9] probation of a new host (ms)
--- ARGV[10 ..] the n hosts
--- A host is leased only if its claim is still held, it is active and holds no lease: so
--- at most one lease per politeness key exists at any time.
+-- ARGV[9] probation of a new host (ms)  ARGV[10] want: hosts to take at most
+-- ARGV[11 ..] the n hosts: the caller's choice first, then stand-ins, best first
+-- A host is leased only if this call takes it out of ready (no other caller did), it is
+-- active and holds no lease: so at most one lease per politeness key exists at any time.
+-- Hosts are taken in order until `want` are: a host another caller took since lease_pick
+-- is replaced by the next stand-in (one held back or with nothing queued is not).
 -- Link spam (docs/priority.md): a host whose trust is below the threshold (admit.lua) is
 -- leased at most once per untrusted gap, a link-spam suspect once per suspect gap (the
 -- budget enforcement of IRLbot, Lee et al. WWW 2008, slows such hosts rather than drop
@@ -25,14 +27,20 @@ local now = tonumber(ARGV[5])
 local suspect_gap, untrusted_gap = tonumber(ARGV[6]), tonumber(ARGV[7])
 local threshold = tonumber(ARGV[8])
 local probation = tonumber(ARGV[9])
+local want = tonumber(ARGV[10])
+local taken = 0
 local out = {}
 local held = {}
 local seq = redis.call('HINCRBY', KEYS[1], 'lease_seq', n) - n
 local retried = redis.call('HLEN', KEYS[4]) > 0
 for i = 0, n - 1 do
-  local host = ARGV[10 + i]
+  if taken >= want then
+    break
+  end
+  local host = ARGV[11 + i]
   local hk, hot, cold, outs = KEYS[7 + 4 * i], KEYS[8 + 4 * i], KEYS[9 + 4 * i], KEYS[10 + 4 * i]
   if redis.call('ZREM', KEYS[2], host) == 1 then
+    taken = taken + 1
     local f = redis.call('HMGET', hk, 'state', 'lease', 'trust', 'suspect', 'tlease', 'seeded',
                          'mark', 'probe')
     if f[1] == 'active' and not f[2] then
