@@ -192,7 +192,10 @@ class Admission:
             batch = batches.get(p)
             if batch is None:
                 batch = batches[p] = PartitionBatch()
-            batch.out_links.setdefault(source_key, set()).update(targets)
+            # out-linked hosts of other registrable domains only: the reciprocity of Wu &
+            # Davison counts domains, and a domain's own hosts share no trust
+            batch.out_links.setdefault(source_key, set()).update(
+                key for key in targets if _domain_of(key) != domain)
 
     def _remember(self, raw: str) -> tuple[str, str, int] | str:
         facts = self._facts

@@ -307,3 +307,24 @@ async def test_redirects_and_links_within_a_domain_hand_on_no_trust(
                   source_trust=1.0),
     ])
     assert await trust_of(store, "door.test") == pytest.approx(SEED_SHARE)
+
+
+async def test_hosts_of_one_domain_linking_each_other_are_not_reciprocal(
+        make_store: StoreFactory) -> None:
+    # Wu & Davison 2005 count the *domains* a page's in-links come from and its out-links
+    # go to. Five departments of one registrable domain (uni.test) that all link to each
+    # other, each linked from one seed host: no reciprocal domain, so no suspect (the same
+    # shape over five separate domains is one: test_a_farm_with_few_trusted_links_in_is_a_suspect).
+    # Links within the domain hand on no trust: each holds the seed's 0.085 only.
+    store = spam_store(make_store)
+    adm = admission(store)
+    await lease_seeds(store, adm, ["s0.test"])
+    hosts = [f"dept{i}.uni.test" for i in range(5)]
+    await adm.admit(links("s0.test", hosts))
+    for h in hosts:
+        await adm.admit(links(h, [o for o in hosts if o != h], page=f"from-{h}",
+                              trust=SEED_SHARE))
+    for h in hosts:
+        info = await store.host_info(h)
+        assert "suspect" not in info and info.get("recip", "0") == "0"
+        assert float(info["trust"]) == pytest.approx(SEED_SHARE)
