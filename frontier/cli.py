@@ -404,7 +404,7 @@ def cmd_bench(a: argparse.Namespace) -> int:
     if a.what == "frontier":
         from frontier.bench.frontier_bench import main as frontier_main
         return frontier_main(urls=a.urls or 1_000_000, hosts=a.hosts or 10_000, aof=not a.no_aof,
-                             cluster=a.cluster)
+                             cluster=a.cluster, lease_limit=a.lease_urls)
     if a.what == "crawl":
         from frontier.bench.crawl_bench import main as crawl_main
         return crawl_main(pages=a.urls or 10_000, profile=a.profile, processes=a.processes)
@@ -518,6 +518,8 @@ def parser() -> argparse.ArgumentParser:
                    help="frontier: run the embedded Redis without its append-only file")
     b.add_argument("--cluster", action="store_true",
                    help="frontier: also run on a 3-master Redis Cluster on loopback")
+    b.add_argument("--lease-urls", type=_positive(int), metavar="N",
+                   help="frontier: lease and complete at most N URLs (default: drain)")
     b.add_argument("--processes", type=_process_counts, default=(1,), metavar="N[,N...]",
                    help="crawl: worker process counts to measure, e.g. 1,2 (default 1)")
     b.add_argument("--web", action="append", metavar="NAME",

@@ -117,7 +117,7 @@ async def crawl(pages: int, port: int, seeds: list[str], out: Path, redis_url: s
                   "concurrency": CRAWL_CONCURRENCY},
         "lease": {"batch": 64},
     })
-    prof = cProfile.Profile() if profile else None
+    prof = cProfile.Profile(time.process_time) if profile else None
     started = time.perf_counter()
     if prof:
         prof.enable()
@@ -130,7 +130,7 @@ async def crawl(pages: int, port: int, seeds: list[str], out: Path, redis_url: s
     top = ""
     if prof:
         buf = io.StringIO()
-        pstats.Stats(prof, stream=buf).sort_stats("cumulative").print_stats(45)
+        pstats.Stats(prof, stream=buf).sort_stats("tottime").print_stats(45)
         top = buf.getvalue()
     return summary["fetched"] / elapsed, fetched_urls, top
 

@@ -169,7 +169,7 @@ def bench_settings(urls: int, state: Path) -> JobSettings:
 
 
 async def run(urls: int, hosts: int, exponent: float, seed: int, state: Path,
-              aof: bool = True) -> dict[str, Any]:
+              aof: bool = True, lease_limit: int | None = None) -> dict[str, Any]:
     """The phases on the embedded Redis (one server, one core)."""
     settings = bench_settings(urls, state)
     config = redis_tuning(settings)
@@ -180,7 +180,8 @@ async def run(urls: int, hosts: int, exponent: float, seed: int, state: Path,
     client = connect(server.url)
     try:
         limit = await client_limit(client)
-        result = await phases(client, [client], settings, urls, hosts, exponent, seed, limit)
+        result = await phases(client, [client], settings, urls, hosts, exponent, seed, limit,
+                              lease_limit)
         return {"append_only_file": aof, **result}
     finally:
         await client.aclose()
@@ -188,7 +189,8 @@ async def run(urls: int, hosts: int, exponent: float, seed: int, state: Path,
 
 
 async def run_cluster(urls: int, hosts: int, exponent: float, seed: int, state: Path,
-                      limit: float, aof: bool = True) -> dict[str, Any]:
+                      limit: float, aof: bool = True,
+                      lease_limit: int | None = None) -> dict[str, Any]:
     """The same phases on a 3-master Redis Cluster on loopback (each master its own
     process: on this machine they share its cores with the bench)."""
     from frontier.local_cluster import LoopbackCluster
@@ -199,7 +201,8 @@ async def run_cluster(urls: int, hosts: int, exponent: float, seed: int, state: 
         client = connect("redis+cluster://" + cluster.url.split("://", 1)[1])
         nodes = [connect(f"redis://{host}:{port}") for host, port in cluster.startup_nodes]
         try:
-            result = await phases(client, nodes, settings, urls, hosts, exponent, seed, limit)
+            result = await phases(client, nodes, settings, urls, hosts, exponent, seed, limit,
+                                  lease_limit)
             return {"masters": len(nodes), "append_only_file": aof, **result}
         finally:
             await client.aclose()
@@ -208,8 +211,10 @@ async def run_cluster(urls: int, hosts: int, exponent: float, seed: int, state: 
 
 
 async def phases(client: Any, nodes: list[Any], settings: JobSettings, urls: int, hosts: int,
-                 exponent: float, seed: int, limit: float) -> dict[str, Any]:
-    """Admit ``urls`` URLs, then lease and complete them; the figures of both phases."""
+                 exponent: float, seed: int, limit: float,
+                 lease_limit: int | None = None) -> dict[str, Any]:
+    """Admit ``urls`` URLs, then lease and complete them (the first ``lease_limit`` only,
+    when given); the figures of both phases."""
     store = FrontierStore(client, settings)
     partitions = store.partitions
     admission = Admission(store, Scope(allow=[], include=[], exclude=[], max_depth=None))
@@ -242,7 +247,7 @@ async def phases(client: Any, nodes: list[Any], settings: JobSettings, urls: int
     lease_cpu = complete_cpu = 0.0
     cpu1, redis1, calls1 = time.process_time(), await redis_cpu_s(nodes), await redis_calls(nodes)
     t1 = time.perf_counter()
-    while thin_rounds < TAIL_ROUNDS:
+    while thin_rounds < TAIL_ROUNDS and (lease_limit is None or done < lease_limit):
         s = time.perf_counter()
         r0 = await redis_cpu_s(nodes)
         got = await asyncio.gather(*(store.lease(LEASE_BATCH) for _ in range(LEASERS)))
@@ -299,13 +304,15 @@ async def phases(client: Any, nodes: list[Any], settings: JobSettings, urls: int
 
 
 def main(urls: int = 1_000_000, hosts: int = 10_000, exponent: float = 1.0, seed: int = 7,
-         aof: bool = True, cluster: bool = False) -> int:
+         aof: bool = True, cluster: bool = False, lease_limit: int | None = None) -> int:
     with tempfile.TemporaryDirectory(prefix="sluice-bench-") as tmp:
         (Path(tmp) / "server").mkdir()
-        result = asyncio.run(run(urls, hosts, exponent, seed, Path(tmp) / "server", aof))
+        result = asyncio.run(run(urls, hosts, exponent, seed, Path(tmp) / "server", aof,
+                                 lease_limit))
         if cluster:
             result = {"server": result, "cluster": asyncio.run(run_cluster(
-                urls, hosts, exponent, seed, Path(tmp), result["client_limit_ops_per_s"], aof))}
+                urls, hosts, exponent, seed, Path(tmp), result["client_limit_ops_per_s"], aof,
+                lease_limit))}
             result["cluster_to_server"] = {
                 k: round(result["cluster"][k] / max(result["server"][k], 1), 2)
                 for k in ("admit_urls_per_s", "lease_complete_urls_per_s")}
