@@ -117,6 +117,14 @@ class LabelledWeb:
     cluster: frozenset[str]  # URLs of the honest dense cluster
     entries: tuple[tuple[str, str], ...]  # (honest page, spam URL) links into the spam
     placement: str  # NEAR, FAR, or "" (no spam, or as the demo web has it)
+    doorways: frozenset[str] = frozenset()  # spam URLs that lead into a farm, not in it
+
+    @property
+    def farm(self) -> frozenset[str]:
+        """The spam a defence must keep out of the budget: every spam URL but the
+        doorways (a doorway is an ordinary URL until it answers, so any order fetches
+        those it meets; what it must not do is follow them into the farm)."""
+        return self.spam - self.doorways
 
     @property
     def seeds(self) -> list[str]:
@@ -205,6 +213,7 @@ class _FamilyBuilder(SiteBuilder):
         self.site_hosts = [self.names.domain() for _ in range(BASE_HOSTS)]
         self.crawl_seeds: list[str] = []
         self.spam: list[str] = []
+        self.doorway_urls: list[str] = []  # doorway hosts' pages and planted doorways
         self.cluster: list[str] = []
         self.entries: list[tuple[str, str]] = []
         self.placement = ""
@@ -340,6 +349,7 @@ class _FamilyBuilder(SiteBuilder):
             mine = [self.redirect(host, p, self.farm_target(rng, homes, farm)) for p in paths]
             self.link(home, [*mine, *rng.sample(self.popular(), CAMOUFLAGE_LINKS)])
             self.spam += [home, *mine]
+            self.doorway_urls += [home, *mine]
             door_homes.append(home)
             doorways += mine
         sources = self.entry_sources(NEAR, ENTRY_LINKS, rng)
@@ -353,6 +363,7 @@ class _FamilyBuilder(SiteBuilder):
                 path = f"{PAGE_DIR}{self.next_free(host)}.html"
                 target = self.redirect(host, path, self.farm_target(rng, homes, farm))
                 self.spam.append(target)
+                self.doorway_urls.append(target)
             else:
                 target = linked[k - PLANTED_DOORWAYS]
             self.link(source, [target])
@@ -417,4 +428,4 @@ class _FamilyBuilder(SiteBuilder):
                            seeds=list(self.crawl_seeds), site_hosts=list(self.site_hosts),
                            farm_hosts={h for h, all_spam in hosts.items() if all_spam})
         return LabelledWeb(name, self.spec.seed, web, spam, frozenset(self.cluster),
-                           tuple(self.entries), self.placement)
+                           tuple(self.entries), self.placement, frozenset(self.doorway_urls))

@@ -253,6 +253,24 @@ def test_doorways_are_the_only_way_into_their_farm(webs: dict[str, adv.LabelledW
                for u in planted)
 
 
+def test_the_farm_is_the_spam_but_the_doorways(webs: dict[str, adv.LabelledWeb]) -> None:
+    """The spam share the targets hold a crawl to counts the farm: the doorways (their
+    hosts' pages and the planted ones) are spam that any order fetches when it meets them;
+    following them into the farm is what a defence must avoid. Elsewhere farm == spam."""
+    for name, lw in webs.items():
+        if name != adv.DOORWAYS:
+            assert lw.farm == lw.spam and not lw.doorways
+    lw = webs[adv.DOORWAYS]
+    pages = lw.web.pages
+    redirects = {u for u in lw.spam if pages[u].location is not None}
+    homes = {u for u in lw.spam if pages[u].location is None
+             and any(ln.url in redirects for ln in pages[u].links)}
+    assert len(homes) == adv.DOORWAY_HOSTS
+    assert lw.doorways == redirects | homes and lw.doorways <= lw.spam
+    assert len(lw.farm) == adv.FARM_DOMAINS * adv.DOORWAY_FARM_PAGES
+    assert all(pages[u].location is None for u in lw.farm)
+
+
 async def test_doorways_answer_3xx_into_the_farm_over_loopback(
         webs: dict[str, adv.LabelledWeb]) -> None:
     """Served by the real server: each doorway answers 301 or 302 whose Location
@@ -414,7 +432,8 @@ def test_shares_counts_and_budgets_by_hand() -> None:
 def result(spam20: tuple[float, float], spam40: tuple[float, float], gap: float | None,
            cluster: tuple[int, int], cluster_pages: int = 10) -> dict[str, Any]:
     def b(s: tuple[float, float]) -> dict[str, Any]:
-        return {"spam_share": {"sluice": s[0], "bfs": s[1], "random": 0.2}, "gap_closed": gap}
+        share = {"sluice": s[0], "bfs": s[1], "random": 0.2}
+        return {"farm_share": share, "spam_share": share, "gap_closed": gap}
     return {"budgets": {"20%": b(spam20), "40%": b(spam40)}, "cluster_pages": cluster_pages,
             "cluster_pages_in_first_40%": {"sluice": cluster[0], "bfs": cluster[1]}}
 

@@ -143,6 +143,7 @@ def score(lw: LabelledWeb, order: Sequence[str], seed: int) -> dict[str, Any]:
         mass["omniscient"] = omniscient_value(value, bfs, k) / total
         budgets[label(b)] = {
             "pages": k,
+            "farm_share": {n: round(share_in(o, k, lw.farm), 4) for n, o in orders.items()},
             "spam_share": {n: round(share_in(o, k, lw.spam), 4) for n, o in orders.items()},
             "value": {n: round(v, 4) for n, v in mass.items()},
             "gap_closed": _round(gap_closed(mass["sluice"], mass["bfs"], mass["omniscient"]), 3),
@@ -151,7 +152,7 @@ def score(lw: LabelledWeb, order: Sequence[str], seed: int) -> dict[str, Any]:
     best = sorted(bfs, key=lambda u: -value[u])
     out: dict[str, Any] = {
         "web": lw.name, "seed": lw.seed, "pages": len(web.pages), "reachable": reachable,
-        "spam_pages": len(lw.spam), "cluster_pages": len(lw.cluster),
+        "spam_pages": len(lw.spam), "farm_pages": len(lw.farm), "cluster_pages": len(lw.cluster),
         "spam_entry_links": len(lw.entries), "entry_placement": lw.placement or None,
         "fetched": len(order),
         "budgets": budgets,
@@ -177,8 +178,8 @@ def targets(res: dict[str, Any]) -> dict[str, Any]:
     """The targets a spam defence must meet, pass or fail, for one result (or medians)."""
     out: dict[str, Any] = {}
     for b in SPAM_BUDGETS:
-        s = res["budgets"][label(b)]["spam_share"]
-        out[f"spam_share_{label(b)}_at_most_third_of_bfs"] = (
+        s = res["budgets"][label(b)]["farm_share"]
+        out[f"farm_share_{label(b)}_at_most_third_of_bfs"] = (
             s["sluice"] is not None and s["bfs"] is not None
             and s["sluice"] <= SPAM_FACTOR * s["bfs"] + 1e-12)
     gap = res["budgets"][label(GAP_BUDGET)]["gap_closed"]
@@ -341,11 +342,14 @@ def table_row(res: dict[str, Any]) -> str:
     c = res[f"cluster_pages_in_first_{label(CLUSTER_BUDGET)}"]
     demo = f" demo2000 {res['demo_budget']['spam_share']:.3f}" if "demo_budget" in res else ""
     gap = b20["gap_closed"]
+    doors = ""  # spam with the doorways, where they differ from the farm
+    if res.get("farm_pages") != res["spam_pages"]:
+        doors = f" all-spam20 {b20['spam_share']['sluice']:.3f}/{b20['spam_share']['bfs']:.3f}"
     return (f"{res['web']:<15} {str(res['seed']).replace('median of ', 'med '):>6}  "
-            f"spam20 {b20['spam_share']['sluice']:.3f}/{b20['spam_share']['bfs']:.3f}  "
-            f"spam40 {b40['spam_share']['sluice']:.3f}/{b40['spam_share']['bfs']:.3f}  "
+            f"farm20 {b20['farm_share']['sluice']:.3f}/{b20['farm_share']['bfs']:.3f}  "
+            f"farm40 {b40['farm_share']['sluice']:.3f}/{b40['farm_share']['bfs']:.3f}  "
             f"gap20 {'-' if gap is None else f'{gap:.2f}'}  "
-            f"cluster40 {c['sluice']}/{c['bfs']}{demo}  "
+            f"cluster40 {c['sluice']}/{c['bfs']}{demo}{doors}  "
             f"{'PASS' if res['targets']['pass'] else 'FAIL'}")
 
 
