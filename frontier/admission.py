@@ -165,12 +165,15 @@ class Admission:
         for source_key, targets in links.items():
             known = self.store.leased_trust(source_key)
             trust = given.get(source_key, known[0] if known else None)
-            out_degree = max(TRUST_SPLIT_MIN_HOSTS, len(targets), known[1] if known else 0)
+            domain = _domain_of(source_key)
+            # out-linked hosts of other registrable domains only: the reciprocity of Wu &
+            # Davison counts domains, and a domain's own hosts get no share of its trust
+            foreign = {key for key in targets if _domain_of(key) != domain}
+            out_degree = max(TRUST_SPLIT_MIN_HOSTS, len(foreign), known[1] if known else 0)
             # only a trusted host hands trust on (a farm cannot raise itself)
             share = damping * trust / out_degree if trust and trust >= threshold else 0.0
             trusted = None if trust is None else trust >= threshold
             unvouched = (0.0, None if trust is None else False)
-            domain = _domain_of(source_key)
             for key, partition in targets.items():
                 given_here = (share, trusted)
                 if partition < 0:  # only a redirect: trust within the domain only
@@ -192,10 +195,7 @@ class Admission:
             batch = batches.get(p)
             if batch is None:
                 batch = batches[p] = PartitionBatch()
-            # out-linked hosts of other registrable domains only: the reciprocity of Wu &
-            # Davison counts domains, and a domain's own hosts share no trust
-            batch.out_links.setdefault(source_key, set()).update(
-                key for key in targets if _domain_of(key) != domain)
+            batch.out_links.setdefault(source_key, set()).update(foreign)
 
     def _remember(self, raw: str) -> tuple[str, str, int] | str:
         facts = self._facts
