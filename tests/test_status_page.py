@@ -34,6 +34,7 @@ from frontier.daemon import Daemon, serve_admin
 from frontier.host_table import read_hosts
 from frontier.job import Job, admit_seeds, open_job
 from frontier.metrics import WorkerMetrics
+from frontier.mirrors import MIRROR_REASON, MirrorHosts
 from frontier.model import Candidate, Completion, Outcome
 from frontier.redis_client import connect
 from frontier.robots import RobotsFetchResult
@@ -59,6 +60,8 @@ WINDOW = (1280, 900)
 HOSTILE = ('<script>document.title="owned"</script>'
            '<img src=x id=injected onerror="document.title=\'owned\'">')
 PNG_SIGNATURE = b"\x89PNG\r\n\x1a\n"  # PNG (ISO/IEC 15948, RFC 2083 s.3.1)
+MIRROR = "mirror-of-a-site.test"
+MIRROR_ADMITTED, MIRROR_COMPARED, MIRROR_SHARED = 20, 12, 10  # 20: priority.host_budget_base
 
 
 def chromium() -> str:
@@ -169,6 +172,7 @@ async def crawled(redis_server: RedisServer,
                     worker = Worker(job.store, job.admission, tmp / "out",
                                     metrics=WorkerMetrics(CollectorRegistry()), drain=True)
                     await asyncio.wait_for(worker.run(), CRAWL_TIMEOUT_S)
+                    original = await add_mirror(job, web.seeds[0])
                     await asyncio.sleep(1.0)  # two more samples of the finished crawl
                     screenshot = tmp / "status-page.png"
                     await run_chromium(f"{base}/", f"--screenshot={screenshot}",
@@ -178,13 +182,30 @@ async def crawled(redis_server: RedisServer,
                         assert r.status == 200
                         status = await r.json()
                     yield {"base": base, "status": status, "paused": paused, "worker": worker,
-                           "screenshot": screenshot, "server": server, "job": job}
+                           "screenshot": screenshot, "server": server, "job": job,
+                           "original": original}
             finally:
                 stop.set()
                 await loops
                 await runner.cleanup()
     finally:
         await server.stop()
+
+
+async def add_mirror(job: Job, seed: str) -> str:
+    """A host of the crawl's scope with ``MIRROR_ADMITTED`` URLs queued, of which
+    ``MIRROR_COMPARED`` pages were compared and ``MIRROR_SHARED`` copy pages of the seed's
+    host (the mirror script's evidence, recorded as the workers record it). Returns the
+    seed's host, the one it copies."""
+    original = host_of(seed)
+    result = await job.admission.admit(
+        [Candidate(f"http://{MIRROR}/p{i}.html", depth=1) for i in range(MIRROR_ADMITTED)])
+    assert result.new == MIRROR_ADMITTED
+    pages = [(MIRROR, f"http://{MIRROR}/p{i}.html",
+              f"http://{original}/c{i}.html" if i < MIRROR_SHARED else None)
+             for i in range(MIRROR_COMPARED)]
+    assert await MirrorHosts(job.store).record(pages) == {MIRROR}
+    return original
 
 
 async def add_hostile_text(job: Job) -> None:
@@ -221,6 +242,15 @@ async def test_status_json_describes_the_crawl(crawled: dict[str, Any]) -> None:
     # (RFC 9309 s.2.3.1: 2xx rules, 4xx allow all, 5xx disallow all)
     assert s["robots"]["policies"].get("rules", 0) > 0
     assert s["robots"]["policies"].get("allow_all", 0) > 0
+    # the mirror host (frontier/scripts/mirror.lua: 10 of 12 pages shared >= 0.6 of them,
+    # so a mirror; it may hold its 2 new pages + the slack; the rest of its queue is cut)
+    limit = MIRROR_COMPARED - MIRROR_SHARED + load_settings(None, {}).dedupe.mirror_slack
+    assert s["mirrors"] == {"count": 1, "hosts": [{
+        "host": MIRROR, "mirror_of": crawled["original"], "pages": MIRROR_COMPARED,
+        "copies": MIRROR_SHARED, "new_pages": MIRROR_COMPARED - MIRROR_SHARED,
+        "share": MIRROR_SHARED / MIRROR_COMPARED, "limit": limit,
+        "admitted": MIRROR_ADMITTED}]}
+    assert s["reasons"][f"excluded:{MIRROR_REASON}"] == MIRROR_ADMITTED - limit
 
 
 async def test_browser_shows_counts_budget_and_the_paused_host(crawled: dict[str, Any]) -> None:
@@ -243,6 +273,22 @@ async def test_browser_shows_counts_budget_and_the_paused_host(crawled: dict[str
     assert "live" in tree.css_first("#live").text()
     robots = dict(cell_texts(tree, "robots"))
     assert robots["rules (2xx)"] == f"{s['robots']['policies'].get('rules', 0):,}"
+
+
+async def test_browser_shows_the_mirror_hosts(crawled: dict[str, Any]) -> None:
+    tree = await dump_dom(crawled["base"] + "/")
+    s = crawled["status"]
+    header = [th.text() for th in tree.css("#mirrors th")]
+    assert header == ["mirror host", "copies pages of", "pages compared", "shared", "share",
+                      "may hold (URLs)", "admitted"]
+    [row] = s["mirrors"]["hosts"]
+    share = f"{round(100 * MIRROR_SHARED / MIRROR_COMPARED)}%"
+    assert cell_texts(tree, "mirrors") == [[
+        MIRROR, crawled["original"], str(MIRROR_COMPARED), str(MIRROR_SHARED), share,
+        str(row["limit"]), str(MIRROR_ADMITTED)]]
+    cut = s["reasons"][f"excluded:{MIRROR_REASON}"]
+    assert cut > 0
+    assert tree.css_first("#mirrors-note").text() == f"1 found · {cut} URLs cut as {MIRROR_REASON}"
 
 
 async def test_text_from_the_web_is_shown_as_text(crawled: dict[str, Any]) -> None:

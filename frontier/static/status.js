@@ -9,6 +9,7 @@
   const STALE_AFTER_MS = 3 * REFRESH_MS;
   const SVG = "http://www.w3.org/2000/svg";
   const STATES = ["admitted", "queued", "leased", "fetched", "failed", "excluded", "dead"];
+  const MIRROR_REASON = "mirror_host";  // frontier/mirrors.py MIRROR_REASON
   let lastOk = 0;
 
   const $ = (id) => document.getElementById(id);
@@ -190,6 +191,21 @@
          (robots.failures || []).map((f) => [f.url, f.status ? "HTTP " + f.status : f.error,
                                              ago(now - f.at)]),
          "none");
+
+    // mirror hosts (frontier/mirrors.py): pages compared, those shared with other hosts,
+    // and the URLs a mirror may hold (its new pages plus the slack); the cut is job-wide
+    const m = s.mirrors || {};
+    const mirrors = m.hosts || [];
+    const cut = (s.reasons || {})["excluded:" + MIRROR_REASON] || 0;
+    text($("mirrors-note"), `${num(m.count || 0)} found · ${num(cut)} URLs cut as ` +
+      MIRROR_REASON + (m.count > mirrors.length ? ` · the first ${num(mirrors.length)} shown` : ""));
+    fill($("mirrors"), ["mirror host", "copies pages of", {text: "pages compared", num: true},
+                        {text: "shared", num: true}, {text: "share", num: true},
+                        {text: "may hold (URLs)", num: true}, {text: "admitted", num: true}],
+         mirrors.map((r) => [r.host, r.mirror_of || "–", num(r.pages), num(r.copies),
+                             typeof r.share === "number" ? num(100 * r.share) + "%" : "–",
+                             num(r.limit), num(r.admitted)]),
+         "no host found to mirror another");
   }
 
   function showLive() {
