@@ -131,8 +131,9 @@ class AdminClient:
                               "counts (is this a sluice admin API?)")
         self._same_job(job, data.get("job"))
         out = {k: data[k] for k in STATUS_KEYS}
-        if "mirrors" in data:  # mirror hosts (an older API has none)
-            out["mirrors"] = data["mirrors"]
+        for key in ("mirrors", "revisits"):  # mirror hosts, revisits (an older API has none)
+            if key in data:
+                out[key] = data[key]
         return out
 
     async def check_job(self, job: str | None) -> None:
