@@ -197,6 +197,15 @@ class Admission:
                 batch = batches[p] = PartitionBatch()
             batch.out_links.setdefault(source_key, set()).update(foreign)
 
+    def locate(self, raw: str) -> tuple[str, str] | None:
+        """(politeness key, canonical URL) of an offered URL, None if it is refused; for
+        the ip key, the host's address as resolved by an earlier admit."""
+        fact = self._facts.get(raw) or self._remember(raw)
+        if type(fact) is str:
+            return None
+        url, host, _ = fact
+        return (self._places.get(host) or self._place(host))[0], url
+
     def _remember(self, raw: str) -> tuple[str, str, int] | str:
         facts = self._facts
         if len(facts) >= URL_MEMO_SIZE:

@@ -1,23 +1,25 @@
 """A fetch worker's part in revisits (``revisit.enabled``): the stored validators of the
 pages it leases (for conditional GETs, RFC 9110 s.13.1.2 and s.13.1.3), what each fetch
 showed, the record of it sent in the pipeline of the lease's completion, and pages
-whose revisit time has come sent back to their queues (at most once a second).
+whose revisit time has come sent back to their queues (at most once a second), and
+pages a sitemap lists with a ``<lastmod>`` after their last fetch made due.
 """
 
 from __future__ import annotations
 
 import logging
 import time
-from collections.abc import Callable, Sequence
+from collections.abc import Callable, Iterable, Sequence
 from datetime import UTC, datetime
 
 from frontier.digests import Capture, PayloadDigestIndex
 from frontier.exceptions import StoreError
-from frontier.model import Completion, Lease, Outcome
+from frontier.model import Candidate, Completion, Lease, Outcome
 from frontier.revisit import (
     RevisitState, conditional_headers, parse_http_date, short_digest, usable_etag)
 from frontier.revisit_store import Observation, RevisitStore
 from frontier.scripts import ScriptCall
+from frontier.sitemaps import SitemapCandidate
 from frontier.store import FrontierStore
 
 log = logging.getLogger(__name__)
@@ -28,6 +30,9 @@ MEMORY = 100_000  # leases whose state a worker keeps at most (cleared when full
 
 Header = Callable[[str], "str | None"]
 """A response's header lookup by name (any case)."""
+
+Locate = Callable[[str], "tuple[str, str] | None"]
+"""An offered URL's (politeness key, canonical URL), None if refused (Admission.locate)."""
 
 
 class WorkerRevisits:
@@ -49,6 +54,25 @@ class WorkerRevisits:
             return 0
         self._released_at = now
         return await self.store.release_due()
+
+    async def listed(self, candidates: Iterable[Candidate], locate: Locate) -> int:
+        """Sitemap candidates with a ``<lastmod>`` (sitemaps.org 0.9: the date the page
+        was last modified): a tracked page modified after its last fetch is made due now,
+        within the min interval (RevisitStore.sooner). A W3C date without a time counts
+        as its first moment. A Redis failure loses the hint only: the page keeps its
+        schedule. How many pages were made due sooner."""
+        listed = []
+        for c in candidates:
+            lastmod = c.lastmod if isinstance(c, SitemapCandidate) else None
+            if lastmod is not None and (place := locate(c.url)) is not None:
+                listed.append((place[0], place[1], int(lastmod.timestamp())))
+        if not listed:
+            return 0
+        try:
+            return await self.store.sooner(listed)
+        except StoreError as exc:
+            log.warning("could not move %d sitemap-listed pages sooner: %s", len(listed), exc)
+            return 0
 
     async def leased(self, leases: Sequence[Lease]) -> None:
         """Read the stored state of newly leased pages (one round trip)."""

@@ -5,7 +5,8 @@ Each politeness key's pages keep their state in a HASH of its partition
 url' -> when due). ``frontier/scripts/revisit.lua`` changes both, one partition a call:
 ``record`` after a fetch (in the same pipeline as the lease's completion),
 ``release`` when pages come due (they go back to their hosts' queues), ``drop`` when a
-revisit ended otherwise than fetched.
+revisit ended otherwise than fetched, ``sooner`` when a sitemap's ``<lastmod>`` says a
+page changed after its last fetch.
 """
 
 from __future__ import annotations
@@ -19,7 +20,7 @@ from frontier.revisit import RevisitState, short_digest
 from frontier.scripts import ScriptCall, run_many, script_source
 from frontier.store import FrontierStore, redis_boundary
 
-RELEASE_BATCH = 500  # due pages read per partition and release call
+RELEASE_BATCH = 500  # pages per partition and release (or sooner) call
 SAMPLE = 256  # pages per partition sampled for the estimated freshness
 
 
@@ -124,6 +125,31 @@ class RevisitStore:
                 args += (host, url)
             calls.append((self.script, keys, args))
         async with redis_boundary("revisit drop"):
+            return sum(int(r) for r in await run_many(self.redis, calls))
+
+    async def sooner(self, listed: Iterable[tuple[str, str, int]],
+                     now: int | None = None) -> int:
+        """Make tracked pages (host, url, lastmod epoch s) whose lastmod is after their
+        last fetch due now, or at their last fetch + ``min_interval_s`` if that is later;
+        how many were moved sooner. Untracked pages and pages already back in their
+        queues are left alone."""
+        t = self.store._now(now)
+        by_part: dict[int, list[tuple[str, str, int]]] = {}
+        for host, url, lastmod in listed:
+            by_part.setdefault(self.keys.part_for(host).index, []).append((host, url, lastmod))
+        calls = []
+        for p, items in by_part.items():
+            pk = self.keys.part(p)
+            for start in range(0, len(items), RELEASE_BATCH):  # short script calls
+                chunk = items[start:start + RELEASE_BATCH]
+                keys, args = self._head(pk, "sooner", t, len(chunk))
+                for host, url, lastmod in chunk:
+                    keys += self._item_keys(pk, host)
+                    args += (host, url, lastmod)
+                calls.append((self.script, keys, args))
+        if not calls:
+            return 0
+        async with redis_boundary("revisit sooner"):
             return sum(int(r) for r in await run_many(self.redis, calls))
 
     async def release_due(self, now: int | None = None) -> int:

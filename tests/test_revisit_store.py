@@ -170,3 +170,77 @@ async def test_status_figures_and_metrics(make_store: StoreFactory, clock: Clock
     assert 'sluice_revisit_freshness{job="t"} 0.577' in text
     off = make_store(name="t2")
     assert await read_revisits(off) is None
+
+
+# sitemaps.org protocol 0.9, <lastmod> (quoted from memory): "The date of last
+# modification of the file. This date should be in W3C Datetime format. This format allows
+# you to omit the time portion, if desired, and use YYYY-MM-DD." A lastmod after a tracked
+# page's last fetch says it changed since: the page is made due now, but no sooner than its
+# last fetch + min_interval_s (a bound of docs/revisits.md). A date without a time is read
+# as its first moment (W3C Datetime names no moment within the day): our choice.
+async def test_a_newer_sitemap_lastmod_makes_a_revisit_due(make_store: StoreFactory,
+                                                          clock: Clock) -> None:
+    from datetime import UTC, datetime
+
+    from frontier.digests import PayloadDigestIndex
+    from frontier.revisit_fetch import WorkerRevisits
+    from frontier.sitemaps import listed, parse_sitemap
+    from synthweb.sitemaps import urlset
+
+    def at(text: str) -> float:
+        return datetime.fromisoformat(text).timestamp()
+
+    store = make_store(revisit={**SETTINGS["revisit"], "min_interval_s": 3600.0},
+                       politeness=SETTINGS["politeness"])
+    rv = RevisitStore(store)
+    worker = WorkerRevisits(store, PayloadDigestIndex(store.redis, store.keys.payload_digests))
+    admission = Admission(store, Scope(allow=[], include=[], exclude=[], max_depth=None))
+    pages = [f"http://a.test/{i}" for i in range(4)]
+    await admission.admit([Candidate(u) for u in pages])
+    clock.advance(at("2026-03-02T10:00:00+00:00") - clock.t)
+    await fetch_all(store, rv, clock, not_modified=False, digest="sha1:AAA")
+    pk = store.keys.part_for("a.test")
+
+    async def due_at() -> dict[str, str]:
+        out = {}
+        for u in pages:
+            ms = await store.redis.zscore(pk.revisits, f"a.test {u}")
+            out[u[-1]] = "-" if ms is None else datetime.fromtimestamp(
+                ms / 1000, UTC).strftime("%H:%M")
+        return out
+
+    async def sitemap_lists(entries: list[tuple[str, str | None]]) -> int:
+        parsed = parse_sitemap(urlset(entries), 50_000)
+        assert parsed.error is None and len(parsed.entries) == len(entries)
+        return await worker.listed([listed(e.loc, 1, 0.1, 0.0, "a.test", e.lastmod)
+                                    for e in parsed.entries], admission.locate)
+
+    # four pages on a host with 24 revisits a day: each is due 4 h after its fetch
+    assert await due_at() == {"0": "14:00", "1": "14:00", "2": "14:00", "3": "14:00"}
+    clock.advance(1800)  # 10:30
+    moved = await sitemap_lists([
+        ("http://a.test/0", "2026-03-02T10:20:00+00:00"),  # changed after the 10:00 fetch
+        ("http://a.test/1", "2026-03-02T10:59:00+01:00"),  # 09:59 UTC: before it
+        ("http://a.test/2", "2026-03-02"),  # the day's first moment: before it
+        ("http://a.test/3", None),  # no lastmod: nothing known
+        ("http://a.test/9", "2026-03-02T10:25:00Z"),  # never fetched: not tracked
+    ])
+    assert moved == 1
+    # due at 10:00 + the 1 h minimum interval, not at once; the others keep their time
+    assert await due_at() == {"0": "11:00", "1": "14:00", "2": "14:00", "3": "14:00"}
+    assert await store.redis.hget(pk.revisit_state("a.test"), "http://a.test/9") is None
+    clock.advance(1799)
+    assert await rv.release_due() == 0
+    clock.advance(1)  # 11:00
+    assert await rv.release_due() == 1
+    # released and not fetched again: a newer lastmod does not queue it twice
+    assert await sitemap_lists([("http://a.test/0", "2026-03-02T10:50:00Z")]) == 0
+    clock.advance(5400)  # 12:30, past the minimum interval: due at once
+    assert await sitemap_lists([("http://a.test/1", "2026-03-02T12:00:00Z")]) == 1
+    assert (await due_at())["1"] == "12:30"
+    assert await rv.release_due() == 1
+    again = await fetch_all(store, rv, clock, not_modified=False, digest="sha1:BBB")
+    assert sorted(lz.url for lz in again) == pages[:2]
+    counts = await store.counts()
+    # four admissions and two revisits, each counted as an admission and a fetch
+    assert counts.balanced and (counts.admitted, counts.fetched) == (6, 6)

@@ -847,6 +847,8 @@ class Worker:
                 if links or linked:
                     self.metrics.count_admitted(await self.admission.admit(links, linked=linked))
                     self.metrics.links.inc(len(links) + len(linked))
+                if self.revisits is not None and links:  # a sitemap's newer <lastmod>
+                    await self.revisits.listed(links, self.admission.locate)
                 # the lines go to the log (flushed, fsynced) before the completions: a
                 # worker killed between the two leaves a line for a page the frontier
                 # then has fetched again (at least once), never a page without a line

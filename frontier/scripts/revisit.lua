@@ -2,7 +2,7 @@
 -- KEYS[1] counts   KEYS[2] revisits (schedule ZSET 'host url' -> due ms)
 -- KEYS[3] due   KEYS[4] ready   KEYS[5] prio   KEYS[6] claims
 -- KEYS[7 ..] per item i (0-based): host hash, revisit state hash, hot ZSET, cold LIST (4 keys)
--- ARGV[1] op: 'record', 'release' or 'drop'   ARGV[2] now (ms)
+-- ARGV[1] op: 'record', 'release', 'drop' or 'sooner'   ARGV[2] now (ms)
 -- ARGV[3] min interval (s)   ARGV[4] max interval (s)   ARGV[5] host revisits a day
 -- ARGV[6] hot capacity   ARGV[7] n items
 -- record, 7 arguments an item: host, url, score, kind ('200': a full response, '304': not
@@ -14,6 +14,11 @@
 --   up; a blocked host's page waits a max interval more. Returns the pages queued.
 -- drop, 2 arguments an item: host, url. A page whose revisit ended otherwise than
 --   fetched (gone, refused) is no longer tracked. Returns the pages dropped.
+-- sooner, 3 arguments an item: host, url, lastmod (epoch s, a sitemap's <lastmod>). A
+--   tracked page waiting in the schedule whose lastmod is after its last fetch becomes
+--   due now, or at its last fetch + the min interval if that is later; never later than
+--   it was. A page not tracked, or released and not fetched again yet, is left alone.
+--   Returns the pages made due sooner.
 -- State (frontier/revisit.py RevisitState): 'visits changes first last interval capture
 -- digest score etag lastmod', times in s, '-' for none. Host hash fields: rv_n (pages
 -- tracked), rv_load (their scheduled revisits a day), rv_mu (the host's multiplier, s).
@@ -140,8 +145,8 @@ local count = 0
 local touched = {}
 for i = 0, n - 1 do
   local hk, sk, hot, cold = KEYS[7 + 4 * i], KEYS[8 + 4 * i], KEYS[9 + 4 * i], KEYS[10 + 4 * i]
-  local host, url = ARGV[a], ARGV[a + 1]
-  a = a + 2
+  local host, url, lastmod = ARGV[a], ARGV[a + 1], ARGV[a + 2]
+  a = a + (op == 'sooner' and 3 or 2)
   local member = host .. ' ' .. url
   local raw = redis.call('HGET', sk, url)
   if op == 'release' then
@@ -170,6 +175,16 @@ for i = 0, n - 1 do
     if s.ivl > 0 then load = math.max(0, load - DAY / s.ivl) end
     redis.call('HSET', hk, 'rv_n', math.max(0, tonumber(h[1] or '1') - 1), 'rv_load', tostring(load))
     count = count + 1
+  elseif op == 'sooner' and raw then
+    local at = redis.call('ZSCORE', KEYS[2], member)
+    local t1, changed_at = unpack_state(raw).t1, tonumber(lastmod)
+    if at and changed_at and changed_at > t1 then
+      local due = math.max(now, (t1 + lo) * 1000)
+      if due < tonumber(at) then
+        redis.call('ZADD', KEYS[2], due, member)
+        count = count + 1
+      end
+    end
   end
 end
 if op == 'release' and count > 0 then
