@@ -19,6 +19,36 @@ def test_example_job_file_loads() -> None:
     assert s.politeness.min_delay_s >= 1.0  # polite by default
 
 
+def test_example_job_file_documents_sitemaps_revisit_and_focus() -> None:
+    """The example names every [sitemaps] and [revisit] key with its default (so it
+    crawls as a job without them), and its commented [focus], uncommented, is a valid
+    [focus] naming every key, with the defaults where it does not choose the subject."""
+    import tomllib
+
+    from frontier.settings import FocusSettings, RevisitSettings, SitemapSettings
+
+    text = EXAMPLE.read_text()
+    data, loaded = tomllib.loads(text), load_settings(EXAMPLE)
+    for section, model in (("sitemaps", SitemapSettings), ("revisit", RevisitSettings)):
+        assert set(data[section]) == set(model.model_fields), section
+        assert getattr(loaded, section) == model(), section
+    lines = text.splitlines()
+    start = next(i for i, line in enumerate(lines) if line.startswith("# [focus]"))
+    block = []
+    for line in lines[start:]:
+        if not line.startswith("#"):
+            break
+        block.append(line[2:])
+    focus = tomllib.loads("\n".join(block))["focus"]
+    assert set(focus) == set(FocusSettings.model_fields)
+    model = FocusSettings.model_validate(focus)
+    subject = {"examples", "background", "terms"}
+    default = FocusSettings(terms={"lantern": 1.0})
+    assert {k: getattr(model, k) for k in focus if k not in subject} == {
+        k: getattr(default, k) for k in focus if k not in subject}
+    assert loaded.focus is None  # commented out: link importance alone
+
+
 def test_precedence_file_env_flags(tmp_path: Path, monkeypatch: pytest.MonkeyPatch) -> None:
     job = tmp_path / "job.toml"
     job.write_text('name = "filejob"\n[politeness]\nmin_delay_s = 3.0\n[fetch]\nconcurrency = 5\n')
