@@ -8,6 +8,8 @@ back with warcio (ISO 28500), the frontier's books come from ``sluice status``.
 
 from __future__ import annotations
 
+import contextlib
+import io
 import json
 import os
 import signal
@@ -15,14 +17,17 @@ import time
 from pathlib import Path
 
 import pytest
+from hypothesis import given
+from hypothesis import strategies as st
 
+from frontier.cli import parser as cli_parser
 from frontier.embedded import process_alive
 from tests.faultkit import (
     Proc, WebThread, assert_clean, audit, child_pids, job_settings, make_web, run_json,
     sluice, wait_until, write_job,
 )
 
-pytestmark = [pytest.mark.faults, pytest.mark.timeout(420)]
+FAULTS = [pytest.mark.faults, pytest.mark.timeout(420)]
 
 BATCH = 16  # lease.batch in job_settings: what one worker process can hold
 PROGRESS_S = 120.0
@@ -53,6 +58,8 @@ def warc_pids(out: Path) -> set[str]:
     return {p.name.removesuffix(".warc.gz").rsplit("-", 1)[1] for p in out.rglob("*.warc.gz")}
 
 
+@FAULTS[0]
+@FAULTS[1]
 def test_one_worker_process_killed_the_others_go_on(tmp_path: Path) -> None:
     with WebThread(make_web(seed=21, hosts=16, pages=600)) as web:
         job = write_job(tmp_path / "job.toml", job_settings("procs-kill", web))
@@ -90,6 +97,8 @@ def test_one_worker_process_killed_the_others_go_on(tmp_path: Path) -> None:
     assert [p.name for p in out.rglob("fetches.jsonl")] == ["fetches.jsonl"]
 
 
+@FAULTS[0]
+@FAULTS[1]
 def test_sigterm_stops_every_worker_process_and_the_same_command_resumes(
         tmp_path: Path) -> None:
     with WebThread(make_web(seed=22, hosts=16, pages=600)) as web:
@@ -128,3 +137,37 @@ def test_sigterm_stops_every_worker_process_and_the_same_command_resumes(
     # the stop handed back every lease: nothing waits for a lease to expire
     assert mid["leased"] == 0 and mid["balanced"], mid
     assert_clean(fig)
+
+
+# -- the flags an operator types --------------------------------------------------------------
+
+COUNTS = st.one_of(
+    st.text(max_size=30),
+    st.lists(st.integers(-5, 100).map(str), min_size=1, max_size=5).map(",".join),
+)
+
+
+@pytest.mark.fuzz
+@given(text=COUNTS, command=st.sampled_from(["crawl", "worker", "bench"]))
+def test_any_processes_flag_is_a_count_or_a_one_line_usage_error(text: str, command: str
+                                                                  ) -> None:
+    """``--processes`` of crawl and worker (a count above 0) and of bench crawl (counts
+    1-64, comma-separated): a value, or exit status 2 with one line naming the flag."""
+    args = {"crawl": ["crawl", "--out", "o"],
+            "worker": ["worker", "--redis", "redis://127.0.0.1:1", "--job", "j", "--out", "o"],
+            "bench": ["bench", "crawl"]}[command]
+    err = io.StringIO()
+    try:
+        with contextlib.redirect_stderr(err):
+            parsed = cli_parser().parse_args([*args, "--processes", text])
+    except SystemExit as stop:
+        assert stop.code == 2
+        message = err.getvalue()
+        assert "--processes" in message and message.count("\n") == 1, message
+        return
+    value = parsed.processes
+    if command == "bench":
+        assert value == tuple(int(part) for part in text.split(","))
+        assert all(1 <= n <= 64 for n in value)
+    else:
+        assert isinstance(value, int) and value > 0
