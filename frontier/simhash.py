@@ -24,6 +24,9 @@ with a second sketch stored beside each fingerprint: the ``SKETCH_SIZE`` smalles
 ``RESEMBLANCE_THRESHOLD``. Distinct pages of one template can be a few bits apart in
 SimHash (even within 3 bits), but their shingle sets differ in all their own text,
 so their resemblance stays low: every candidate with both sketches is confirmed by it.
+The tables also return most fingerprints 7..10 bits away (they share a pair of blocks);
+those are kept as candidates too (``reach``, ``DEFAULT_REACH``), so a two-word edit in the
+tail of Charikar's distribution is still found, with the same tables and stored values.
 """
 
 from __future__ import annotations
@@ -62,6 +65,14 @@ DEFAULT_SKETCH_DISTANCE = 6
 """Candidates up to this many bits apart are confirmed by the resemblance sketch."""
 DEFAULT_SKETCH_BLOCKS = 8
 """Blocks for ``sketch_k`` = 6: tables keyed on every pair of blocks (16-bit keys)."""
+DEFAULT_REACH = 10
+"""Candidates the tables return are kept up to this many bits (``reach``): beyond
+``sketch_k`` the pigeonhole guarantees nothing, but a fingerprint 7..10 bits away still
+shares a pair of blocks most of the time (unless its differing bits touch 7 of the 8
+blocks: of uniformly spread bits, 2.7 % at 7 bits, 9.7 % at 8, 20 % at 9, 33 % at 10,
+counted by inclusion-exclusion), and its sketch decides. No table, key or stored value
+changes: the tables' answer is read further, and the extra candidates' URLs and sketches
+come in the same pipelined call as the others'."""
 SKETCH_SIZE = 64
 """s in Broder 1997: how many smallest shingle hashes a page keeps (4 bytes each)."""
 RESEMBLANCE_THRESHOLD = 0.85
@@ -284,8 +295,9 @@ class NearDuplicateIndex:
 
     Each fingerprint is added to one bucket set per table. Members are decimal strings
     of the signed 64-bit value. With ``sketch_k`` > k the tables reach ``sketch_k`` bits
-    and :meth:`match_pages` confirms a candidate beyond k bits only when the two pages'
-    resemblance sketches agree (Broder 1997); :meth:`find` and
+    (and return some candidates up to ``reach`` bits) and :meth:`match_pages` confirms a
+    candidate beyond k bits only when the two pages' resemblance sketches agree (Broder
+    1997); :meth:`find` and
     :meth:`check_and_add_many` answer within k bits only. Lookups are not atomic with
     adds: two workers adding near-duplicates at the same instant may both miss each
     other, which costs one extra stored page, never a lost one.
@@ -295,7 +307,8 @@ class NearDuplicateIndex:
                  page_key: PageKey | None = None, *,
                  sketch_k: int | None = DEFAULT_SKETCH_DISTANCE,
                  blocks: int | None = None,
-                 threshold: float = RESEMBLANCE_THRESHOLD) -> None:
+                 threshold: float = RESEMBLANCE_THRESHOLD,
+                 reach: int | None = DEFAULT_REACH) -> None:
         if k < 0:
             raise ValueError(f"k must be >= 0, got {k}")
         self.redis = redis
@@ -303,6 +316,9 @@ class NearDuplicateIndex:
         self.page_key = page_key  # where each fingerprint's first page is kept
         self.k = k
         self.sketch_k = k if sketch_k is None else max(k, sketch_k)
+        # the published index (no sketch) keeps what it guarantees: k bits
+        self.reach = self.sketch_k if self.sketch_k == k or reach is None else max(
+            self.sketch_k, reach)
         if blocks is None:
             blocks = self.sketch_k + 1 if self.sketch_k == k else max(
                 DEFAULT_SKETCH_BLOCKS, self.sketch_k + 1)
@@ -366,8 +382,9 @@ class NearDuplicateIndex:
         return out
 
     async def _candidates_many(self, fps: list[int]) -> list[list[int]]:
-        """Per fingerprint: stored (or earlier in the batch) fingerprints within
-        ``sketch_k`` bits, closest first; then the batch is stored."""
+        """Per fingerprint: stored (or earlier in the batch) fingerprints sharing a table
+        key, within ``reach`` bits (all of those within ``sketch_k``), closest first; then
+        the batch is stored."""
         if not fps:
             return []
         unsigned = [to_unsigned(fp) for fp in fps]
@@ -393,7 +410,7 @@ class NearDuplicateIndex:
             near = {e for table, value in zip(earlier_by_table, values)
                     for e in table.get(value, ())}
             ranked = sorted((hamming(fp, c), c) for c in stored | near)
-            out.append([c for d, c in ranked if d <= self.sketch_k])
+            out.append([c for d, c in ranked if d <= self.reach])
             for table, value in zip(earlier_by_table, values):
                 table.setdefault(value, []).append(fp)
         if not stored_already:
@@ -405,7 +422,7 @@ class NearDuplicateIndex:
         """For each page (fingerprint, URL): the stored fingerprint it is a near copy of
         and the URL of the page first stored with it, or None; then store the pages.
 
-        A candidate within ``sketch_k`` bits is a near copy when the two pages' estimated
+        A candidate within ``reach`` bits is a near copy when the two pages' estimated
         resemblance (Broder 1997) is at least ``threshold`` (both sketches known: a
         :class:`Fingerprint` from :func:`simhash64`), else when it is within k bits. A
         match whose page is the same URL is no match: a page fetched again (its first
