@@ -71,8 +71,9 @@ async def crawl(tmp_path: Path, redis_url: str, pages: dict[tuple[str, str], byt
     statuses: list[str] = []
     complete_many = FrontierStore.complete_many
 
-    async def spy(self: FrontierStore, completions: Any, now: Any = None) -> list[str]:
-        got = await complete_many(self, completions, now)
+    async def spy(self: FrontierStore, completions: Any, now: Any = None,
+                  **more: Any) -> list[str]:
+        got = await complete_many(self, completions, now, **more)
         statuses.extend(got)
         return got
 

@@ -225,8 +225,9 @@ async def test_a_slow_page_keeps_its_lease(
     statuses: list[str] = []
     complete_many = FrontierStore.complete_many
 
-    async def spy(self: FrontierStore, completions: Any, now: Any = None) -> list[str]:
-        got = await complete_many(self, completions, now)
+    async def spy(self: FrontierStore, completions: Any, now: Any = None,
+                  **more: Any) -> list[str]:
+        got = await complete_many(self, completions, now, **more)
         statuses.extend(got)
         return got
 
