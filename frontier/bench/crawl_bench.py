@@ -145,6 +145,15 @@ def _same_loop_run(main: Any) -> float:
     return run(main)
 
 
+def _redis_cpu_s(url: str) -> float:
+    """CPU seconds the Redis server at ``url`` has used (INFO cpu, user + system)."""
+    import redis
+
+    with redis.Redis.from_url(url) as client:
+        info = client.info("cpu")
+    return float(info["used_cpu_user"]) + float(info["used_cpu_sys"])
+
+
 def _children_cpu_s() -> float:
     """CPU seconds of this process's ended and reaped children (the worker processes)."""
     usage = resource.getrusage(resource.RUSAGE_CHILDREN)
@@ -169,6 +178,7 @@ def main(pages: int = 10_000, seed: int = 5, profile: bool = False,
 
     proc, port, seeds = start_web(int(pages * 1.2), seed)
     by_count: dict[int, tuple[list[float], list[float]]] = {n: ([], []) for n in processes}
+    redis_us: dict[int, list[float]] = {n: [] for n in processes}
     crawl_rates, cpu_us = by_count[processes[0]]
     bare_rates: dict[int, list[float]] = {c: [] for c in BARE_CONCURRENCIES}
     same_loop_rates: dict[int, list[float]] = {c: [] for c in BARE_CONCURRENCIES}
@@ -183,14 +193,17 @@ def main(pages: int = 10_000, seed: int = 5, profile: bool = False,
                     server.start()
                     try:
                         cpu_before = time.process_time() + _children_cpu_s()
+                        redis_before = _redis_cpu_s(server.url)
                         rate, urls, top = run(crawl(pages, port, seeds, Path(tmp) / f"out{i}-{n}",
                                                     server.url, profiled, n))
                         cpu = time.process_time() + _children_cpu_s() - cpu_before
+                        redis_cpu = _redis_cpu_s(server.url) - redis_before
                     finally:
                         server.stop()
                     if not profiled:
                         by_count[n][0].append(rate)
                         by_count[n][1].append(cpu / max(1, len(urls)) * 1e6)
+                        redis_us[n].append(redis_cpu / max(1, len(urls)) * 1e6)
                 if profiled:
                     break
                 for c in BARE_CONCURRENCIES:
@@ -219,6 +232,7 @@ def main(pages: int = 10_000, seed: int = 5, profile: bool = False,
             "crawl_pages_per_s": round(statistics.median(rates), 1),
             "ratio": round(statistics.median(rates) / bare_by[bare_c], 3),
             "cpu_us_per_page": round(statistics.median(cpus)),
+            "redis_cpu_us_per_page": round(statistics.median(redis_us[n])),
             "crawl_runs": [round(r, 1) for r in rates]} for n, (rates, cpus) in by_count.items()},
         "cores": os.cpu_count(),
         "shares_the_cores": "the synthetic web's server process and Redis run on the same "

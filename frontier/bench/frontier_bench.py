@@ -139,16 +139,18 @@ ADMIT_IN_FLIGHT = 3  # admit calls Redis works on while Python prepares the next
 LEASE_BATCH = 512
 LEASERS = 4  # concurrent lease+complete loops, like workers sharing one process
 TAIL_ROUNDS = 50  # stop the drain after this many rounds below a quarter of a full batch
+BENCH_TIMEOUT_S = 300.0  # socket timeout of the bench's Cluster clients
 
 
-async def admit_pipelined(admission: Admission, candidates: list[Candidate]) -> None:
+async def admit_pipelined(admission: Admission, candidates: list[Candidate],
+                          in_flight: int = ADMIT_IN_FLIGHT) -> None:
     """Prepare chunk i+1 in Python while Redis runs chunk i."""
     pending: set[asyncio.Task[Any]] = set()
     for start in range(0, len(candidates), ADMIT_CHUNK):
         batches = admission.prepare(candidates[start:start + ADMIT_CHUNK])
         pending.add(asyncio.create_task(admission.store.admit_batches(batches)))
         await asyncio.sleep(0)  # let the new task send its calls
-        if len(pending) >= ADMIT_IN_FLIGHT:
+        if len(pending) >= in_flight:
             finished, pending = await asyncio.wait(pending, return_when=asyncio.FIRST_COMPLETED)
             for task in finished:
                 task.result()
@@ -198,11 +200,18 @@ async def run_cluster(urls: int, hosts: int, exponent: float, seed: int, state: 
     settings = bench_settings(urls, state)
     with LoopbackCluster(state / "cluster", config=redis_tuning(settings),
                          appendonly=aof) as cluster:
-        client = connect("redis+cluster://" + cluster.url.split("://", 1)[1])
-        nodes = [connect(f"redis://{host}:{port}") for host, port in cluster.startup_nodes]
+        # a loaded machine can hold a reply back for seconds: a client that timed out tears
+        # down a connection its other calls share, so wait as long as the bench may
+        client = connect("redis+cluster://" + cluster.url.split("://", 1)[1],
+                         timeout_s=BENCH_TIMEOUT_S)
+        nodes = [connect(f"redis://{host}:{port}", timeout_s=BENCH_TIMEOUT_S)
+                 for host, port in cluster.startup_nodes]
         try:
+            # one admit at a time: redis-py's Cluster client tore down connections under
+            # several large admits at once ("'NoneType' object has no attribute
+            # 'writelines'", 500k URLs, three in flight)
             result = await phases(client, nodes, settings, urls, hosts, exponent, seed, limit,
-                                  lease_limit)
+                                  lease_limit, in_flight=1)
             return {"masters": len(nodes), "append_only_file": aof, **result}
         finally:
             await client.aclose()
@@ -212,7 +221,8 @@ async def run_cluster(urls: int, hosts: int, exponent: float, seed: int, state: 
 
 async def phases(client: Any, nodes: list[Any], settings: JobSettings, urls: int, hosts: int,
                  exponent: float, seed: int, limit: float,
-                 lease_limit: int | None = None) -> dict[str, Any]:
+                 lease_limit: int | None = None,
+                 in_flight: int = ADMIT_IN_FLIGHT) -> dict[str, Any]:
     """Admit ``urls`` URLs, then lease and complete them (the first ``lease_limit`` only,
     when given); the figures of both phases."""
     store = FrontierStore(client, settings)
@@ -229,7 +239,7 @@ async def phases(client: Any, nodes: list[Any], settings: JobSettings, urls: int
     segment = max(1, len(candidates) // SEGMENTS)
     for start in range(0, len(candidates), segment):
         s = time.perf_counter()
-        await admit_pipelined(admission, candidates[start:start + segment])
+        await admit_pipelined(admission, candidates[start:start + segment], in_flight)
         segment_rates.append(min(segment, len(candidates) - start) / (time.perf_counter() - s))
     admit_total_s = time.perf_counter() - t0
     admit_py_cpu = time.process_time() - cpu0
