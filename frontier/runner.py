@@ -27,6 +27,7 @@ import os
 import signal
 import subprocess
 import sys
+import threading
 import time
 from collections.abc import Callable
 from dataclasses import dataclass, field
@@ -111,13 +112,45 @@ class WorkerProcesses:
     procs: list[subprocess.Popen[bytes]] = field(default_factory=list)
     stops_sent: int = 0
     crashed: list[tuple[int, int]] = field(default_factory=list)  # (pid, exit status)
+    fault_message: str | None = None  # the first full-disk message of a child
+    relays: list[threading.Thread] = field(default_factory=list)
 
     def start(self) -> None:
         parent = os.getpid()
         for _ in range(self.count):
-            self.procs.append(subprocess.Popen(
+            proc = subprocess.Popen(
                 self.command, stdin=subprocess.DEVNULL, stdout=subprocess.PIPE,
-                preexec_fn=lambda: _child_setup(parent)))  # noqa: PLW1509 - main thread
+                stderr=subprocess.PIPE,
+                preexec_fn=lambda: _child_setup(parent))  # noqa: PLW1509 - main thread
+            self.procs.append(proc)
+            relay = threading.Thread(target=self._relay, args=(proc,), daemon=True)
+            relay.start()
+            self.relays.append(relay)
+
+    def _relay(self, proc: subprocess.Popen[bytes]) -> None:
+        """Pass a child's stderr on line by line, holding its own one-line messages
+        (``sluice: ...``) until it ends: children that stop on a full disk all say so, and
+        the operator reads it once (the first, raised by the parent as a DiskFault)."""
+        assert proc.stderr is not None
+        held: list[str] = []
+        for raw in iter(proc.stderr.readline, b""):
+            line = raw.decode(errors="replace")
+            if line.startswith("sluice: "):
+                held.append(line)
+            else:
+                sys.stderr.write(line)
+                sys.stderr.flush()
+        proc.stderr.close()
+        if proc.wait() == EXIT_DISK_FAULT and held:
+            if self.fault_message is None:
+                self.fault_message = held[-1].removeprefix("sluice: ").strip()
+            return
+        sys.stderr.writelines(held)
+        sys.stderr.flush()
+
+    def join_relays(self) -> None:
+        for relay in self.relays:
+            relay.join(timeout=5)
 
     def stop(self) -> None:
         """Pass one stop signal on to every child still running (a second call: the
@@ -137,6 +170,8 @@ class WorkerProcesses:
             code = p.poll()
             if code not in (None, 0) and all(pid != p.pid for pid, _ in self.crashed):
                 self.crashed.append((p.pid, code))
+                if code == EXIT_DISK_FAULT:  # its message comes once, from the parent
+                    continue
                 how = f"signal {-code}" if code < 0 else f"exit status {code}"
                 print(f"sluice: worker process {p.pid} ended ({how}); its leases return to "
                       "the frontier when they expire, the other processes go on",
@@ -192,9 +227,12 @@ async def run_worker_processes(command: list[str], count: int, grace_s: float) -
         await crew.wait(lambda: crew.stops_sent > 0, grace_s)
     finally:
         crew.kill_all()
+        crew.join_relays()
     print(json.dumps({"pages": crew.pages(), "processes": count,
                       "crashed": [pid for pid, _ in crew.crashed]}))
     if crew.disk_fault:
+        print(f"sluice: {crew.fault_message or 'a worker process found its output full'}",
+              file=sys.stderr, flush=True)
         return EXIT_DISK_FAULT
     if len(crew.crashed) == count:  # none ended well: the first one's status
         code = crew.crashed[0][1]
@@ -335,10 +373,12 @@ class _Children:
             await self.crew.wait(lambda: self.crew.stops_sent > 0, self.grace_s)
         finally:
             self.crew.kill_all()
+            self.crew.join_relays()
         if self.crew.disk_fault:
-            raise DiskFault(f"a worker process found {self.out} full or gone "
-                            "(its message is above); the others stopped and handed back what "
-                            "they held. Free space, then run the same command again to resume")
+            raise DiskFault(self.crew.fault_message or (
+                f"a worker process found {self.out} full or gone; the others stopped and "
+                "handed back what they held. Free space, then run the same command again "
+                "to resume"))
         return {"processes": self.crew.count,
                 "processes_crashed": [pid for pid, _ in self.crew.crashed]}
 
