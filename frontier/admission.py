@@ -18,7 +18,7 @@ from frontier.model import (
 from frontier.settings import JobSettings
 from frontier.sitemaps import MARK as SITEMAP_MARK
 from frontier.sitemaps import fingerprint_form, sitemap_url, split_sitemap
-from frontier.store import FrontierStore, PartitionBatch, QueuedUrl
+from frontier.store import TRUST_SPLIT_MIN_HOSTS, FrontierStore, PartitionBatch, QueuedUrl
 from frontier.urls import (
     Scope, canonicalize, fingerprint, host_of, politeness_key, registered_domain,
 )
@@ -26,9 +26,6 @@ from frontier.urls import (
 HOST_CACHE_SIZE = 100_000  # hosts whose politeness key and partition are remembered
 URL_MEMO_SIZE = 1 << 16  # offered URLs whose canonical form and fingerprint are remembered
 RESOLVE_CONCURRENCY = 32  # address lookups at once, for the 'ip' politeness key
-# a host's trust is split over at least this many out-linked hosts: its first pages show
-# only a few of the hosts it links to (tuned with the adversarial webs, no source)
-TRUST_SPLIT_MIN_HOSTS = 10
 
 DOMAIN_MEMO_SIZE = 1 << 16  # politeness keys whose registrable domain is remembered
 

@@ -149,11 +149,14 @@ def _spam(store: FrontierStore, fields: dict[str, str], counts: dict[str, int]) 
         why = None
     untrusted = tracked and trust is not None and trust < prio.trust_threshold and not (
         mark == "trusted" or fields.get("seeded") == "1")
+    # endorsed (admit.lua): untrusted, not a suspect, enough trusted one-way linking hosts
+    endorsed_host = untrusted and not suspect and fields.get("pf") == "1"
     return {
         "trust": trust,
         "trust_source": source,
         "mark": mark,
         "untrusted": untrusted,
+        "endorsed": endorsed_host,
         "suspect": suspect,
         "suspect_because": why,
         "reciprocal_hosts": recip,
@@ -162,7 +165,7 @@ def _spam(store: FrontierStore, fields: dict[str, str], counts: dict[str, int]) 
         "out_hosts": counts.get("out_hosts", 0),
         "priority_factor": float(fields.get("pf", 1.0)),
         "lease_gap_s": (prio.suspect_delay_s if suspect else
-                        prio.untrusted_delay_s if untrusted else 0.0),
+                        prio.untrusted_delay_s if untrusted and not endorsed_host else 0.0),
     }
 
 
@@ -305,6 +308,8 @@ def format_explain(info: dict[str, Any]) -> str:
     sp = info["spam"]
     trust = "not tracked" if sp["trust"] is None else f"{sp['trust']:.4f}"
     standing = ("a link-spam suspect: " + sp["suspect_because"] if sp["suspect"]
+                else f"untrusted but endorsed by {sp['trusted_one_way_linking_hosts']} trusted hosts "
+                "it does not link back to: ranked and paced as trusted" if sp["endorsed"]
                 else "untrusted" if sp["untrusted"] else "trusted" if sp["trust"] is not None
                 else "no signal")
     lines += [

@@ -216,6 +216,10 @@ class PrioritySettings(_Part):
         default=3, ge=1, description="distinct trusted hosts linking to a new host that end its "
         "probation"
     )
+    endorse_hosts: int = Field(
+        default=4, ge=0, description="distinct trusted hosts linking one-way (not linked back) to an "
+        "untrusted host that endorse it: it is ranked and paced as a trusted host (0: none)"
+    )
 
 
 class DedupeSettings(_Part):

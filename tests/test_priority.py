@@ -212,7 +212,10 @@ async def test_lease_order_follows_opic_cash(make_store: StoreFactory) -> None:
     # OPIC crawls the page with the most cash first (Abiteboul et al. 2003, section 3)
     store = make_store(store={"partitions": 1},
                        politeness={"min_delay_s": 0.0, "response_time_factor": 0.0},
-                       priority={"jump_floor": 0.0, "cross_host_weight": 4.0})
+                       # b.test's trust from the seed's host (0.85 / 20) is above this
+                       # threshold: no link-spam priority factor, cash alone orders the leases
+                       priority={"jump_floor": 0.0, "cross_host_weight": 4.0,
+                                 "trust_threshold": 0.04})
     adm = admission(store)
     prio = store.settings.priority
     await adm.admit([Candidate("http://a.test/", depth=0, cash=prio.seed_cash)])

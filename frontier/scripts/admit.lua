@@ -14,6 +14,9 @@
 -- ARGV[10] trust threshold  ARGV[11] reciprocal hosts that make a suspect
 -- ARGV[12] suspect penalty (priority factor)  ARGV[13] reciprocal ratio
 -- ARGV[14] trusted linking hosts that end a new host's probation  ARGV[15] trust that ends it
+-- ARGV[16] trusted one-way linking hosts that endorse an untrusted host (0: none do)
+-- ARGV[17] gap between fetches of a suspect (ms)  ARGV[18] of an untrusted host (ms)
+-- ARGV[19] probation of a new host (ms)
 -- then per source host (whose fetched pages link out in this batch): host, k, k linked hosts
 -- then per group:  host, absolute budget (0: none), seeded (1: a seed of this host is in
 --                  the batch), m, m times (linking host, trust share, trusted 1|0), n,
@@ -37,8 +40,20 @@
 -- hosts, worked out by admission), once, up to 1. A host below the trust threshold that
 -- has at least `reciprocal` hosts both linking to it and linked from it (Wu & Davison,
 -- WWW 2005), more than `ratio` times its trusted one-way linkers, is a 'suspect'. The operator's mark ('trusted' / 'untrusted') overrules both.
--- 'pf', the host's priority factor: 1 when trusted, trust / threshold when untrusted (at
--- least the penalty), the penalty for a suspect.
+-- Endorsement (in-degree from other domains, as IRLbot ranks domains, Lee, Leonard, Wang &
+-- Loguinov, WWW 2008; counted over trusted hosts and one-way links only, so that a farm's
+-- exchanged links count nothing, Wu & Davison 2005): an untrusted host, not a suspect,
+-- that at least `endorse` trusted hosts link to without being linked back is *endorsed*:
+-- ranked and paced as a trusted host (its trust still hands on only what it holds). The
+-- endorsement of a host whose own links are known stays ('endorsed' = the count then): an
+-- honest site's later links back to the big sites that link to it lower the count, and
+-- must not make it a suspect. (Before its pages are fetched every trusted linking host
+-- counts as one-way, so that count alone is not kept.)
+-- 'pf', the host's priority factor: 1 when trusted or endorsed, trust / threshold when
+-- untrusted (at least the penalty), the penalty for a suspect.
+-- A host whose standing rises (a suspect no more, untrusted to trusted or endorsed) while
+-- lease_take holds it back in due by its former standing is made due at the time its new
+-- standing allows (never later than it was).
 -- Probation: a host first found through links of hosts of known trust, never fetched, is on
 -- probation from then ('probe' = the time) until its trust reaches `probation_trust` or
 -- `probation` distinct trusted hosts link to it; lease_take.lua holds its first fetch
@@ -57,13 +72,16 @@ local nsources = tonumber(ARGV[8])
 local per_weak, threshold = tonumber(ARGV[9]), tonumber(ARGV[10])
 local reciprocal, penalty, ratio = tonumber(ARGV[11]), ARGV[12], tonumber(ARGV[13])
 local probation, probation_trust = tonumber(ARGV[14]), tonumber(ARGV[15])
+local endorse = tonumber(ARGV[16])
+local suspect_gap, untrusted_gap, probation_ms = tonumber(ARGV[17]), tonumber(ARGV[18]),
+                                                 tonumber(ARGV[19])
 local linked_base = 7 + 6 * ngroups
 local sources_base = linked_base + 4 * nlinked
 local seen_base = sources_base + 6 * nsources
 local S = {due = KEYS[3], ready = KEYS[4], prio = KEYS[5], claims = KEYS[6]}
 local ended = KEYS[#KEYS]
 local new, credited, excluded, dups = 0, 0, 0, 0
-local a = 16
+local a = 20
 local reasons = {}
 local journaled = {}  -- 'excluded reason url' lines for the ended journal
 
@@ -150,50 +168,84 @@ local function add_linking(host, hk, linking, trusted, from, m)
   end
 end
 
--- Decide whether a host is a link-spam suspect and set its priority factor 'pf'; returns
--- true if 'pf' changed. Hosts never linked (no 'trust' field) keep no factor. A suspect:
--- untrusted, at least `reciprocal` hosts both link to it and are linked from it (R), and
--- those exchanges outnumber `ratio` times its trusted one-way linkers (trusted linking
--- hosts it does not link back to: |trusted U out| - |out|).
-local function assess(hk, linking, out, trusted)
-  local f = redis.call('HMGET', hk, 'trust', 'seeded', 'mark', 'pf', 'state')
+-- The gap lease_take keeps between fetches of a host of this standing (ms).
+local function standing_gap(suspect, pf)
+  if suspect then
+    return suspect_gap
+  elseif pf and pf ~= '1' then
+    return untrusted_gap
+  end
+  return 0
+end
+
+-- Decide whether a host is a link-spam suspect or endorsed and set its priority factor
+-- 'pf'; returns true if 'pf' changed. Hosts never linked (no 'trust' field) keep no
+-- factor. A suspect: untrusted, at least `reciprocal` hosts both link to it and are linked
+-- from it (R), and those exchanges outnumber `ratio` times its trusted one-way linkers
+-- (trusted linking hosts it does not link back to: |trusted U out| - |out|). Endorsed: an
+-- untrusted host, not a suspect, with at least `endorse` trusted one-way linkers.
+local function assess(host, hk, linking, out, trusted)
+  local f = redis.call('HMGET', hk, 'trust', 'seeded', 'mark', 'pf', 'state', 'suspect',
+                       'tlease', 'next', 'probe', 'endorsed')
   if not f[1] or not f[5] then
     return false
   end
   local t = tonumber(f[1])
-  local suspect, recip = false, nil
+  local suspect, recip, outs, oneway = false, nil, nil, nil
+  local untrusted = f[3] ~= 'trusted' and not f[2] and t < threshold
   if f[3] == 'untrusted' then
     suspect = true
-  elseif f[3] ~= 'trusted' and not f[2] and t < threshold then
+  elseif untrusted and not f[10] then
     local ins = redis.call('PFCOUNT', linking)
     if ins >= reciprocal then
-      local outs = redis.call('PFCOUNT', out)
+      outs = redis.call('PFCOUNT', out)
       if outs >= reciprocal then
         recip = ins + outs - redis.call('PFCOUNT', linking, out)
         if recip >= reciprocal then
-          local endorsed = redis.call('PFCOUNT', trusted, out) - outs
-          suspect = recip > ratio * endorsed
+          oneway = redis.call('PFCOUNT', trusted, out) - outs
+          suspect = recip > ratio * oneway
         end
       end
     end
   end
+  local endorsed = f[10] and f[3] ~= 'untrusted' or false
+  if untrusted and not suspect and not endorsed and endorse > 0 then
+    if oneway == nil and redis.call('PFCOUNT', trusted) >= endorse then
+      outs = outs or redis.call('PFCOUNT', out)
+      oneway = redis.call('PFCOUNT', trusted, out) - outs
+    end
+    endorsed = oneway ~= nil and oneway >= endorse
+  end
   local pf
   if suspect then
     pf = penalty
-  elseif f[3] == 'trusted' or f[2] or t >= threshold then
+  elseif not untrusted or endorsed then
     pf = '1'
   else
     pf = tostring(math.max(tonumber(penalty), t / threshold))
   end
   local fields = {'pf', pf}
   if recip then
-    fields[3], fields[4] = 'recip', recip
+    table.insert(fields, 'recip')
+    table.insert(fields, recip)
+  end
+  if endorsed and not f[10] and outs > 0 then  -- kept once its own links are known
+    table.insert(fields, 'endorsed')
+    table.insert(fields, oneway)
   end
   redis.call('HSET', hk, unpack(fields))
   if suspect then
     redis.call('HSET', hk, 'suspect', '1')
   else
     redis.call('HDEL', hk, 'suspect')
+  end
+  local gap = standing_gap(suspect, pf)
+  if f[7] and gap < standing_gap(f[6], f[4]) then  -- held back by its former standing?
+    local allowed = tonumber(f[7]) + gap
+    if f[9] and gap > 0 then  -- still on probation
+      allowed = math.max(allowed, tonumber(f[9]) + probation_ms)
+    end
+    redis.call('ZADD', S.due, 'XX', 'LT', math.max(now, tonumber(f[8] or '0'), allowed), host)
   end
   return pf ~= f[4]
 end
@@ -210,7 +262,7 @@ for s = 0, nsources - 1 do
     changed = changed + redis.call('PFADD', out, unpack(ARGV, i, math.min(i + 999, a + k)))
   end
   a = a + 1 + k
-  if changed > 0 and assess(hk, linking, out, trusted) then
+  if changed > 0 and assess(host, hk, linking, out, trusted) then
     schedule(S, host, hk, hot, cold, cap, now)  -- its priority factor changed
   end
 end
@@ -237,7 +289,7 @@ for g = 0, ngroups - 1 do
   local reschedule = false  -- the host's best score (or its factor) may have changed, or it was idle
   if m > 0 then
     add_linking(host, hk, linking, trusted, a, m)
-    if assess(hk, linking, out, trusted) then
+    if assess(host, hk, linking, out, trusted) then
       reschedule = true
     end
     suspect = redis.call('HGET', hk, 'suspect')
@@ -318,7 +370,7 @@ for l = 0, nlinked - 1 do
   end
   add_linking(host, hk, KEYS[k0 + 2], KEYS[k0 + 4], a + 1, m)
   if hk then
-    assess(hk, KEYS[k0 + 2], KEYS[k0 + 3], KEYS[k0 + 4])
+    assess(host, hk, KEYS[k0 + 2], KEYS[k0 + 3], KEYS[k0 + 4])
   end
   a = a + 1 + 3 * m
 end

@@ -11,8 +11,8 @@
 -- active and holds no lease: so at most one lease per politeness key exists at any time.
 -- Hosts are taken in order until `want` are: a host another caller took since lease_pick
 -- is replaced by the next stand-in (one held back or with nothing queued is not).
--- Link spam (docs/priority.md): a host whose trust is below the threshold (admit.lua) is
--- leased at most once per untrusted gap, a link-spam suspect once per suspect gap (the
+-- Link spam (docs/priority.md): a host whose trust is below the threshold (admit.lua), and
+-- not endorsed (its priority factor 'pf' below 1), is leased at most once per untrusted gap, a link-spam suspect once per suspect gap (the
 -- budget enforcement of IRLbot, Lee et al. WWW 2008, slows such hosts rather than drop
 -- them): the gap counts from its last lease ('tlease'), by its standing now; a host held
 -- back goes to due at its next allowed time. A host on probation (admit.lua: found through
@@ -42,7 +42,7 @@ for i = 0, n - 1 do
   if redis.call('ZREM', KEYS[2], host) == 1 then
     taken = taken + 1
     local f = redis.call('HMGET', hk, 'state', 'lease', 'trust', 'suspect', 'tlease', 'seeded',
-                         'mark', 'probe')
+                         'mark', 'probe', 'pf')
     if f[1] == 'active' and not f[2] then
       local gap, probing = 0, false
       local trust = f[3]
@@ -50,7 +50,7 @@ for i = 0, n - 1 do
       if trust and not f[6] and f[7] ~= 'trusted' then
         if f[4] then
           gap = suspect_gap
-        elseif tonumber(trust) < threshold then
+        elseif tonumber(trust) < threshold and f[9] ~= '1' then  -- not endorsed (admit.lua)
           gap = untrusted_gap
           if f[8] then  -- on probation: its first fetch waits
             allowed, probing = math.max(allowed, tonumber(f[8]) + probation - gap), true
