@@ -40,17 +40,10 @@ from pathlib import Path
 from typing import Any
 
 from frontier.bench.ordering_bench import bench_settings
-from frontier.bench.ordering_crawl import (
-    CLOCK_START, Clock, CrawlResult, Timing, _Crawl,
-)
-from frontier.admission import Admission, scope_from_settings
-from frontier.embedded import RedisProcess
+from frontier.bench.ordering_crawl import CrawlResult, Timing, _Crawl, simulate
 from frontier.focus import Focus, build_focus
-from frontier.job import Job, admit_seeds
 from frontier.model import Candidate, Completion, Lease
-from frontier.redis_client import connect
 from frontier.settings import FocusSettings, JobSettings
-from frontier.store import FrontierStore, redis_tuning
 from synthweb.graph import SyntheticWeb
 from synthweb.model import Page
 from synthweb.topical import (
@@ -108,33 +101,14 @@ async def focused_crawl(web: SyntheticWeb, settings: JobSettings, limit: int, tm
     """``ordering_crawl.crawl`` with the job's focus: (result, CPU seconds spent on
     relevance, pages scored). On a private redis-server living in ``tmp``, or on the
     server at ``redis_url`` (flushed first)."""
-    settings = settings.laid_out(cluster=False)
-    server = None
-    if redis_url is None:
-        server = RedisProcess(tmp / "redis", appendonly=False,
-                              extra_config=redis_tuning(settings))
-        server.start()
-        redis_url = server.url
-    client = connect(redis_url)
-    clock = Clock()
-    try:
-        if server is None:
-            await client.flushall()
-        store = FrontierStore(client, settings, clock=clock)
-        admission = Admission(store, scope_from_settings(settings, web.seeds))
-        job = Job(settings, store, admission, None)
-        await admit_seeds(job, web.seeds)
-        sim = _FocusedCrawl(web, settings, job, clock, timing)
+    def make(*args: Any) -> _FocusedCrawl:
+        sim = _FocusedCrawl(*args)
         sim.focus = build_focus(settings)
-        await sim.run(limit)
-        counts = await store.counts()
-        result = CrawlResult(sim.order, [t - CLOCK_START for t in sim.started], sim.requests,
-                             round(clock.t - CLOCK_START, 3), dict(counts.reasons))
-        return result, sim.cpu_s, sim.scored
-    finally:
-        await client.aclose()
-        if server is not None:
-            server.stop()
+        return sim
+
+    result, sim = await simulate(web, settings, limit, tmp, timing, redis_url, make)
+    assert isinstance(sim, _FocusedCrawl)
+    return result, sim.cpu_s, sim.scored
 
 
 def focus_settings(tw: TopicalWeb, folder: Path, kind: str) -> FocusSettings:

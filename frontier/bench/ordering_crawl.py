@@ -17,6 +17,7 @@ and the page-size limits.
 from __future__ import annotations
 
 import heapq
+from collections.abc import Callable
 from dataclasses import dataclass, field
 from pathlib import Path
 
@@ -187,6 +188,15 @@ async def crawl(web: SyntheticWeb, settings: JobSettings, limit: int, tmp: Path,
     """Crawl ``web`` from its seeds with ``settings`` until ``limit`` pages are fetched
     or nothing is left: on a private redis-server living in ``tmp`` meanwhile, or on the
     server at ``redis_url`` (flushed first)."""
+    result, _ = await simulate(web, settings, limit, tmp, timing, redis_url)
+    return result
+
+
+async def simulate(web: SyntheticWeb, settings: JobSettings, limit: int, tmp: Path,
+                   timing: Timing = Timing(), redis_url: str | None = None,
+                   make: Callable[..., _Crawl] = _Crawl) -> tuple[CrawlResult, _Crawl]:
+    """:func:`crawl` with the simulation made by ``make(web, settings, job, clock,
+    timing)`` (a subclass of the simulated crawl), returned beside the result."""
     settings = settings.laid_out(cluster=False)
     server = None
     if redis_url is None:
@@ -203,11 +213,12 @@ async def crawl(web: SyntheticWeb, settings: JobSettings, limit: int, tmp: Path,
         admission = Admission(store, scope_from_settings(settings, web.seeds))
         job = Job(settings, store, admission, None)
         await admit_seeds(job, web.seeds)
-        sim = _Crawl(web, settings, job, clock, timing)
+        sim = make(web, settings, job, clock, timing)
         await sim.run(limit)
         counts = await store.counts()
-        return CrawlResult(sim.order, [t - CLOCK_START for t in sim.started], sim.requests,
-                           round(clock.t - CLOCK_START, 3), dict(counts.reasons))
+        result = CrawlResult(sim.order, [t - CLOCK_START for t in sim.started], sim.requests,
+                             round(clock.t - CLOCK_START, 3), dict(counts.reasons))
+        return result, sim
     finally:
         await client.aclose()
         if server is not None:
