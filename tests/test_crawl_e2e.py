@@ -9,6 +9,7 @@ from __future__ import annotations
 import hashlib
 import base64
 import json
+from urllib.parse import urlsplit
 from collections import Counter, defaultdict
 from pathlib import Path
 from typing import Any
@@ -21,6 +22,7 @@ from frontier.robots import product_token
 from frontier.settings import load_settings
 from frontier.urls import canonicalize
 from tests.servers import RedisServer
+from synthweb.model import Behaviour
 from synthweb.graph import (
     BIG_ROBOTS_HOST,
     GARBAGE_ROBOTS_HOST,
@@ -104,15 +106,23 @@ def test_every_reachable_allowed_page_fetched_once(crawl_result: dict[str, Any])
     web: SyntheticWeb = crawl_result["web"]
     token = product_token(UA)
     ordinary = set(web.site_hosts)
-    expected = {u for u in web.reachable(user_agent=token, hosts=ordinary)
-                if web.pages[u].behaviour.value == "page"}
+    expected = {u for u in web.reachable(user_agent=token, hosts=ordinary, honour_nofollow=True)
+                if web.pages[u].behaviour is Behaviour.OK}
+    assert len(expected) > 200  # the check below can fail
     counts = Counter(canonicalize(url_of(r)) for r in page_requests(crawl_result))
     fetched = {u for u in counts}
     missing = {canonicalize(u) for u in expected} - fetched
     # a host's budget can bound what is reachable on the biggest hosts
     per_host = Counter(u.split("/")[2] for u in expected)
     missing_on_small_hosts = {u for u in missing if per_host[u.split("/")[2]] <= HOST_BUDGET}
-    assert not missing_on_small_hosts
+    # and so can a host's earned budget (docs/priority.md, "Host budgets": a host linked
+    # from few other hosts holds base + per linking host URLs); such refusals are logged
+    log = [json.loads(x) for x in (crawl_result["out"] / "fetches.jsonl").read_text().splitlines()]
+    held_back = {urlsplit(ln["url"]).hostname for ln in log
+                 if ln.get("reason") == "host_link_budget"}
+    unexplained = {u for u in missing_on_small_hosts if u.split("/")[2] not in held_back}
+    assert not unexplained, sorted(unexplained)[:20]
+    assert len(missing_on_small_hosts) <= len(expected) // 10, len(missing_on_small_hosts)
     # no lease expired in this run, so a page that answered 2xx is requested once; a URL
     # asked again was retried after an error (5xx, timeout) through the frontier
     ok = Counter(canonicalize(url_of(r)) for r in page_requests(crawl_result)
@@ -192,7 +202,11 @@ def test_robots_outcomes_follow_rfc9309(crawl_result: dict[str, Any]) -> None:
         allowed = rfc9309_allows(web, host, path)
         verdicts[(host, path)] = allowed
         refused = (ln["outcome"], ln["reason"]) == ("excluded", "robots")
-        assert refused is not allowed, (ln["url"], ln["outcome"], ln["reason"])
+        # a URL refused on admission (its host's budget, the scope) never met robots.txt
+        unjudged = ln["outcome"] == "excluded" and (
+            ln["reason"] in ("host_budget", "host_link_budget", "host_out_of_scope",
+                             "mirror_host") or ln["reason"].startswith("url_"))
+        assert unjudged or refused is not allowed, (ln["url"], ln["outcome"], ln["reason"])
         if not allowed:
             assert (host, path) not in requested, ln["url"]
     # every request the server saw was one RFC 9309 allows
