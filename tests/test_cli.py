@@ -11,6 +11,7 @@ import sys
 from pathlib import Path
 
 import aiohttp
+import pytest
 
 from frontier.embedded import free_port
 from frontier.redis_client import connect
@@ -32,7 +33,12 @@ async def sluice(*args: str, timeout: float = 90.0) -> tuple[int, str]:
     return proc.returncode or 0, out.decode()
 
 
-async def test_daemon_and_workers_across_processes(tmp_path: Path, redis_server: RedisServer) -> None:
+async def test_daemon_and_workers_across_processes(tmp_path: Path, redis_server: RedisServer,
+                                                   monkeypatch: pytest.MonkeyPatch) -> None:
+    # this checks processes sharing a job; the link-spam slow lanes (tests/test_spam_signals.py)
+    # would hold the non-seed hosts of this small web for minutes
+    for name in ("UNTRUSTED_DELAY_S", "SUSPECT_DELAY_S", "PROBATION_S"):
+        monkeypatch.setenv(f"SLUICE_PRIORITY__{name}", "0")
     client = connect(redis_server.url)
     await client.flushall()
     web = SyntheticWeb.generate(WebSpec(seed=9, hosts=8, pages=120, **PLAIN))
