@@ -13,9 +13,10 @@ from frontier.admission import Admission
 from frontier.exceptions import ConfigError, LeaseNotHeld, StoreError
 from frontier.job import load_settings as load_job_settings
 from frontier.job import open_job
-from frontier.model import Candidate, Completion, Outcome
+from frontier.model import Candidate, Completion, Lease, Outcome
+from frontier.scripts import run_many
 from frontier.settings import CLUSTER_PARTITIONS, SINGLE_SERVER_PARTITIONS, load_settings
-from frontier.store import FrontierStore
+from frontier.store import FrontierStore, _text
 from frontier.urls import Scope
 from tests.conftest import Clock, StoreFactory
 
@@ -306,3 +307,24 @@ async def test_calls_made_together_share_one_round_trip(single_client: Any, monk
     second = lingering.run(echo, [], ["b"])
     assert await asyncio.gather(first, second) == [b"a", b"b"]
     assert pipelines == 3
+
+
+async def test_take_passes_over_hosts_taken_since_the_pick(make_store: StoreFactory,
+                                                           clock: Clock) -> None:
+    # lease_take leases a host only while it is still ready: hosts another caller leased
+    # after this caller's pick are replaced by the next stand-ins, a host named twice is
+    # leased once, and the hosts taken leave ready (at most one lease per politeness key).
+    store = make_store(store={"partitions": 1})
+    await admit(store, *(f"http://h{i}.test/{p}" for i in range(6) for p in "ab"))
+    t = clock.ms
+    (flat,) = await run_many(store.redis, [store._pick_call(0, 6, t)])
+    shown = [host for host, _ in store._picked(flat)]
+    assert len(shown) == 6
+    assert [x.host for x in await store.lease(2)] == shown[:2]  # another caller
+    expires = t + 60_000
+    hosts = [*shown[:3], shown[2], *shown[3:]]
+    (members,) = await run_many(store.redis, [store._take_call(0, hosts, 3, expires, t)])
+    assert [Lease.from_member(_text(m), expires).host for m in members] == shown[2:5]
+    pk = store.keys.part(0)
+    assert [_text(h) for h in await store.redis.zrange(pk.ready, 0, -1)] == [shown[5]]
+    assert (await store.counts()).leased == 5

@@ -35,7 +35,8 @@ local expiries = n > 0 and redis.call('ZMSCORE', KEYS[3], unpack(members)) or {}
 local a = 8
 for i = 0, n - 1 do
   local member, outcome, reason = ARGV[a], ARGV[a + 1], ARGV[a + 2]
-  local rt, extra, crawl = tonumber(ARGV[a + 3]), tonumber(ARGV[a + 4]), ARGV[a + 5]
+  local rt_text, extra, crawl = ARGV[a + 3], tonumber(ARGV[a + 4]), ARGV[a + 5]
+  local rt = tonumber(rt_text)
   a = a + 6
   local hk, hot, cold = KEYS[10 + 3 * i], KEYS[11 + 3 * i], KEYS[12 + 3 * i]
   local expiry = expiries[i + 1]  -- one ZMSCORE for the batch
@@ -73,14 +74,27 @@ for i = 0, n - 1 do
     if crawl ~= '' then
       f[2] = crawl
     end
-    local gap = math.max(min_delay, math.min(factor * rt, rt_cap), extra,
-                         tonumber(f[1] or '0'), tonumber(f[2] or '0'))
-    local next_ms = math.floor(now + gap)
-    redis.call('HSET', hk, 'next', next_ms, 'rt_ms', rt, 'crawl_ms', f[2] or '0', 'fetched', fetched)
+    local gap = math.max(min_delay, math.min(factor * rt, rt_cap), extra)
+    if f[1] then
+      gap = math.max(gap, tonumber(f[1]))
+    end
+    if f[2] and f[2] ~= '0' then
+      gap = math.max(gap, tonumber(f[2]))
+    end
+    -- numbers go to Redis as text made here (see schedule_released)
+    local next_ms = string.format('%d', math.floor(now + gap))
+    redis.call('HSET', hk, 'next', next_ms, 'rt_ms', rt_text, 'crawl_ms', f[2] or '0',
+               'fetched', string.format('%d', fetched))
     redis.call('HDEL', hk, 'lease')
     if f[4] == 'active' then
-      schedule_released(released, host, hot, cold, cap, tonumber(f[3] or '1') * tonumber(f[6] or '1'),
-                        next_ms)
+      local boost = 1
+      if f[3] and f[3] ~= '1' then
+        boost = tonumber(f[3])
+      end
+      if f[6] and f[6] ~= '1' then
+        boost = boost * tonumber(f[6])
+      end
+      schedule_released(released, host, hot, cold, cap, boost, next_ms)
     end
     out[#out + 1] = 'ok'
   end

@@ -9,6 +9,8 @@
 -- ARGV[11 ..] the n hosts: the caller's choice first, then stand-ins, best first
 -- A host is leased only if this call takes it out of ready (no other caller did), it is
 -- active and holds no lease: so at most one lease per politeness key exists at any time.
+-- Which hosts are still ready is read with one ZMSCORE, and the hosts taken leave ready
+-- in one ZREM at the end (the script runs alone, so nothing takes them in between).
 -- Hosts are taken in order until `want` are: a host another caller took since lease_pick
 -- is replaced by the next stand-in (one held back or with nothing queued is not).
 -- Link spam (docs/priority.md): a host whose trust is below the threshold (admit.lua), and
@@ -33,13 +35,23 @@ local out = {}
 local held = {}
 local seq = redis.call('HINCRBY', KEYS[1], 'lease_seq', n) - n
 local retried = redis.call('HLEN', KEYS[4]) > 0
+local ready = {}  -- each host's score in ready (false: not there), read 1000 at a time
+for i = 1, n, 1000 do
+  local part = redis.call('ZMSCORE', KEYS[2], unpack(ARGV, 10 + i, 10 + math.min(i + 999, n)))
+  for j = 1, #part do
+    ready[i + j - 1] = part[j]
+  end
+end
+local took = {}  -- the hosts this call takes out of ready, in order (and as a set)
 for i = 0, n - 1 do
   if taken >= want then
     break
   end
   local host = ARGV[11 + i]
   local hk, hot, cold, outs = KEYS[7 + 4 * i], KEYS[8 + 4 * i], KEYS[9 + 4 * i], KEYS[10 + 4 * i]
-  if redis.call('ZREM', KEYS[2], host) == 1 then
+  if ready[i + 1] and not took[host] then
+    took[host] = true
+    took[#took + 1] = host
     taken = taken + 1
     local f = redis.call('HMGET', hk, 'state', 'lease', 'trust', 'suspect', 'tlease', 'seeded',
                          'mark', 'probe', 'pf')
@@ -67,18 +79,18 @@ for i = 0, n - 1 do
       end
       if url then
         seq = seq + 1
-        local id = ARGV[2] .. '-' .. seq
+        local id = string.format('%s-%d', ARGV[2], seq)  -- ('..' would format seq as '%.14g')
         local attempts = retried and redis.call('HGET', KEYS[4], url) or '0'
         local signal = '-/0'
         if trust then
-          signal = (f[4] and 'x' or trust) .. '/' .. redis.call('PFCOUNT', outs)
+          signal = string.format('%s/%d', f[4] and 'x' or trust, redis.call('PFCOUNT', outs))
         end
         local member = id .. '\n' .. host .. '\n' .. score .. '\n' .. attempts .. '\n' .. signal
                        .. '\n' .. url
         held[#held + 1] = ARGV[1]
         held[#held + 1] = member
         if trust then
-          redis.call('HSET', hk, 'lease', id, 'tlease', now)
+          redis.call('HSET', hk, 'lease', id, 'tlease', ARGV[5])
         else
           redis.call('HSET', hk, 'lease', id)
         end
@@ -89,6 +101,7 @@ for i = 0, n - 1 do
     end
   end
 end
+each_chunk(took, 1000, function(...) redis.call('ZREM', KEYS[2], ...) end)
 if #out > 0 then
   each_chunk(held, 1000, function(...) redis.call('ZADD', KEYS[3], ...) end)
   redis.call('HINCRBY', KEYS[1], 'queued', -#out)
