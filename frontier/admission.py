@@ -32,6 +32,9 @@ DOMAIN_MEMO_SIZE = 1 << 16  # politeness keys whose registrable domain is rememb
 Resolver = Callable[[str], Awaitable[str | None]]
 
 _domain_of = functools.lru_cache(maxsize=DOMAIN_MEMO_SIZE)(registered_domain)
+# QueuedUrl from a 4-tuple without the named tuple's Python-level constructor
+_queued: Callable[[tuple[str, int, int, int]], QueuedUrl] = functools.partial(
+    tuple.__new__, QueuedUrl)
 
 
 def scope_from_settings(settings: JobSettings, seeds: Iterable[str] = ()) -> Scope:
@@ -65,6 +68,7 @@ class Admission:
         if self.key_mode == "ip" and resolver is None:
             raise ConfigError("politeness.key = 'ip' needs a resolver")
         self._places: dict[str, tuple[str, int]] = {}  # host -> (politeness key, partition)
+        self._hosts: dict[str, str] = {}  # origin (scheme://authority) -> host
         # offered URL -> (canonical URL, host, fingerprint) or the reason it is refused;
         # a crawl offers each URL many times (once per link to it)
         self._facts: dict[str, tuple[str, str, int] | str] = {}
@@ -80,16 +84,18 @@ class Admission:
         parts, max_length = self.partitions, self.max_length
         check = self.scope.check
         key_mode = self.key_mode
-        facts, places = self._facts, self._places
+        facts, places, url_facts = self._facts, self._places, self._url_facts
+        queued = _queued
         # source politeness key -> {target key: its partition}, and trust given with them
         links: dict[str, dict[str, int]] = {}
         given: dict[str, float] = {}
         redirects: dict[str, dict[str, int]] = {}  # pairs seen only through a redirect
-        for c in candidates:
-            raw, depth, cash, credit, source, hops, source_trust = c
+        for raw, depth, cash, credit, source, hops, source_trust in candidates:
             fact = facts.get(raw)
             if fact is None:
-                fact = self._remember(raw)
+                if len(facts) >= URL_MEMO_SIZE:
+                    facts.clear()
+                fact = facts[raw] = url_facts(raw)
             if type(fact) is str:  # the reason the URL was refused
                 raw = raw[: max_length * 2]
                 p = partition_of(raw, parts)
@@ -97,7 +103,10 @@ class Admission:
                     (fingerprint(raw), fact, raw))
                 continue
             url, host, fp = fact
-            key, partition = places.get(host) or self._place(host)
+            place = places.get(host)
+            if place is None:
+                place = self._place(host)
+            key, partition = place
             batch = batches.get(partition)
             if batch is None:
                 batch = batches[partition] = PartitionBatch()
@@ -108,13 +117,22 @@ class Admission:
             queue = batch.hosts.get(key)
             if queue is None:
                 queue = batch.hosts[key] = []
-            # the scores of frontier.model.encode_score and encode_credit, inlined
-            queue.append(QueuedUrl(
-                url, fp,
-                max(1, round(cash * CASH_SCALE)) * CASH_UNIT
-                + (min(hops, MAX_HOPS) * DEPTH_SCALE if hops else 0)
-                + min(max(depth, 0), MAX_DEPTH),
-                max(0, round(credit * CASH_SCALE)) * CASH_UNIT))
+            # the scores of frontier.model.encode_score and encode_credit, inlined, with
+            # comparisons instead of calls to min and max (the same values)
+            score = round(cash * CASH_SCALE)
+            if score < 1:
+                score = 1
+            score *= CASH_UNIT
+            if hops:
+                score += (hops if hops < MAX_HOPS else MAX_HOPS) * DEPTH_SCALE
+            if depth > 0:
+                score += depth if depth < MAX_DEPTH else MAX_DEPTH
+            if credit:
+                credit = round(credit * CASH_SCALE)
+                credit = credit * CASH_UNIT if credit > 0 else 0
+            else:  # none (0 or 0.0): its encoding is 0
+                credit = 0
+            queue.append(queued((url, fp, score, credit)))
             if depth == 0:  # a seed (redirects and links are one depth further): the operator vouches
                 batch.seeded.add(key)
             if source is not None and source != host:
@@ -230,7 +248,15 @@ class Admission:
             return f"url_{exc.reason}"
         if sitemap is not None:
             return sitemap_url(url, sitemap[1]), host_of(url), fingerprint(fingerprint_form(url))
-        return url, host_of(url), fingerprint(url)
+        # a canonical URL is scheme://authority/...: its host, remembered by its origin
+        end = url.find("/", url.find("//") + 2)
+        origin = url[:end] if end > 0 else url
+        host = self._hosts.get(origin)
+        if host is None:
+            if len(self._hosts) >= HOST_CACHE_SIZE:
+                self._hosts.clear()
+            host = self._hosts[origin] = host_of(url)
+        return url, host, fingerprint(url)
 
     def _key(self, host: str) -> str:
         """The politeness key of a host (an unresolved host stands for itself)."""
