@@ -223,7 +223,8 @@ async def admit_seeds(job: Job, seeds: Iterable[str]) -> AdmitResult:
     """Admit seeds at depth 0 with the seed cash (dedupe makes a second run a no-op).
 
     A Redis that is unavailable for a while (restarting, failing over, replicas not yet
-    confirming) is waited for up to ``SEED_PATIENCE_S``; admits are idempotent."""
+    confirming) is waited for up to ``SEED_PATIENCE_S``; admits are idempotent. The job's
+    own embedded server, once it has exited, is not waited for."""
     cash = job.settings.priority.seed_cash
     candidates = [Candidate(u, depth=0, cash=cash) for u in seeds]
     deadline = time.monotonic() + SEED_PATIENCE_S
@@ -231,6 +232,7 @@ async def admit_seeds(job: Job, seeds: Iterable[str]) -> AdmitResult:
         try:
             return await job.admission.admit(candidates)
         except StoreUnavailable:
-            if time.monotonic() > deadline:
+            gone = job.server is not None and not job.server.is_running()
+            if gone or time.monotonic() > deadline:
                 raise
             await asyncio.sleep(SEED_RETRY_S)

@@ -394,3 +394,24 @@ def test_the_command_a_lock_names() -> None:
     assert command_name(["/x/.venv/bin/sluice", "crawl", "--out", "o"]) == "sluice crawl"
     assert command_name(["sluice", "-v", "status", "--job", "j"]) == "sluice status"
     assert command_name(["python", "--", "Weird Thing"]) == "sluice"
+
+
+async def test_seeds_do_not_wait_for_an_embedded_redis_that_died(tmp_path: Path) -> None:
+    # Seeds wait up to SEED_PATIENCE_S (60 s) for a Redis that is restarting; the job's own
+    # embedded server, once dead, is not coming back: killed before the seeds go in (as the
+    # OOM killer could at any moment), the crawl says so at once instead of a minute later.
+    from frontier.job import SEED_PATIENCE_S, admit_seeds, open_job
+    from frontier.settings import load_settings
+
+    settings = load_settings(None, {"name": "dies", "seeds": ["http://a.test/"],
+                                    "state_dir": str(tmp_path / "state")})
+    started = time.monotonic()
+    with pytest.raises(RedisLaunchError, match="exited while in use"):
+        async with open_job(settings) as job:
+            assert job.server is not None
+            assert job.server.pid is not None
+            os.kill(job.server.pid, signal.SIGKILL)
+            while job.server.is_running():
+                await asyncio.sleep(0.05)
+            await admit_seeds(job, settings.seeds)
+    assert time.monotonic() - started < SEED_PATIENCE_S / 4
