@@ -58,8 +58,15 @@ class PartitionKeys:
 
     @property
     def claims(self) -> str:
-        """ZSET host -> claim expiry (ms): hosts picked by a worker, about to be leased."""
+        """ZSET host -> claim expiry (ms): hosts an older version picked and had not leased
+        yet (lease_pick.lua puts them back in due; nothing writes claims any more)."""
         return f"{self.tag}:claims"
+
+    @property
+    def touched(self) -> str:
+        """SET of leased hosts whose queue, standing or controls changed while leased: their
+        completion reads them afresh instead of trusting what the lease carried."""
+        return f"{self.tag}:touched"
 
     @property
     def leases(self) -> str:

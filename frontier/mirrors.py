@@ -112,7 +112,7 @@ class MirrorHosts:
         pk = self.store.keys.part(partition)
         s = self.settings
         redis_keys = [pk.counts, pk.reasons, pk.mirrors, pk.ended, pk.due, pk.ready, pk.prio,
-                      pk.claims]
+                      pk.touched]
         args: list[Any] = [now, self.store.settings.store.hot_capacity, s.mirror_min_pages,
                            repr(s.mirror_share), s.mirror_slack, len(keys)]
         for key in keys:

@@ -81,7 +81,7 @@ class Lease:
     score: int
     attempts: int
     expires_ms: int
-    member: str  # the lease as stored: 'id\nhost\nscore\nattempts\ntrust\nurl'
+    member: str  # the lease as stored: 'id\nhost\nscore\nattempts\ntrust\ncarry\nurl'
     trust: float | None = None  # the host's trust when leased (None: not tracked)
     suspect: bool = False  # the host was a link-spam suspect when leased
     out_hosts: int = 0  # distinct other hosts its fetched pages linked to, when leased
@@ -89,12 +89,16 @@ class Lease:
     @classmethod
     def from_member(cls, member: str, expires_ms: int) -> Lease:
         """Parse a lease; the trust field is 'T/O' (T: trust, 'x' for a suspect, '-' for
-        none; O: out-linked hosts). A member of the older five-field form has none."""
-        parts = member.split("\n", 5)
+        none; O: out-linked hosts); the carry field is the frontier's own (lease_take.lua).
+        Members of older forms lack carry (six fields) or both (five)."""
+        parts = member.split("\n", 6)
         if len(parts) == 5:
             lid, host, score, attempts, url = parts
             return cls(lid, host, url, int(score), int(attempts), expires_ms, member)
-        lid, host, score, attempts, signal, url = parts
+        if len(parts) == 7:
+            lid, host, score, attempts, signal, _, url = parts
+        else:
+            lid, host, score, attempts, signal, url = parts
         trust, _, out = signal.partition("/")
         suspect = trust == "x"
         value = None if trust in ("-", "") else 0.0 if suspect else float(trust)

@@ -65,7 +65,7 @@ class RevisitStore:
 
     def _head(self, pk: PartitionKeys, op: str, now: int, n: int) -> tuple[list[str], list[Any]]:
         s = self.settings
-        keys = [pk.counts, pk.revisits, pk.due, pk.ready, pk.prio, pk.claims]
+        keys = [pk.counts, pk.revisits, pk.due, pk.ready, pk.prio, pk.touched]
         args: list[Any] = [op, now, repr(s.min_interval_s), repr(s.max_interval_s),
                            repr(s.host_fetches_per_day), self.store.settings.store.hot_capacity, n]
         return keys, args

@@ -294,7 +294,7 @@ class FrontierStore:
 
     def _admit_call(self, partition: int, batch: PartitionBatch, now: int) -> ScriptCall:
         pk = self.keys.part(partition)
-        keys: list[str] = [pk.counts, pk.reasons, pk.due, pk.ready, pk.prio, pk.claims, pk.hosts]
+        keys: list[str] = [pk.counts, pk.reasons, pk.due, pk.ready, pk.prio, pk.touched, pk.hosts]
         prio = self.settings.priority
         sources, seeded, out_links = batch.sources, batch.seeded, batch.out_links
         link_only = [host for host in sources if host not in batch.hosts]
@@ -416,7 +416,7 @@ class FrontierStore:
 
     def _outcome_keys(self, pk: PartitionKeys) -> list[str]:
         return [pk.counts, pk.reasons, pk.leases, pk.attempts, pk.dead,
-                pk.due, pk.ready, pk.prio, pk.claims]
+                pk.due, pk.ready, pk.prio, pk.touched]
 
     async def complete_many(
         self, completions: Iterable[Completion], now: int | None = None, *,
@@ -592,7 +592,7 @@ class FrontierStore:
                 raise StoreError(f"host control refused: {echo(text)} is not text")
         pk = self.keys.part_for(host)
         pol = self.settings.politeness
-        keys = [pk.counts, pk.reasons, pk.due, pk.ready, pk.prio, pk.claims, pk.hosts,
+        keys = [pk.counts, pk.reasons, pk.due, pk.ready, pk.prio, pk.touched, pk.hosts,
                 pk.controlled, pk.host(host), pk.hot(host), pk.cold(host), pk.held_hot(host),
                 pk.held_cold(host)]
         args = [self._now(now), host, action, _control_value(action, value),

@@ -64,7 +64,8 @@ async def snapshot(store: FrontierStore, hosts: list[str]) -> dict[str, Any]:
     r = store.redis
     keys: list[str] = []
     for pk in store.keys.parts:
-        keys += [pk.counts, pk.reasons, pk.due, pk.ready, pk.prio, pk.claims, pk.hosts, pk.leases,
+        keys += [pk.counts, pk.reasons, pk.due, pk.ready, pk.prio, pk.claims, pk.touched, pk.hosts,
+                 pk.leases,
                  pk.controlled]
         for h in hosts:
             keys += [pk.host(h), pk.hot(h), pk.cold(h), pk.held_hot(h), pk.held_cold(h)]

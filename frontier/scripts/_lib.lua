@@ -16,7 +16,7 @@ end
 
 local function queue_low(q)
   if q.low == nil then
-    local low = redis.call('ZRANGE', q.hot, 0, 0, 'WITHSCORES')
+    local low = redis.call('ZRANGE', q.hot, '0', '0', 'WITHSCORES')
     q.low = tonumber(low[2])
   end
   return q.low
@@ -50,40 +50,74 @@ local function push_url(hot, cold, url, score, cap)
   queue_close(q)
 end
 
--- Move the oldest `cap` cold URLs into an empty hot window; returns how many moved.
+-- Move the oldest `cap` cold URLs into an empty hot window; returns how many moved. They
+-- go in best first: a listpack ZSET inserts each member after a scan from its head (each
+-- score read back as text), so in that order every insert stops at the first entry.
 local function refill(hot, cold, cap)
-  local items = redis.call('LPOP', cold, cap)
+  local items = redis.call('LPOP', cold, tostring(cap))
   if not items then
     return 0
   end
-  local add = {}
-  for _, item in ipairs(items) do
+  local rows = {}
+  for i, item in ipairs(items) do
     local sp = string.find(item, ' ', 1, true)
-    add[#add + 1] = string.sub(item, 1, sp - 1)
-    add[#add + 1] = string.sub(item, sp + 1)
+    local score = string.sub(item, 1, sp - 1)
+    rows[i] = {tonumber(score), score, string.sub(item, sp + 1)}
+  end
+  table.sort(rows, function(x, y) return x[1] > y[1] end)
+  local add = {}
+  for i, row in ipairs(rows) do
+    add[2 * i - 1], add[2 * i] = row[2], row[3]
   end
   redis.call('ZADD', hot, unpack(add))
   return #items
 end
 
+-- (Numbers handed to redis.call are written as text: a Lua number is formatted with
+-- '%.17g' on every call, about a microsecond each.)
+
 -- The host's best queued URL and score (refilling an empty hot window), or nil.
 local function best_url(hot, cold, cap)
-  local best = redis.call('ZREVRANGE', hot, 0, 0, 'WITHSCORES')
+  local best = redis.call('ZREVRANGE', hot, '0', '0', 'WITHSCORES')
   if #best == 0 and refill(hot, cold, cap) > 0 then
-    best = redis.call('ZREVRANGE', hot, 0, 0, 'WITHSCORES')
+    best = redis.call('ZREVRANGE', hot, '0', '0', 'WITHSCORES')
   end
   return best[1], best[2]
 end
 
--- Pop the host's best URL (refilling an empty hot window first). Read and removed by
--- rank: on a listpack window ZPOPMAX looks its member up again from the head, a scan of
--- the whole window; removing the last rank is a seek from the tail.
+-- Pop the host's best URL (refilling an empty hot window first) and tell the score of the
+-- best one left ('' when none is left): url, score, next. The window is refilled at once
+-- when the pop empties it, so `next` is the host's best queued score after the pop. Read
+-- and removed by rank: on a listpack window ZPOPMAX looks its member up again from the
+-- head, a scan of the whole window; removing the last rank is a seek from the tail.
 local function pop_best(hot, cold, cap)
-  local url, score = best_url(hot, cold, cap)
-  if url then
-    redis.call('ZREMRANGEBYRANK', hot, -1, -1)
+  local top = redis.call('ZREVRANGE', hot, '0', '1', 'WITHSCORES')
+  if #top == 0 then
+    if refill(hot, cold, cap) == 0 then
+      return nil, nil, ''
+    end
+    top = redis.call('ZREVRANGE', hot, '0', '1', 'WITHSCORES')
   end
-  return url, score
+  redis.call('ZREMRANGEBYRANK', hot, '-1', '-1')
+  local next = top[4]
+  if not next then
+    local _, after = best_url(hot, cold, cap)  -- the window ran empty: refilled here
+    next = after or ''
+  end
+  return top[1], top[2], next
+end
+
+-- Whether a host hash's 'lease' field names a lease ('' once it ended: the field is
+-- cleared in the same HSET as the host's next fetch time, not deleted).
+local function leased(field)
+  return field ~= nil and field ~= false and field ~= ''
+end
+
+-- A host whose queue, standing or controls changed while it is leased goes in the
+-- partition's 'touched' SET: completing its lease then reads the host afresh instead of
+-- trusting what lease_take carried in the lease (complete.lua).
+local function touch(S, host)
+  redis.call('SADD', S.touched, host)
 end
 
 local function queue_length(hot, cold)
@@ -91,16 +125,18 @@ local function queue_length(hot, cold)
 end
 
 -- Put a host where it belongs: due (waiting for its time) or ready (time has come),
--- unless it is paused, blocked, leased, claimed, or has nothing queued. Its priority is
--- its best score x the operator's boost x its trust factor 'pf' (admit.lua: 1 for a
--- trusted host, less for an untrusted one, the suspect penalty for a link-spam suspect).
--- S = {due=, ready=, prio=, claims=}
+-- unless it is paused, blocked, leased or has nothing queued; a leased host is marked
+-- touched instead (placed when its lease ends). Its priority is its best score x the
+-- operator's boost x its trust factor 'pf' (admit.lua: 1 for a trusted host, less for an
+-- untrusted one, the suspect penalty for a link-spam suspect).
+-- S = {due=, ready=, prio=, touched=}
 local function schedule(S, host, hk, hot, cold, cap, now)
   local f = redis.call('HMGET', hk, 'state', 'lease', 'boost', 'next', 'pf')
-  if f[1] ~= 'active' or f[2] then
+  if leased(f[2]) then
+    touch(S, host)
     return
   end
-  if redis.call('ZSCORE', S.claims, host) then
+  if f[1] ~= 'active' then
     return
   end
   local url, score = best_url(hot, cold, cap)
@@ -119,16 +155,16 @@ local function schedule(S, host, hk, hot, cold, cap, now)
   end
 end
 
--- Schedule a host whose lease just ended: it is in none of due, ready and claims, so
--- only its next time and priority are needed. `boost` (a number) comes from the caller's
--- HMGET; `next_ms` is text. The writes are gathered in `out` = {prio = {host, p, ...},
+-- Schedule a host whose lease just ended: it is in neither due nor ready, so only its
+-- next time and priority are needed. `boost` (a number: the operator's boost x the trust
+-- factor) and `score` (text: its best queued score, nil when none) come from the caller;
+-- `next_ms` is text. The writes are gathered in `out` = {prio = {host, p, ...},
 -- due = {ms, host, ...}, idle = {host, ...}} and made by flush_released, a few calls for
 -- a whole batch. Values go to Redis as text: a Lua number passed to redis.call is
 -- formatted with '%.14g', which costs about a microsecond each. An unboosted priority is
 -- the score as the reply gave it (the same text while it has at most 14 digits).
-local function schedule_released(out, host, hot, cold, cap, boost, next_ms)
-  local url, score = best_url(hot, cold, cap)
-  if not url then
+local function schedule_released(out, host, score, boost, next_ms)
+  if not score then
     out.idle[#out.idle + 1] = host
     return
   end
@@ -188,13 +224,18 @@ local function retry_or_bury(C, hk, hot, cold, url, score, reason, cap, max_atte
 end
 
 -- A lease is one member of the leases ZSET (score: expiry),
--- 'id\nhost\nscore\nattempts\ntrust\nurl' (trust: 'T/O', see lease_take; a member of the
--- older form has no trust field); the worker holds the same string, so completing needs no
--- second lookup. Returns host, score, attempts, url. (One string.match: a quarter of the
--- cost of finding each newline in turn.)
+-- 'id\nhost\nscore\nattempts\ntrust\ncarry\nurl' (trust and carry: see lease_take; members
+-- of older forms lack carry, or both); the worker holds the same string, so completing
+-- needs no second lookup. Returns host, score, attempts, url, carry (nil when absent).
+-- (string.match: a quarter of the cost of finding each newline in turn.)
 local function parse_lease(member)
-  local host, score, attempts, rest =
-    string.match(member, '^[^\n]*\n([^\n]*)\n([^\n]*)\n([^\n]*)\n(.*)$')
+  local host, score, attempts, carry, url =
+    string.match(member, '^[^\n]*\n([^\n]*)\n([^\n]*)\n([^\n]*)\n[^\n]*\n([^\n]*)\n(.*)$')
+  if host then
+    return host, score, attempts, url, carry
+  end
+  local rest
+  host, score, attempts, rest = string.match(member, '^[^\n]*\n([^\n]*)\n([^\n]*)\n([^\n]*)\n(.*)$')
   local nl = string.find(rest, '\n', 1, true)
-  return host, score, attempts, nl and string.sub(rest, nl + 1) or rest
+  return host, score, attempts, nl and string.sub(rest, nl + 1) or rest, nil
 end

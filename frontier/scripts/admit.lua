@@ -1,6 +1,6 @@
 -- admit: add a batch of URLs of one partition to the frontier.
 -- KEYS[1] counts   KEYS[2] reasons   KEYS[3] due   KEYS[4] ready   KEYS[5] prio
--- KEYS[6] claims   KEYS[7] hosts
+-- KEYS[6] touched   KEYS[7] hosts
 -- KEYS[8 ..]       per host group g (0-based): host hash, hot ZSET, cold LIST,
 --                  linking-hosts HyperLogLog, out-hosts HLL, trusted-linking-hosts HLL (6 keys)
 -- then             per link-only host: host hash, linking-hosts, out-hosts, trusted HLLs (4 keys)
@@ -78,7 +78,7 @@ local suspect_gap, untrusted_gap, probation_ms = tonumber(ARGV[17]), tonumber(AR
 local linked_base = 7 + 6 * ngroups
 local sources_base = linked_base + 4 * nlinked
 local seen_base = sources_base + 6 * nsources
-local S = {due = KEYS[3], ready = KEYS[4], prio = KEYS[5], claims = KEYS[6]}
+local S = {due = KEYS[3], ready = KEYS[4], prio = KEYS[5], touched = KEYS[6]}
 local ended = KEYS[#KEYS]
 local new, credited, excluded, dups = 0, 0, 0, 0
 local a = 20
@@ -142,7 +142,7 @@ local function add_linking(host, hk, linking, trusted, from, m)
   local t = tonumber(f[1] or '0')
   local fields = {}
   local probe = f[6]
-  if not f[1] and not f[7] and not f[8] then  -- first found now, never fetched: probation
+  if not f[1] and not f[7] and not leased(f[8]) then  -- first found now, never fetched: probation
     probe = tostring(now)
   end
   if gain > 0 and t < 1 then
@@ -273,7 +273,7 @@ for g = 0, ngroups - 1 do
   local k0 = 7 + 6 * g
   local hk, hot, cold = KEYS[k0 + 1], KEYS[k0 + 2], KEYS[k0 + 3]
   local linking, out, trusted = KEYS[k0 + 4], KEYS[k0 + 5], KEYS[k0 + 6]
-  local f = redis.call('HMGET', hk, 'state', 'admitted', 'seeded', 'suspect', 'mlim')
+  local f = redis.call('HMGET', hk, 'state', 'admitted', 'seeded', 'suspect', 'mlim', 'lease')
   local state, admitted, seeded, suspect = f[1], tonumber(f[2] or '0'), f[3], f[4]
   if not state then
     state = 'active'
@@ -285,6 +285,9 @@ for g = 0, ngroups - 1 do
     redis.call('HSET', hk, 'seeded', seeded, 'trust', '1', 'tfrom', 'seed', 'pf', '1')
     redis.call('HDEL', hk, 'suspect', 'probe')
     suspect = nil
+    if leased(f[6]) then  -- its standing changed while leased
+      touch(S, host)
+    end
   end
   local reschedule = false  -- the host's best score (or its factor) may have changed, or it was idle
   if m > 0 then
@@ -369,8 +372,9 @@ for l = 0, nlinked - 1 do
     hk = nil
   end
   add_linking(host, hk, KEYS[k0 + 2], KEYS[k0 + 4], a + 1, m)
-  if hk then
-    assess(host, hk, KEYS[k0 + 2], KEYS[k0 + 3], KEYS[k0 + 4])
+  if hk and assess(host, hk, KEYS[k0 + 2], KEYS[k0 + 3], KEYS[k0 + 4])
+      and leased(redis.call('HGET', hk, 'lease')) then
+    touch(S, host)  -- its priority factor changed while leased
   end
   a = a + 1 + 3 * m
 end

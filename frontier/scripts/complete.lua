@@ -1,6 +1,6 @@
 -- complete: end a batch of leases of one partition with their outcomes.
 -- KEYS[1] counts  KEYS[2] reasons  KEYS[3] leases  KEYS[4] attempts  KEYS[5] dead
--- KEYS[6] due     KEYS[7] ready    KEYS[8] prio    KEYS[9] claims
+-- KEYS[6] due     KEYS[7] ready    KEYS[8] prio    KEYS[9] touched
 -- KEYS[10 ..] per lease i (0-based): host hash, hot ZSET, cold LIST of the lease's host
 -- KEYS[#KEYS] the ended journal (URLs that end dead, or excluded by a block, here)
 -- ARGV[1] now (ms)  ARGV[2] hot capacity  ARGV[3] max attempts  ARGV[4] min delay (ms)
@@ -13,6 +13,10 @@
 -- is queued again as it was, its attempts stay as they were and no ended state is counted
 -- (leased - 1, queued + 1). On a host blocked meanwhile it ends as excluded
 -- (host_blocked), as the block did to the host's queued URLs.
+-- A lease carries the host's facts as lease_take read them (lease_take.lua): a lease that
+-- ends fetched, failed or excluded on a host nothing touched meanwhile (_lib.lua) places
+-- the host from them, with no read of the host; the others (a touched host, a retry or
+-- release that queues the URL again, a lease of the older form) read the host afresh.
 -- Returns one status per lease: 'ok', 'not_held' (unknown or reaped) or 'expired'.
 local now = tonumber(ARGV[1])
 local cap = tonumber(ARGV[2])
@@ -21,7 +25,7 @@ local min_delay, factor, rt_cap = tonumber(ARGV[4]), tonumber(ARGV[5]), tonumber
 local n = tonumber(ARGV[7])
 local C = {counts = KEYS[1], reasons = KEYS[2], attempts = KEYS[4], dead = KEYS[5],
            ended = KEYS[#KEYS]}
-local S = {due = KEYS[6], ready = KEYS[7], prio = KEYS[8], claims = KEYS[9]}
+local S = {due = KEYS[6], ready = KEYS[7], prio = KEYS[8], touched = KEYS[9]}
 local out = {}
 local tally = {}
 local ended = {}
@@ -32,6 +36,24 @@ for i = 0, n - 1 do
   members[i + 1] = ARGV[8 + 6 * i]
 end
 local expiries = n > 0 and redis.call('ZMSCORE', KEYS[3], unpack(members)) or {}
+local parsed = {}  -- per lease: {host, score, attempts, url, carry}
+local hosts = {}
+for i = 1, n do
+  local host, score, attempts, url, carry = parse_lease(members[i])
+  parsed[i] = {host, score, attempts, url, carry}
+  hosts[i] = host
+end
+local touched = {}  -- per lease: its host was touched while leased
+if n > 0 and redis.call('SCARD', S.touched) > 0 then
+  touched = redis.call('SMISMEMBER', S.touched, unpack(hosts))
+end
+local fresh = {}  -- touched hosts read afresh here: no longer touched
+local function text(v)  -- a carried field: '' stands for an absent one
+  if v == '' then
+    return nil
+  end
+  return v
+end
 local a = 8
 for i = 0, n - 1 do
   local member, outcome, reason = ARGV[a], ARGV[a + 1], ARGV[a + 2]
@@ -45,10 +67,23 @@ for i = 0, n - 1 do
   elseif tonumber(expiry) < now then
     out[#out + 1] = 'expired'
   else
-    local host, score, attempts, url = parse_lease(member)
+    local p = parsed[i + 1]
+    local host, score, attempts, url, carry = p[1], p[2], p[3], p[4], p[5]
     ended[#ended + 1] = member
     ended[member] = true
-    local f = redis.call('HMGET', hk, 'delay_ms', 'crawl_ms', 'boost', 'state', 'fetched', 'pf')
+    local f, best
+    local carried = carry and touched[i + 1] ~= 1 and outcome ~= 'release' and outcome ~= 'retry'
+    if carried then
+      local next, delay, crawl_ms, boost, pf, fetched =
+        string.match(carry, '^([^,]*),([^,]*),([^,]*),([^,]*),([^,]*),([^,]*)$')
+      f = {text(delay), text(crawl_ms), text(boost), 'active', text(fetched), text(pf)}
+      best = text(next)
+    else
+      f = redis.call('HMGET', hk, 'delay_ms', 'crawl_ms', 'boost', 'state', 'fetched', 'pf')
+      if touched[i + 1] == 1 then
+        fresh[#fresh + 1] = host
+      end
+    end
     local fetched = tonumber(f[5] or '0')
     if outcome == 'release' then
       if f[4] == 'blocked' then
@@ -81,11 +116,11 @@ for i = 0, n - 1 do
     if f[2] and f[2] ~= '0' then
       gap = math.max(gap, tonumber(f[2]))
     end
-    -- numbers go to Redis as text made here (see schedule_released)
+    -- numbers go to Redis as text made here (see schedule_released); the lease field is
+    -- cleared in the same call ('' = no lease, _lib.lua)
     local next_ms = string.format('%d', math.floor(now + gap))
     redis.call('HSET', hk, 'next', next_ms, 'rt_ms', rt_text, 'crawl_ms', f[2] or '0',
-               'fetched', string.format('%d', fetched))
-    redis.call('HDEL', hk, 'lease')
+               'fetched', string.format('%d', fetched), 'lease', '')
     if f[4] == 'active' then
       local boost = 1
       if f[3] and f[3] ~= '1' then
@@ -94,7 +129,11 @@ for i = 0, n - 1 do
       if f[6] and f[6] ~= '1' then
         boost = boost * tonumber(f[6])
       end
-      schedule_released(released, host, hot, cold, cap, boost, next_ms)
+      if not carried then
+        local _
+        _, best = best_url(hot, cold, cap)
+      end
+      schedule_released(released, host, best, boost, next_ms)
     end
     out[#out + 1] = 'ok'
   end
@@ -103,6 +142,7 @@ if #ended > 0 then
   each_chunk(ended, 1000, function(...) redis.call('ZREM', KEYS[3], ...) end)
   redis.call('HINCRBY', KEYS[1], 'leased', -#ended)
 end
+each_chunk(fresh, 1000, function(...) redis.call('SREM', S.touched, ...) end)
 if requeued > 0 then
   redis.call('HINCRBY', KEYS[1], 'queued', requeued)
 end

@@ -1,5 +1,5 @@
 -- control: an operator's command on one politeness key.
--- KEYS[1] counts  KEYS[2] reasons  KEYS[3] due  KEYS[4] ready  KEYS[5] prio  KEYS[6] claims
+-- KEYS[1] counts  KEYS[2] reasons  KEYS[3] due  KEYS[4] ready  KEYS[5] prio  KEYS[6] touched
 -- KEYS[7] hosts   KEYS[8] controlled (hosts under operator control)
 -- KEYS[9] host hash  KEYS[10] hot ZSET  KEYS[11] cold LIST
 -- KEYS[12] held hot ZSET  KEYS[13] held cold LIST (a blocked host's queue, set aside)
@@ -82,7 +82,7 @@ if redis.call('EXISTS', hk) == 0 and create ~= '1' then
 end
 
 -- writes -------------------------------------------------------------------------------------
-local S = {due = KEYS[3], ready = KEYS[4], prio = KEYS[5], claims = KEYS[6]}
+local S = {due = KEYS[3], ready = KEYS[4], prio = KEYS[5], touched = KEYS[6]}
 if redis.call('HSETNX', hk, 'state', 'active') == 1 then
   redis.call('HSET', hk, 'boost', '1')
   redis.call('SADD', KEYS[7], host)
@@ -197,13 +197,17 @@ else
 end
 local when = math.floor(math.min(retime(base), now + delay_hi))
 redis.call('HSET', hk, 'next', string.format('%d', when))
+if leased(f[1]) then  -- its completion reads it afresh (complete.lua)
+  touch(S, host)
+end
 if state ~= 'active' then
   redis.call('ZREM', S.due, host)
   redis.call('ZREM', S.ready, host)
   if state == 'blocked' then
     redis.call('HDEL', S.prio, host)
   end
-elseif not f[1] then  -- a leased host is placed when its lease ends
+elseif leased(f[1]) then  -- placed when its lease ends
+else
   local url, score = best_url(hot, cold, cap)
   if not url then
     redis.call('ZREM', S.due, host)
@@ -212,13 +216,11 @@ elseif not f[1] then  -- a leased host is placed when its lease ends
   else
     local p = tonumber(score) * tonumber(f[2] or '1') * tonumber(f[5] or '1')
     redis.call('HSET', S.prio, host, p)
-    if not redis.call('ZSCORE', S.claims, host) then  -- a claimed host is being leased now
-      if in_ready and when <= now then
-        redis.call('ZADD', S.ready, p, host)
-      else
-        redis.call('ZREM', S.ready, host)
-        redis.call('ZADD', S.due, when, host)
-      end
+    if in_ready and when <= now then
+      redis.call('ZADD', S.ready, p, host)
+    else
+      redis.call('ZREM', S.ready, host)
+      redis.call('ZADD', S.due, when, host)
     end
   end
 end

@@ -9,8 +9,9 @@
 -- ARGV[11 ..] the n hosts: the caller's choice first, then stand-ins, best first
 -- A host is leased only if this call takes it out of ready (no other caller did), it is
 -- active and holds no lease: so at most one lease per politeness key exists at any time.
--- Which hosts are still ready is read with one ZMSCORE, and the hosts taken leave ready
--- in one ZREM at the end (the script runs alone, so nothing takes them in between).
+-- Which hosts are still ready is read with one ZMSCORE (the caller's choice; stand-ins
+-- only when some were taken), and the hosts taken leave ready in one ZREM at the end (the
+-- script runs alone, so nothing takes them in between).
 -- Hosts are taken in order until `want` are: a host another caller took since lease_pick
 -- is replaced by the next stand-in (one held back or with nothing queued is not).
 -- Link spam (docs/priority.md): a host whose trust is below the threshold (admit.lua), and
@@ -21,26 +22,36 @@
 -- links, not yet vouched for by enough trusted hosts, never fetched) is first leased a
 -- probation after it was found. Seeds' hosts and hosts the operator marked trusted are
 -- never held back.
--- Returns the lease members ('id\nhost\nscore\nattempts\ntrust\nurl'), one per lease. The
--- trust field is 'T/O': T the host's trust ('x' for a suspect, '-' for a host whose trust
--- is not tracked), O the distinct other hosts its fetched pages linked to so far.
+-- Returns the lease members ('id\nhost\nscore\nattempts\ntrust\ncarry\nurl'), one per
+-- lease. The trust field is 'T/O': T the host's trust ('x' for a suspect, '-' for a host
+-- whose trust is not tracked), O the distinct other hosts its fetched pages linked to so
+-- far. The carry field is what completing the lease needs to place the host again without
+-- reading it (complete.lua), as it stands now: 'next,delay_ms,crawl_ms,boost,pf,fetched',
+-- next being the best score queued after this URL ('' for none) and empty fields absent
+-- ones. Whatever changes the host while it is leased marks it touched (_lib.lua), and its
+-- completion then reads it afresh.
 local n = tonumber(ARGV[3])
 local now = tonumber(ARGV[5])
 local suspect_gap, untrusted_gap = tonumber(ARGV[6]), tonumber(ARGV[7])
 local threshold = tonumber(ARGV[8])
 local probation = tonumber(ARGV[9])
 local want = tonumber(ARGV[10])
+local cap = tonumber(ARGV[4])
 local taken = 0
 local out = {}
 local held = {}
 local seq = redis.call('HINCRBY', KEYS[1], 'lease_seq', n) - n
 local retried = redis.call('HLEN', KEYS[4]) > 0
-local ready = {}  -- each host's score in ready (false: not there), read 1000 at a time
-for i = 1, n, 1000 do
-  local part = redis.call('ZMSCORE', KEYS[2], unpack(ARGV, 10 + i, 10 + math.min(i + 999, n)))
-  for j = 1, #part do
-    ready[i + j - 1] = part[j]
+local ready = {}  -- each host's score in ready (false: not there), read when first needed
+local function still_ready(i)  -- (1-based) read as many hosts as are still wanted
+  if ready[i] == nil then
+    local last = math.min(n, i + want - taken - 1, i + 999)
+    local part = redis.call('ZMSCORE', KEYS[2], unpack(ARGV, 10 + i, 10 + last))
+    for j = 1, #part do
+      ready[i + j - 1] = part[j]
+    end
   end
+  return ready[i]
 end
 local took = {}  -- the hosts this call takes out of ready, in order (and as a set)
 for i = 0, n - 1 do
@@ -49,13 +60,13 @@ for i = 0, n - 1 do
   end
   local host = ARGV[11 + i]
   local hk, hot, cold, outs = KEYS[7 + 4 * i], KEYS[8 + 4 * i], KEYS[9 + 4 * i], KEYS[10 + 4 * i]
-  if ready[i + 1] and not took[host] then
+  if still_ready(i + 1) and not took[host] then
     took[host] = true
     took[#took + 1] = host
     taken = taken + 1
     local f = redis.call('HMGET', hk, 'state', 'lease', 'trust', 'suspect', 'tlease', 'seeded',
-                         'mark', 'probe', 'pf')
-    if f[1] == 'active' and not f[2] then
+                         'mark', 'probe', 'pf', 'delay_ms', 'crawl_ms', 'boost', 'fetched')
+    if f[1] == 'active' and not leased(f[2]) then
       local gap, probing = 0, false
       local trust = f[3]
       local allowed = tonumber(f[5] or '0')
@@ -71,11 +82,11 @@ for i = 0, n - 1 do
       end
       allowed = allowed + gap  -- by the host's standing now
       local wait = (gap > 0 or probing) and allowed > now
-      local url, score = nil, nil
+      local url, score, next = nil, nil, nil
       if wait then
-        redis.call('ZADD', KEYS[6], allowed, host)  -- back to due at its time
+        redis.call('ZADD', KEYS[6], string.format('%d', allowed), host)  -- back to due at its time
       else
-        url, score = pop_best(hot, cold, tonumber(ARGV[4]))
+        url, score, next = pop_best(hot, cold, cap)
       end
       if url then
         seq = seq + 1
@@ -86,7 +97,8 @@ for i = 0, n - 1 do
           signal = string.format('%s/%d', f[4] and 'x' or trust, redis.call('PFCOUNT', outs))
         end
         local member = id .. '\n' .. host .. '\n' .. score .. '\n' .. attempts .. '\n' .. signal
-                       .. '\n' .. url
+                       .. '\n' .. next .. ',' .. (f[10] or '') .. ',' .. (f[11] or '') .. ','
+                       .. (f[12] or '') .. ',' .. (f[9] or '') .. ',' .. (f[13] or '') .. '\n' .. url
         held[#held + 1] = ARGV[1]
         held[#held + 1] = member
         if trust then

@@ -3,7 +3,7 @@
 -- mirrored hosts on the WWW", JASIS 2000: a host whose pages are mostly the pages of
 -- another host is its mirror).
 -- KEYS[1] counts  KEYS[2] reasons  KEYS[3] mirrors SET  KEYS[4] ended journal
--- KEYS[5] due     KEYS[6] ready    KEYS[7] prio         KEYS[8] claims
+-- KEYS[5] due     KEYS[6] ready    KEYS[7] prio         KEYS[8] touched
 -- KEYS[9 ..] per host i (0-based): host hash, copies hash, hot ZSET, cold LIST (4 keys)
 -- ARGV[1] now (ms)  ARGV[2] hot capacity  ARGV[3] min pages (0: off)  ARGV[4] share
 -- ARGV[5] slack  ARGV[6] number of hosts
@@ -23,7 +23,7 @@
 local now, cap = tonumber(ARGV[1]), tonumber(ARGV[2])
 local min_pages, share, slack = tonumber(ARGV[3]), tonumber(ARGV[4]), tonumber(ARGV[5])
 local n = tonumber(ARGV[6])
-local S = {due = KEYS[5], ready = KEYS[6], prio = KEYS[7], claims = KEYS[8]}
+local S = {due = KEYS[5], ready = KEYS[6], prio = KEYS[7], touched = KEYS[8]}
 local out = {}
 local cut_total = 0
 local a = 7

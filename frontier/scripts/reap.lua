@@ -1,6 +1,6 @@
 -- reap: return expired leases of one partition to their hosts.
 -- KEYS[1] counts  KEYS[2] reasons  KEYS[3] leases  KEYS[4] attempts  KEYS[5] dead
--- KEYS[6] due     KEYS[7] ready    KEYS[8] prio    KEYS[9] claims
+-- KEYS[6] due     KEYS[7] ready    KEYS[8] prio    KEYS[9] touched
 -- KEYS[10 ..] per lease i (0-based): host hash, hot ZSET, cold LIST of the lease's host
 -- KEYS[#KEYS] the ended journal (URLs that end dead here)
 -- ARGV[1] now (ms)  ARGV[2] cutoff (ms)  ARGV[3] hot capacity  ARGV[4] max attempts
@@ -18,7 +18,7 @@ local max_attempts = tonumber(ARGV[4])
 local n = tonumber(ARGV[5])
 local C = {counts = KEYS[1], reasons = KEYS[2], attempts = KEYS[4], dead = KEYS[5],
            ended = KEYS[#KEYS]}
-local S = {due = KEYS[6], ready = KEYS[7], prio = KEYS[8], claims = KEYS[9]}
+local S = {due = KEYS[6], ready = KEYS[7], prio = KEYS[8], touched = KEYS[9]}
 local out = {}
 for i = 0, n - 1 do
   local member = ARGV[6 + i]

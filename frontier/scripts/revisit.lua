@@ -1,6 +1,6 @@
 -- revisit: the revisit state and schedule of one partition (continuous crawls).
 -- KEYS[1] counts   KEYS[2] revisits (schedule ZSET 'host url' -> due ms)
--- KEYS[3] due   KEYS[4] ready   KEYS[5] prio   KEYS[6] claims
+-- KEYS[3] due   KEYS[4] ready   KEYS[5] prio   KEYS[6] touched
 -- KEYS[7 ..] per item i (0-based): host hash, revisit state hash, hot ZSET, cold LIST (4 keys)
 -- ARGV[1] op: 'record', 'release', 'drop' or 'sooner'   ARGV[2] now (ms)
 -- ARGV[3] min interval (s)   ARGV[4] max interval (s)   ARGV[5] host revisits a day
@@ -140,7 +140,7 @@ if op == 'record' then
   return out
 end
 
-local S = {due = KEYS[3], ready = KEYS[4], prio = KEYS[5], claims = KEYS[6]}
+local S = {due = KEYS[3], ready = KEYS[4], prio = KEYS[5], touched = KEYS[6]}
 local count = 0
 local touched = {}
 for i = 0, n - 1 do
