@@ -11,6 +11,7 @@ from hypothesis import strategies as st
 
 from frontier.exceptions import UrlError
 from frontier.urls import canonicalize
+import workers.parser as parser_module
 from workers.parser import (
     MAX_ANCHOR_CHARS,
     MAX_TITLE_CHARS,
@@ -134,6 +135,21 @@ def test_resolver_shortcuts_agree_with_full_resolution(base: str, tail: list[str
     assert got == _FullResolution(base).resolve(href)
     if not href.strip("".join(map(chr, range(0x21)))):
         assert got is None
+
+
+def test_remembered_canonical_forms_agree_and_stay_bounded(monkeypatch: pytest.MonkeyPatch) -> None:
+    # The resolver remembers the canonical form of joined hrefs (a crawl meets a URL in
+    # many links): an href met again must resolve exactly as full RFC 3986 resolution
+    # does from each base, and the memo is cleared when full.
+    monkeypatch.setattr(parser_module, "CANONICAL_MEMO_SIZE", 8)
+    monkeypatch.setattr(parser_module, "_CANONICAL", {})
+    bases = ["http://a.test/d/page.html", "http://b.test/d/other.html?q=1", "https://a.test/"]
+    hrefs = [f"/p/{i % 12}.html?x=%7e{i % 3}" for i in range(40)] + ["../x/%41.html", "y.html"] * 5
+    for href in hrefs:
+        for base in bases:
+            assert LinkResolver(base).resolve(href) == _FullResolution(base).resolve(href)
+            assert len(parser_module._CANONICAL) <= 8
+    assert LinkResolver(bases[0]).resolve("/p/1.html?x=%7e1") == "http://a.test/p/1.html?x=~1"
 
 
 def test_fragment_is_removed_and_first_hash_starts_it() -> None:
