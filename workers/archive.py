@@ -164,8 +164,8 @@ _RECORD_START = b"WARC/"  # ISO 28500 s.4: a record opens with its version line
 _INFLATE_CHUNK = 1 << 14  # compressed bytes read at a time while checking a member
 _TAIL_CHUNK = 1 << 16  # bytes read at a time while looking for the log's last newline
 UUID_BYTES = 16
-_UUID_KEEP = ~((0xF000 << 64) | (0xC000 << 48))  # version and variant bits cleared
-_UUID_SET = (4 << 76) | (0x8000 << 48)  # version 4, RFC variant
+_VARIANT_DIGIT = {f"{n:x}": f"{8 | n & 3:x}" for n in range(16)}
+"""A random hex digit with its top two bits set to 10: RFC 9562 s.4.1, the variant."""
 _BASE32_ALPHABET = "ABCDEFGHIJKLMNOPQRSTUVWXYZ234567"  # RFC 4648 s.6
 _BASE32_PAIRS = [a + b for a in _BASE32_ALPHABET for b in _BASE32_ALPHABET]
 """Two Base32 digits per 10 bits; a 160-bit SHA-1 digest is 16 pairs, no padding."""
@@ -486,15 +486,13 @@ def _record_ids(count: int) -> list[str]:
         pool = _random.pool = bytearray()
     if len(pool) < need:
         pool.extend(os.urandom(UUID_BYTES * max(count, _RANDOM_BATCH)))
-    raw = bytes(pool[:need])
+    digits = pool[:need].hex()
     del pool[:need]
-    ids = []
-    for start in range(0, len(raw), UUID_BYTES):
-        number = int.from_bytes(raw[start:start + UUID_BYTES], "big") & _UUID_KEEP | _UUID_SET
-        digits = f"{number:032x}"
-        ids.append(f"<urn:uuid:{digits[:8]}-{digits[8:12]}-{digits[12:16]}-"
-                   f"{digits[16:20]}-{digits[20:]}>")
-    return ids
+    # hex digit 12 of each UUID is its version (4), digit 16 holds the variant bits (10)
+    # over two random bits: the same bits as clearing and setting them in the number
+    return [f"<urn:uuid:{digits[i:i + 8]}-{digits[i + 8:i + 12]}-4{digits[i + 13:i + 16]}-"
+            f"{_VARIANT_DIGIT[digits[i + 16]]}{digits[i + 17:i + 20]}-{digits[i + 20:i + 32]}>"
+            for i in range(0, 2 * need, 2 * UUID_BYTES)]
 
 
 def new_record_id() -> str:
