@@ -428,6 +428,32 @@ async def test_a_batch_is_checked_against_itself_as_one_by_one(client: aioredis.
     assert sum(d is not None for d in distances) > 30  # the batch does hold near-duplicates
 
 
+@pytest.mark.parametrize("layout", [
+    {},  # the worker's: 8 byte-wide blocks, a table per pair, candidates up to 10 bits
+    {"sketch_k": None},  # k = 3: 4 blocks of 16 bits, a table per block
+    {"k": 5, "sketch_k": None},  # 6 blocks of 11 and 10 bits
+    {"sketch_k": 6, "blocks": 9},  # 9 blocks of 8 and 7 bits, a table per three blocks
+])
+async def test_batch_candidates_are_those_found_one_by_one(client: aioredis.Redis,
+                                                           layout: dict[str, Any]) -> None:
+    # Within a batch, a fingerprint's candidates among the earlier ones must be exactly
+    # those the Redis tables would return had they been stored one at a time: sharing a
+    # table key (Manku et al. 2007's pigeonhole), kept up to the index's reach.
+    rng = random.Random(23)
+    bases = [rng.getrandbits(64) for _ in range(5)]
+    batch = [flip(rng.choice(bases), rng.sample(range(FP_BITS), rng.choice([0, 2, 5, 8, 11, 14])))
+             for _ in range(80)]
+    _, key = _keyspace()
+    together = await NearDuplicateIndex(client, key, **layout)._candidates_many(batch)
+    _, other = _keyspace()
+    alone = NearDuplicateIndex(client, other, **layout)
+    one_by_one = [(await alone._candidates_many([fp]))[0] for fp in batch]
+    assert together == one_by_one
+    assert sum(map(len, one_by_one)) >= 20  # the batch does find candidates
+    assert any(hamming(fp, c) > alone.sketch_k for fp, cs in zip(batch, one_by_one) for c in cs) \
+        or alone.reach == alone.sketch_k
+
+
 async def test_generalised_k_uses_k_plus_one_blocks(client: aioredis.Redis) -> None:
     _, key = _keyspace()
     index = NearDuplicateIndex(client, key, k=5, sketch_k=None)
