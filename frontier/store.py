@@ -206,9 +206,12 @@ class FrontierStore:
         self.clock = clock
         self.buckets = seen_buckets(settings)
         self.scripts = Scripts.register(redis)
-        # lease calls of one process go one at a time: picking writes nothing, so calls
-        # made at once would all choose the same best hosts (and fall back to stand-ins)
-        self._lease_lock = asyncio.Lock()
+        # partition -> hosts this process's lease calls chose and have not taken yet:
+        # picking writes nothing, so the lease calls of one process pick one at a time and
+        # pass over each other's choice (instead of all choosing the same best hosts and
+        # falling back to stand-ins); one call's take runs while the next one picks
+        self._choosing: dict[int, set[str]] = {}
+        self._pick_lock = asyncio.Lock()
         self._next_partition = 0
         self._offset_ms = 0  # server clock - local clock, once synced
         # politeness key -> (trust its links hand on, out-linked hosts), as last leased here
@@ -355,13 +358,11 @@ class FrontierStore:
         its fair part, so a partition with many ready hosts can fill in for empty ones and
         the best hosts of the whole job win); the best ``n`` hosts over all partitions are
         leased. Picking writes nothing: the hosts not chosen stay ready and serve as
-        stand-ins, in order, for chosen hosts another caller took meanwhile. A second round
-        asks the partitions that gave all they were asked for, if ``n`` is not reached.
+        stand-ins, in order, for chosen hosts another caller took meanwhile; calls of this
+        process pick one at a time and pass over the hosts the others chose and have not
+        taken yet (one call's take runs while the next one picks). A second round asks the
+        partitions that gave all they were asked for, if ``n`` is not reached.
         """
-        async with self._lease_lock:
-            return await self._lease(n, now)
-
-    async def _lease(self, n: int, now: int | None) -> list[Lease]:
         await self._resync_clock()
         t = self._now(now)
         parts = list(range(self.partitions))
@@ -373,22 +374,33 @@ class FrontierStore:
                     break
                 spread = self.settings.lease.rank_spread
                 ask = min(want, max(1, math.ceil(spread * want / len(parts))))
-                picked = [self._picked(r) for r in await run_many(
-                    self.redis, [self._pick_call(p, ask, t) for p in parts])]
-                ranked = sorted(((score, p, host) for p, hosts in zip(parts, picked)
-                                 for host, score in hosts), reverse=True)
+                busy = self._choosing
                 chosen: dict[int, list[str]] = {}
                 spare: dict[int, list[str]] = {}
-                for i, (_, p, host) in enumerate(ranked):
-                    (chosen if i < want else spare).setdefault(p, []).append(host)
+                async with self._pick_lock:
+                    asks = [ask + len(busy.get(p, ())) for p in parts]
+                    picked = [self._picked(r) for r in await run_many(
+                        self.redis, [self._pick_call(p, k, t) for p, k in zip(parts, asks)])]
+                    full = [p for p, k, hosts in zip(parts, asks, picked) if len(hosts) == k]
+                    ranked = sorted(((score, p, host) for p, hosts in zip(parts, picked)
+                                     for host, score in hosts if host not in busy.get(p, ())),
+                                    reverse=True)
+                    for i, (_, p, host) in enumerate(ranked):
+                        (chosen if i < want else spare).setdefault(p, []).append(host)
+                    for p, hosts in chosen.items():
+                        busy.setdefault(p, set()).update(hosts)
                 expires = t + int(self.settings.lease.ttl_s * 1000)
-                got = await run_many(self.redis, [
-                    self._take_call(p, hosts + spare.get(p, []), len(hosts), expires, t)
-                    for p, hosts in chosen.items()])
+                try:
+                    got = await run_many(self.redis, [
+                        self._take_call(p, hosts + spare.get(p, []), len(hosts), expires, t)
+                        for p, hosts in chosen.items()])
+                finally:
+                    for p, hosts in chosen.items():
+                        busy[p].difference_update(hosts)
                 for members in got:
                     leases += [Lease.from_member(m.decode(), expires) for m in members]
                 self._remember_trust(leases)
-                parts = [p for p, hosts in zip(parts, picked) if len(hosts) == ask]
+                parts = full
         return leases
 
     def _pick_call(self, partition: int, n: int, now: int) -> ScriptCall:

@@ -5,6 +5,7 @@ Time is injected (tests move the clock), so nothing sleeps for politeness.
 
 from __future__ import annotations
 
+import asyncio
 from typing import Any
 
 import pytest
@@ -328,3 +329,29 @@ async def test_take_passes_over_hosts_taken_since_the_pick(make_store: StoreFact
     pk = store.keys.part(0)
     assert [_text(h) for h in await store.redis.zrange(pk.ready, 0, -1)] == [shown[5]]
     assert (await store.counts()).leased == 5
+
+
+async def test_lease_calls_made_at_once_choose_different_hosts(make_store: StoreFactory,
+                                                               clock: Clock) -> None:
+    # one process's lease calls run side by side (no lock): each passes over the hosts the
+    # others chose and have not taken yet, so three calls of 4 lease 12 distinct hosts in
+    # one round each, best first overall, and no host is leased twice
+    store = make_store(store={"partitions": 2}, lease={"rank_spread": 1.0})
+    for i in range(16):
+        await admit(store, f"http://h{i:02d}.test/a", cash=1.0 + i)
+    calls = 0
+    pick = store._pick_call
+
+    def counted(*args: Any) -> Any:
+        nonlocal calls
+        calls += 1
+        return pick(*args)
+
+    store._pick_call = counted  # type: ignore[method-assign]
+    got = await asyncio.gather(*(store.lease(4) for _ in range(3)))
+    hosts = [x.host for g in got for x in g]
+    assert [len(g) for g in got] == [4, 4, 4]
+    assert len(set(hosts)) == 12
+    assert sorted(hosts) == [f"h{i:02d}.test" for i in range(4, 16)]  # the 12 best
+    assert calls == 3 * 2  # one round each (a pick call per partition)
+    assert (await store.counts()).leased == 12
