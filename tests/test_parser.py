@@ -152,6 +152,30 @@ def test_remembered_canonical_forms_agree_and_stay_bounded(monkeypatch: pytest.M
     assert LinkResolver(bases[0]).resolve("/p/1.html?x=%7e1") == "http://a.test/p/1.html?x=~1"
 
 
+def test_shared_selector_engine_finds_what_each_tree_finds() -> None:
+    # One CSS selector engine serves every page of a thread; run over documents in turn
+    # it must find exactly what each tree's own engine (selectolax's tree.css) finds.
+    from selectolax.lexbor import LexborHTMLParser
+
+    documents = [
+        '<base href="/b/"><a href="1">one</a><area href="2" alt="two"><a name="x">no</a>',
+        "<title>T</title><meta name=robots content=nofollow><p><a href='/3'>three</a>",
+        "", "plain text, no markup", "<a href=4><a href=5>nested</a></a><title>x</title>",
+    ]
+    queries = [parser_module.LINK_SELECTOR, "base[href]", "meta[name][content]", "title"]
+    for _ in range(3):
+        for document in documents:
+            tree = LexborHTMLParser(document)
+            for query in queries:
+                ours = [n.html for n in parser_module._css(tree, query)]
+                assert ours == [n.html for n in tree.css(query)]
+                first = parser_module._css_first(tree, query)
+                own = tree.css_first(query)
+                assert (first and first.html) == (own and own.html)
+    assert [ln.url for ln in parse_html(documents[0].encode(), "http://a.test/d/p").links] == [
+        "http://a.test/b/1", "http://a.test/b/2"]
+
+
 def test_fragment_is_removed_and_first_hash_starts_it() -> None:
     # RFC 3986 s.3.5: the fragment starts at the first "#".
     parsed = parse_html(page('<a href="/p?x=1#a#b">x</a>'), "http://site.test/")

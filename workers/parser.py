@@ -21,11 +21,12 @@ from __future__ import annotations
 
 import codecs
 import re
+import threading
 from dataclasses import dataclass, field
 from typing import NamedTuple
 from urllib.parse import urlsplit
 
-from selectolax.lexbor import LexborHTMLParser, LexborNode
+from selectolax.lexbor import LexborCSSSelector, LexborHTMLParser, LexborNode
 
 from frontier.exceptions import UrlError
 from frontier.urls import canonicalize, resolve_reference
@@ -296,9 +297,38 @@ def _plain_authority(rest: str) -> bool:
     return bool(rest) and rest[0] not in "/?" and "[" not in rest and rest.isascii()
 
 
+_selectors = threading.local()
+
+
+def _css(tree: LexborHTMLParser, query: str) -> list[LexborNode]:
+    """``tree.css(query)`` through one selector engine per thread: a tree's own is made
+    (CSS parser, selector lists, matcher) for each page, which cost about as much as
+    the page's four queries themselves; the engine keeps no document state between
+    queries, and the nodes found belong to ``tree``."""
+    root = tree.root
+    if root is None:
+        return []
+    selector = getattr(_selectors, "engine", None)
+    if selector is None:
+        selector = _selectors.engine = LexborCSSSelector()
+    return selector.find(query, root)
+
+
+def _css_first(tree: LexborHTMLParser, query: str) -> LexborNode | None:
+    """``tree.css_first(query)`` through the thread's selector engine (see ``_css``)."""
+    root = tree.root
+    if root is None:
+        return None
+    selector = getattr(_selectors, "engine", None)
+    if selector is None:
+        selector = _selectors.engine = LexborCSSSelector()
+    found = selector.find_first(query, root)
+    return found[0] if found else None
+
+
 def _document_base(tree: LexborHTMLParser, url: str) -> str:
     """The first ``<base href>`` resolved against the page URL, else the page URL."""
-    node = tree.css_first("base[href]")
+    node = _css_first(tree, "base[href]")
     href = (node.attributes.get("href") or "").strip() if node is not None else ""
     if not href:
         return url
@@ -308,7 +338,7 @@ def _document_base(tree: LexborHTMLParser, url: str) -> str:
 def _meta_robots(tree: LexborHTMLParser) -> tuple[bool, bool]:
     """(nofollow, noindex) from every ``<meta name="robots">``."""
     nofollow = noindex = False
-    for node in tree.css("meta[name][content]"):
+    for node in _css(tree, "meta[name][content]"):
         attrs = node.attributes
         if (attrs.get("name") or "").strip().lower() != "robots":
             continue
@@ -332,7 +362,7 @@ def _links(tree: LexborHTMLParser, base: str, max_links: int) -> tuple[list[Link
     """The first ``max_links`` links in document order, and whether more followed."""
     links: list[Link] = []
     resolver = LinkResolver(base)
-    for node in tree.css(LINK_SELECTOR):
+    for node in _css(tree, LINK_SELECTOR):
         attrs = node.attributes
         absolute = resolver.resolve(attrs.get("href") or "")
         if absolute is None:
@@ -358,7 +388,7 @@ def parse_html(
     base = _document_base(tree, url)
     meta_nofollow, meta_noindex = _meta_robots(tree)
     links, links_capped = _links(tree, base, max_links)
-    title_node = tree.css_first("title")
+    title_node = _css_first(tree, "title")
     title = collapse(title_node.text(deep=True)) if title_node is not None else ""
     tree.strip_tags(INVISIBLE_TAGS)
     text_root = tree.body or tree.root
