@@ -36,12 +36,9 @@ for i = 0, n - 1 do
   members[i + 1] = ARGV[8 + 6 * i]
 end
 local expiries = n > 0 and redis.call('ZMSCORE', KEYS[3], unpack(members)) or {}
-local parsed = {}  -- per lease: {host, score, attempts, url, carry}
-local hosts = {}
+local hosts, scores, tries, urls, carries = {}, {}, {}, {}, {}  -- per lease, parsed once
 for i = 1, n do
-  local host, score, attempts, url, carry = parse_lease(members[i])
-  parsed[i] = {host, score, attempts, url, carry}
-  hosts[i] = host
+  hosts[i], scores[i], tries[i], urls[i], carries[i] = parse_lease(members[i])
 end
 local touched = {}  -- per lease: its host was touched while leased
 if n > 0 and redis.call('SCARD', S.touched) > 0 then
@@ -67,8 +64,8 @@ for i = 0, n - 1 do
   elseif tonumber(expiry) < now then
     out[#out + 1] = 'expired'
   else
-    local p = parsed[i + 1]
-    local host, score, attempts, url, carry = p[1], p[2], p[3], p[4], p[5]
+    local host, score, attempts, url = hosts[i + 1], scores[i + 1], tries[i + 1], urls[i + 1]
+    local carry = carries[i + 1]
     ended[#ended + 1] = member
     ended[member] = true
     local f, best
