@@ -163,3 +163,16 @@ async def test_priority_after_each_completion_is_the_best_score_left(
         await store.complete_many([Completion(got[0], Outcome.FETCHED)])
     assert sorted(leased) == sorted(urls)
     assert (await store.counts()).balanced
+
+
+async def test_a_reaped_lease_leaves_no_touched_mark(make_store: StoreFactory, clock: Clock) -> None:
+    store = make_store(politeness=QUICK, lease={"ttl_s": 5.0})
+    await admit(store, "http://a.test/1")
+    (lease,) = await store.lease(1)
+    await admit(store, "http://a.test/2", cash=9.0)
+    assert (await placed(store, "a.test"))["touched"]
+    clock.advance(6)
+    assert (await store.reap())["requeued"] == 1
+    where = await placed(store, "a.test")
+    assert not where["touched"]
+    assert where["prio"] == await best_queued(store, "a.test")

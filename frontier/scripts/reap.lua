@@ -30,6 +30,7 @@ for i = 0, n - 1 do
     redis.call('ZREM', KEYS[3], member)
     if redis.call('HGET', hk, 'lease') == id then
       redis.call('HDEL', hk, 'lease')
+      redis.call('SREM', S.touched, host)  -- the lease it was marked for is over
     end
     redis.call('HINCRBY', KEYS[1], 'leased', -1)
     local result = retry_or_bury(C, hk, hot, cold, url, score, 'lease_expired', cap, max_attempts)
