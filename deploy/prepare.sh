@@ -44,11 +44,12 @@ if ! { have redis-server || have valkey-server; } || ! { have redis-cli || have 
 fi
 
 # The tests of the status page and of the metrics run a headless browser (chromium) and
-# a real Prometheus (prometheus, promtool); installed as root when missing, unless
-# SLUICE_TEST_TOOLS=0 (a machine that only crawls).
+# a real Prometheus (prometheus, promtool), the Redis instruction count valgrind;
+# installed as root when missing, unless SLUICE_TEST_TOOLS=0 (a machine that only crawls).
 test_tools=()
 [ "${SLUICE_TEST_TOOLS:-1}" = 0 ] || have chromium || have chromium-browser ||
     test_tools+=(chromium)
+[ "${SLUICE_TEST_TOOLS:-1}" = 0 ] || have valgrind || test_tools+=(valgrind)
 [ "${SLUICE_TEST_TOOLS:-1}" = 0 ] || { have prometheus && have promtool; } ||
     test_tools+=(prometheus)
 if [ "${#test_tools[@]}" -gt 0 ]; then
@@ -56,7 +57,7 @@ if [ "${#test_tools[@]}" -gt 0 ]; then
         apt_packages "${test_tools[@]}" ||
             echo "prepare: could not install ${test_tools[*]}; their tests will fail" >&2
     else
-        echo "prepare: the status page and Prometheus tests need ${test_tools[*]}:" \
+        echo "prepare: the status page, Prometheus and instruction-count tests need ${test_tools[*]}:" \
              "'sudo apt-get install ${test_tools[*]}'" >&2
     fi
 fi

@@ -402,6 +402,10 @@ def cmd_demo(a: argparse.Namespace) -> int:
 
 def cmd_bench(a: argparse.Namespace) -> int:
     if a.what == "frontier":
+        if a.instructions:
+            from frontier.bench.redis_instructions import main as instructions_main
+            return instructions_main(urls=a.urls or 40_000, hosts=a.hosts or 400,
+                                     lease_limit=a.lease_urls or 16_000)
         from frontier.bench.frontier_bench import main as frontier_main
         return frontier_main(urls=a.urls or 1_000_000, hosts=a.hosts or 10_000, aof=not a.no_aof,
                              cluster=a.cluster, lease_limit=a.lease_urls)
@@ -518,6 +522,9 @@ def parser() -> argparse.ArgumentParser:
                    help="frontier: run the embedded Redis without its append-only file")
     b.add_argument("--cluster", action="store_true",
                    help="frontier: also run on a 3-master Redis Cluster on loopback")
+    b.add_argument("--instructions", action="store_true",
+                   help="frontier: count Redis's instructions per URL under valgrind "
+                   "(small sizes; the same on a busy machine)")
     b.add_argument("--lease-urls", type=_positive(int), metavar="N",
                    help="frontier: lease and complete at most N URLs (default: drain)")
     b.add_argument("--processes", type=_process_counts, default=(1,), metavar="N[,N...]",
