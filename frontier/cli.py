@@ -404,7 +404,7 @@ def cmd_bench(a: argparse.Namespace) -> int:
     if a.what == "frontier":
         if a.instructions:
             from frontier.bench.redis_instructions import main as instructions_main
-            return instructions_main(urls=a.urls or 40_000, hosts=a.hosts or 400,
+            return instructions_main(urls=a.urls or 60_000, hosts=a.hosts or 3_000,
                                      lease_limit=a.lease_urls or 16_000)
         from frontier.bench.frontier_bench import main as frontier_main
         return frontier_main(urls=a.urls or 1_000_000, hosts=a.hosts or 10_000, aof=not a.no_aof,

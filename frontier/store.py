@@ -44,6 +44,7 @@ LEASE_ROUNDS = 2
 COLD_SCAN_CHUNK = 1000  # cold-list entries read per call when looking for one URL
 COLD_SCAN_LIMIT = 200_000  # entries of one cold list searched before giving up
 RELEASE = "release"  # the complete script's outcome for a lease handed back unfinished
+HASH_LISTPACK_ENTRIES = 64  # above a host hash's fields (about 30 at most), below a partition's hosts
 TRUST_MEMO_SIZE = 100_000  # leased hosts whose trust this store remembers for admission
 
 
@@ -181,11 +182,16 @@ def seen_buckets(settings: JobSettings) -> int:
 
 
 def redis_tuning(settings: JobSettings) -> dict[str, str]:
-    """Server settings that keep the frontier compact (listpack hot windows, intset buckets)."""
+    """Server settings that keep the frontier compact (listpack hot windows, intset buckets)
+    and its per-partition hashes fast: a listpack hash is searched field by field, so the
+    partitions' host priorities ('prio', read for every lease) turn into hash tables past
+    ``HASH_LISTPACK_ENTRIES`` hosts, while a host's own hash (a few dozen fields at most)
+    stays a compact listpack."""
     return {
         "zset-max-listpack-entries": str(settings.store.hot_capacity),
         "zset-max-listpack-value": str(settings.scope.max_url_length + 16),
         "set-max-intset-entries": str(settings.store.seen_bucket_entries),
+        "hash-max-listpack-entries": str(HASH_LISTPACK_ENTRIES),
     }
 
 

@@ -7,14 +7,14 @@
 -- nothing. Returns {host, priority, host, priority, ...}, best first. lease_take (with the
 -- hosts' keys) takes each one out of ready as it leases it.
 local now = tonumber(ARGV[1])
-local stale = redis.call('ZRANGEBYSCORE', KEYS[4], '-inf', now, 'LIMIT', 0, 1000)
+local stale = redis.call('ZRANGEBYSCORE', KEYS[4], '-inf', ARGV[1], 'LIMIT', '0', '1000')
 for _, host in ipairs(stale) do
   redis.call('ZREM', KEYS[4], host)
   if redis.call('HEXISTS', KEYS[3], host) == 1 then
     redis.call('ZADD', KEYS[1], 'NX', now, host)
   end
 end
-local due = redis.call('ZRANGEBYSCORE', KEYS[1], '-inf', now, 'LIMIT', 0, tonumber(ARGV[4]))
+local due = redis.call('ZRANGEBYSCORE', KEYS[1], '-inf', ARGV[1], 'LIMIT', '0', ARGV[4])
 if #due > 0 then
   redis.call('ZREM', KEYS[1], unpack(due))
   local prios = redis.call('HMGET', KEYS[3], unpack(due))
@@ -29,4 +29,16 @@ if #due > 0 then
     redis.call('ZADD', KEYS[2], unpack(add))
   end
 end
-return redis.call('ZREVRANGE', KEYS[2], 0, tonumber(ARGV[2]) - 1, 'WITHSCORES')
+-- the priorities as 'prio' holds them (the same values as the scores in ready): text, where
+-- ZREVRANGE's WITHSCORES would format each score anew
+local best = redis.call('ZREVRANGE', KEYS[2], '0', tostring(tonumber(ARGV[2]) - 1))
+if #best == 0 then
+  return best
+end
+local prios = redis.call('HMGET', KEYS[3], unpack(best))
+local out = {}
+for i, host in ipairs(best) do
+  out[2 * i - 1] = host
+  out[2 * i] = prios[i] or redis.call('ZSCORE', KEYS[2], host)
+end
+return out
