@@ -44,6 +44,7 @@ LEASE_ROUNDS = 2
 COLD_SCAN_CHUNK = 1000  # cold-list entries read per call when looking for one URL
 COLD_SCAN_LIMIT = 200_000  # entries of one cold list searched before giving up
 RELEASE = "release"  # the complete script's outcome for a lease handed back unfinished
+SKIPLIST_MARK_HEAD = "~sluice keeps this sorted set a skiplist~"
 HASH_LISTPACK_ENTRIES = 64  # above a host hash's fields (about 30 at most), below a partition's hosts
 TRUST_MEMO_SIZE = 100_000  # leased hosts whose trust this store remembers for admission
 
@@ -218,6 +219,7 @@ class FrontierStore:
         # falling back to stand-ins); one call's take runs while the next one picks
         self._choosing: dict[int, set[str]] = {}
         self._pick_lock = asyncio.Lock()
+        self._marked = False  # the skiplist marks are in place (mark_sets, at the first lease)
         self._next_partition = 0
         self._offset_ms = 0  # server clock - local clock, once synced
         # politeness key -> (trust its links hand on, out-linked hosts), as last leased here
@@ -241,6 +243,35 @@ class FrontierStore:
             log.warning("could not tune Redis (%s): memory per URL will be higher", exc)
             return False
         return True
+
+    def skiplist_mark(self) -> str:
+        """The member that keeps a partition's due, ready and leases sets skiplists: longer
+        than any member a listpack may hold (``zset-max-listpack-value``, tuned to the
+        longest URL), so Redis converts the set at once and, the mark never leaving, keeps
+        it so. A listpack set is searched member by member (scores read back as text):
+        at the hundred-odd hosts or leases of a busy partition each insert or lookup cost
+        more than the whole rest of a lease (docs/benchmarks.md). Hosts and leases never
+        look like it (no URL is this long); scripts pass over it by its score (+inf in due
+        and leases, -inf in ready) or its missing priority."""
+        return SKIPLIST_MARK_HEAD + "~" * (self.settings.scope.max_url_length + 17)
+
+    async def mark_sets(self) -> None:
+        """Put the skiplist mark in every partition's due, ready and leases sets (a store
+        does at its first lease; idempotent)."""
+        mark = self.skiplist_mark()
+        async with redis_boundary("mark sets"):
+            await asyncio.gather(*(
+                self.redis.zadd(key, {mark: score}, nx=True)
+                for pk in self.keys.parts
+                for key, score in ((pk.due, math.inf), (pk.leases, math.inf),
+                                   (pk.ready, -math.inf))))
+
+    async def set_size(self, key: str) -> int:
+        """Members of a due, ready or leases set, the skiplist mark not counted."""
+        size = int(await self.redis.zcard(key))
+        if size and await self.redis.zscore(key, self.skiplist_mark()) is not None:
+            size -= 1
+        return size
 
     def _now(self, now: int | None) -> int:
         return now_ms(self.clock) + self._offset_ms if now is None else now
@@ -370,6 +401,9 @@ class FrontierStore:
         partitions that gave all they were asked for, if ``n`` is not reached.
         """
         await self._resync_clock()
+        if not self._marked:
+            await self.mark_sets()
+            self._marked = True
         t = self._now(now)
         parts = list(range(self.partitions))
         leases: list[Lease] = []
@@ -585,7 +619,7 @@ class FrontierStore:
         pulled = 0
         async with redis_boundary("recover"):
             for pk in self.keys.parts:
-                late = await self.redis.zrangebyscore(pk.due, f"({latest}", "+inf")
+                late = await self.redis.zrangebyscore(pk.due, f"({latest}", "(+inf")
                 if late:
                     await self.redis.zadd(pk.due, {h: t for h in late}, xx=True)
                     pulled += len(late)
@@ -729,8 +763,8 @@ class FrontierStore:
             out["due_ms"] = await r.zscore(pk.due, host)
             out["ready_priority"] = await r.zscore(pk.ready, host)
             out["ready_rank"] = await r.zrevrank(pk.ready, host)
-            out["ready_size"] = await r.zcard(pk.ready)
-            out["due_size"] = await r.zcard(pk.due)
+            out["ready_size"] = await self.set_size(pk.ready)
+            out["due_size"] = await self.set_size(pk.due)
             out["claimed_until_ms"] = await r.zscore(pk.claims, host)
             prio = await r.hget(pk.prio, host)
             out["priority"] = float(prio) if prio is not None else None

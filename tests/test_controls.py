@@ -80,10 +80,11 @@ async def frontier_faults(store: FrontierStore) -> list[str]:
     queued = leased = 0
     for pk in store.keys.parts:
         hosts = sorted(_text(h) for h in await r.smembers(pk.hosts))
-        due = {_text(h) for h in await r.zrange(pk.due, 0, -1)}
-        ready = {_text(h) for h in await r.zrange(pk.ready, 0, -1)}
+        # (the skiplist mark sits at +inf in due and leases, -inf in ready)
+        due = {_text(h) for h in await r.zrangebyscore(pk.due, "-inf", "(+inf")}
+        ready = {_text(h) for h in await r.zrangebyscore(pk.ready, "(-inf", "+inf")}
         claims = {_text(h) for h in await r.zrange(pk.claims, 0, -1)}
-        members = [_text(m) for m in await r.zrange(pk.leases, 0, -1)]
+        members = [_text(m) for m in await r.zrangebyscore(pk.leases, "-inf", "(+inf")]
         leased += len(members)
         for host, prio in (await r.hgetall(pk.prio)).items():
             if not math.isfinite(float(prio)):

@@ -188,7 +188,7 @@ class FrontierMachine(RuleBasedStateMachine):
                         places.setdefault(_text(url), []).append(name)
                     for item in await self.client.lrange(cold, 0, -1):
                         places.setdefault(_text(item).split(" ", 1)[1], []).append(name)
-            for member in await self.client.zrange(pk.leases, 0, -1):
+            for member in await self.client.zrangebyscore(pk.leases, "-inf", "(+inf"):  # (not the skiplist mark)
                 places.setdefault(_text(member).rsplit("\n", 1)[1], []).append("leased")
             for url in await self.client.hkeys(pk.dead):
                 places.setdefault(_text(url), []).append("dead")
@@ -213,7 +213,7 @@ class FrontierMachine(RuleBasedStateMachine):
     def one_lease_per_host(self) -> None:
         hosts: list[str] = []
         for pk in self.store.keys.parts:
-            for member in self.run(self.client.zrange(pk.leases, 0, -1)):
+            for member in self.run(self.client.zrangebyscore(pk.leases, "-inf", "(+inf")):
                 hosts.append(_text(member).split("\n", 2)[1])
         assert len(hosts) == len(set(hosts))
 

@@ -38,7 +38,9 @@ end
 local prios = redis.call('HMGET', KEYS[3], unpack(best))
 local out = {}
 for i, host in ipairs(best) do
-  out[2 * i - 1] = host
-  out[2 * i] = prios[i] or redis.call('ZSCORE', KEYS[2], host)
+  if prios[i] then  -- (the skiplist mark has no priority: FrontierStore.skiplist_mark)
+    out[#out + 1] = host
+    out[#out + 1] = prios[i]
+  end
 end
 return out
