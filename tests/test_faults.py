@@ -282,7 +282,11 @@ SERVED_BETWEEN_KILLS = 40
 def test_ten_worker_kills_in_one_crawl(tmp_path: Path, redis_aof: RedisServer) -> None:
     rng = random.Random(7)
     with WebThread(make_web(seed=16, hosts=20, pages=800)) as web:
-        crew = crawl_with_crew(tmp_path, web, "ten-kills", redis_aof.url)
+        # each kill counts a failed attempt against every URL its worker held: more attempts
+        # than kills, so no URL runs out of them through kills alone (under load a URL was
+        # held at three of the ten kills and ended dead, though archived)
+        crew = crawl_with_crew(tmp_path, web, "ten-kills", redis_aof.url,
+                               lease={"ttl_s": 4.0, "batch": 16, "max_attempts": KILLS + 1})
         try:
             marks = []
             for _ in range(KILLS):
