@@ -59,15 +59,16 @@ local function refill(hot, cold, cap)
     return 0
   end
   local rows = {}
-  for i, item in ipairs(items) do
+  for i = 1, #items do
+    local item = items[i]
     local sp = string.find(item, ' ', 1, true)
     local score = string.sub(item, 1, sp - 1)
     rows[i] = {tonumber(score), score, string.sub(item, sp + 1)}
   end
   table.sort(rows, function(x, y) return x[1] > y[1] end)
   local add = {}
-  for i, row in ipairs(rows) do
-    add[2 * i - 1], add[2 * i] = row[2], row[3]
+  for i = 1, #rows do
+    add[2 * i - 1], add[2 * i] = rows[i][2], rows[i][3]
   end
   redis.call('ZADD', hot, unpack(add))
   return #items

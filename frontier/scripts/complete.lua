@@ -106,16 +106,35 @@ for i = 0, n - 1 do
     if crawl ~= '' then
       f[2] = crawl
     end
-    local gap = math.max(min_delay, math.min(factor * rt, rt_cap), extra)
+    -- max(min delay, min(factor x rt, cap), extra, operator delay, crawl-delay), compared
+    -- in line (each call of a library function costs about as much as a Redis command's
+    -- own work here)
+    local gap = factor * rt
+    if gap > rt_cap then
+      gap = rt_cap
+    end
+    if gap < min_delay then
+      gap = min_delay
+    end
+    if extra > gap then
+      gap = extra
+    end
     if f[1] then
-      gap = math.max(gap, tonumber(f[1]))
+      local delay = tonumber(f[1])
+      if delay > gap then
+        gap = delay
+      end
     end
     if f[2] and f[2] ~= '0' then
-      gap = math.max(gap, tonumber(f[2]))
+      local delay = tonumber(f[2])
+      if delay > gap then
+        gap = delay
+      end
     end
-    -- numbers go to Redis as text made here (see schedule_released); the lease field is
-    -- cleared in the same call ('' = no lease, _lib.lua)
-    local next_ms = string.format('%d', math.floor(now + gap))
+    -- numbers go to Redis as text made here (see schedule_released; '%d' drops the
+    -- fraction of a positive time, as floor would); the lease field is cleared in the same
+    -- call ('' = no lease, _lib.lua)
+    local next_ms = string.format('%d', now + gap)
     redis.call('HSET', hk, 'next', next_ms, 'rt_ms', rt_text, 'crawl_ms', f[2] or '0',
                'fetched', string.format('%d', fetched), 'lease', '')
     if f[4] == 'active' then

@@ -8,7 +8,8 @@
 -- hosts' keys) takes each one out of ready as it leases it.
 local now = tonumber(ARGV[1])
 local stale = redis.call('ZRANGEBYSCORE', KEYS[4], '-inf', ARGV[1], 'LIMIT', '0', '1000')
-for _, host in ipairs(stale) do
+for i = 1, #stale do  -- (numeric loops: ipairs calls a library function per step)
+  local host = stale[i]
   redis.call('ZREM', KEYS[4], host)
   if redis.call('HEXISTS', KEYS[3], host) == 1 then
     redis.call('ZADD', KEYS[1], 'NX', now, host)
@@ -19,7 +20,8 @@ if #due > 0 then
   redis.call('ZREM', KEYS[1], unpack(due))
   local prios = redis.call('HMGET', KEYS[3], unpack(due))
   local add = {}
-  for i, host in ipairs(due) do
+  for i = 1, #due do
+    local host = due[i]
     if prios[i] then
       add[#add + 1] = prios[i]
       add[#add + 1] = host
@@ -37,7 +39,8 @@ if #best == 0 then
 end
 local prios = redis.call('HMGET', KEYS[3], unpack(best))
 local out = {}
-for i, host in ipairs(best) do
+for i = 1, #best do
+  local host = best[i]
   if prios[i] then  -- (the skiplist mark has no priority: FrontierStore.skiplist_mark)
     out[#out + 1] = host
     out[#out + 1] = prios[i]

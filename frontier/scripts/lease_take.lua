@@ -69,8 +69,9 @@ for i = 0, n - 1 do
     if f[1] == 'active' and not leased(f[2]) then
       local gap, probing = 0, false
       local trust = f[3]
-      local allowed = tonumber(f[5] or '0')
+      local allowed = 0  -- (its last lease's time matters only when a gap applies)
       if trust and not f[6] and f[7] ~= 'trusted' then
+        allowed = tonumber(f[5] or '0')
         if f[4] then
           gap = suspect_gap
         elseif tonumber(trust) < threshold and f[9] ~= '1' then  -- not endorsed (admit.lua)
