@@ -334,21 +334,13 @@ class NearDuplicateIndex:
         self.tables = table_blocks(blocks, self.sketch_k)
         self._pairs = ([(i, self.widths[j], j) for i, j in self.tables]
                        if all(len(t) == 2 for t in self.tables) else None)
-        # byte-wide blocks (64 bits in 8): a fingerprint's blocks are its bytes
-        self._bytewise = self.widths == [8] * (FP_BITS // 8)
-        # every choice of ``blocks - sketch_k`` blocks is a table, so two fingerprints
-        # share a table key exactly when they agree on at least that many blocks
-        self._agree = blocks - self.sketch_k
         self.threshold = threshold
         self._script: Any = None
         self._set_absent_script: Any = None
 
     def table_values(self, fp: int) -> list[int]:
         """``fp``'s key in each table: its chosen blocks' bits side by side."""
-        if self._bytewise:
-            parts: Any = to_unsigned(fp).to_bytes(_BYTES, "big")
-        else:
-            parts = split_blocks(to_unsigned(fp), self.widths)
+        parts = split_blocks(to_unsigned(fp), self.widths)
         if self._pairs is not None:
             return [parts[i] << width | parts[j] for i, width, j in self._pairs]
         values = []
@@ -358,13 +350,6 @@ class NearDuplicateIndex:
                 value = value << self.widths[b] | parts[b]
             values.append(value)
         return values
-
-    def _shares_table(self, difference: int) -> bool:
-        """Whether two fingerprints whose bits differ in ``difference`` (their XOR) have
-        the same key in some table: they agree on at least ``blocks - sketch_k`` blocks."""
-        if self._bytewise:
-            return difference.to_bytes(_BYTES, "big").count(0) >= self._agree
-        return split_blocks(difference, self.widths).count(0) >= self._agree
 
     def keys(self, fp: int) -> list[str]:
         """The bucket keys ``fp`` belongs to, one per table."""
@@ -421,21 +406,22 @@ class NearDuplicateIndex:
             candidates = [flat[i * width:(i + 1) * width] for i in range(len(unsigned))]
         elif isinstance(self.redis, Redis):  # one script call: look up, then store
             found = await self._lookup_and_add(keys, unsigned)
-            candidates = [[f] for f in found]
+            candidates = [[set(f)] for f in found]
             stored_already = True
         else:  # a wrapped client: one SUNION per fingerprint, then the SADDs
             candidates = [[found] for found in await self._unions(keys)]
         out: list[list[int]] = []
-        # earlier fingerprints of the batch that share a table key (the same pigeonhole
-        # as the index) and lie within reach: those agreeing on enough whole blocks
-        reach, shares = self.reach, self._shares_table
-        for i, fp in enumerate(unsigned):
-            found = candidates[i]
-            stored = {to_unsigned(int(m)) for m in (
-                found[0] if len(found) == 1 else set().union(*found))}
-            near = [e for e in unsigned[:i] if (fp ^ e).bit_count() <= reach and shares(fp ^ e)]
-            ranked = sorted((hamming(fp, c), c) for c in stored.union(near))
-            out.append([c for d, c in ranked if d <= reach])
+        # earlier fingerprints of the batch by table key: the same pigeonhole as the
+        # index, so a fingerprint is compared only with those sharing a table key
+        earlier_by_table: list[dict[int, list[int]]] = [{} for _ in self.tables]
+        for i, (fp, values) in enumerate(zip(unsigned, table_values)):
+            stored = {to_unsigned(int(m)) for m in set().union(*candidates[i])}
+            near = {e for table, value in zip(earlier_by_table, values)
+                    for e in table.get(value, ())}
+            ranked = sorted((hamming(fp, c), c) for c in stored | near)
+            out.append([c for d, c in ranked if d <= self.reach])
+            for table, value in zip(earlier_by_table, values):
+                table.setdefault(value, []).append(fp)
         if not stored_already:
             await self._add_many(keys, unsigned)
         return out
