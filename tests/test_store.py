@@ -333,9 +333,9 @@ async def test_take_passes_over_hosts_taken_since_the_pick(make_store: StoreFact
 
 async def test_lease_calls_made_at_once_choose_different_hosts(make_store: StoreFactory,
                                                                clock: Clock) -> None:
-    # one process's lease calls run side by side (no lock): each passes over the hosts the
-    # others chose and have not taken yet, so three calls of 4 lease 12 distinct hosts in
-    # one round each, best first overall, and no host is leased twice
+    # one process's lease calls made at once go one at a time, so three calls of 4 lease
+    # 12 distinct hosts in one round each (no call falls back to stand-ins or a second
+    # round), best first overall, and no host is leased twice
     store = make_store(store={"partitions": 2}, lease={"rank_spread": 1.0})
     for i in range(16):
         await admit(store, f"http://h{i:02d}.test/a", cash=1.0 + i)
