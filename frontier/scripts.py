@@ -8,6 +8,7 @@ script cache changes nothing.
 from __future__ import annotations
 
 import asyncio
+import weakref
 from dataclasses import dataclass
 from functools import cache
 from importlib import resources
@@ -70,6 +71,7 @@ async def run_settled(client: Any, calls: list[ScriptCall]) -> list[Any]:
     if not calls:
         return []
     if isinstance(client, RedisCluster):
+        await _loaded_on_cluster(client, [script for script, _, _ in calls])
         return list(await asyncio.gather(*(script(keys, args) for script, keys, args in calls),
                                          return_exceptions=True))
     results = await _pipelined(client, calls)
@@ -80,6 +82,22 @@ async def run_settled(client: Any, calls: list[ScriptCall]) -> list[Any]:
             except RedisError as exc:
                 results[i] = exc
     return results
+
+
+_cluster_loaded: weakref.WeakKeyDictionary[Any, set[str]] = weakref.WeakKeyDictionary()
+
+
+async def _loaded_on_cluster(client: Any, scripts: list[Any]) -> None:
+    """Load scripts on every master of a Cluster before their first calls from ``client``.
+    Calls made at once that each met NOSCRIPT and reloaded their script made redis-py
+    8.1's Cluster client write on a connection it was reconnecting ('NoneType' object
+    has no attribute 'writelines'); loaded beforehand, none meets it. (A master that
+    joins later is loaded by the NOSCRIPT fallback, one call at a time.)"""
+    done = _cluster_loaded.setdefault(client, set())
+    for script in scripts:
+        if script.sha not in done:
+            await client.script_load(script.script)  # SCRIPT LOAD goes to every primary
+            done.add(script.sha)
 
 
 async def run_replicated(client: Any, calls: list[ScriptCall], replicas: int,
