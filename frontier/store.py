@@ -418,7 +418,6 @@ class FrontierStore:
                 ask = min(want, max(1, math.ceil(spread * want / len(parts))))
                 picked = [self._picked(r) for r in await run_many(
                     self.redis, [self._pick_call(p, ask, t) for p in parts])]
-                full = [p for p, hosts in zip(parts, picked) if len(hosts) == ask]
                 ranked = sorted(((score, p, host) for p, hosts in zip(parts, picked)
                                  for host, score in hosts), reverse=True)
                 chosen: dict[int, list[str]] = {}
@@ -432,7 +431,7 @@ class FrontierStore:
                 for members in got:
                     leases += [Lease.from_member(m.decode(), expires) for m in members]
                 self._remember_trust(leases)
-                parts = full
+                parts = [p for p, hosts in zip(parts, picked) if len(hosts) == ask]
         return leases
 
     def _pick_call(self, partition: int, n: int, now: int) -> ScriptCall:

@@ -74,10 +74,9 @@ local function refill(hot, cold, cap)
   return #items
 end
 
--- (Numbers handed to redis.call are written as text: a Lua number is formatted with
--- '%.17g' on every call, about a microsecond each.)
-
--- The host's best queued URL and score (refilling an empty hot window), or nil.
+-- The host's best queued URL and score (refilling an empty hot window), or nil. (Numbers
+-- handed to redis.call here and below are written as text: Redis formats a Lua number
+-- with '%.17g' on every call, about a microsecond each.)
 local function best_url(hot, cold, cap)
   local best = redis.call('ZREVRANGE', hot, '0', '0', 'WITHSCORES')
   if #best == 0 and refill(hot, cold, cap) > 0 then
@@ -101,9 +100,11 @@ local function pop_best(hot, cold, cap)
   end
   redis.call('ZREMRANGEBYRANK', hot, '-1', '-1')
   local next = top[4]
-  if not next then
-    local _, after = best_url(hot, cold, cap)  -- the window ran empty: refilled here
-    next = after or ''
+  if not next then  -- the pop emptied the window: refill it now
+    next = ''
+    if refill(hot, cold, cap) > 0 then
+      next = redis.call('ZREVRANGE', hot, '0', '0', 'WITHSCORES')[2]
+    end
   end
   return top[1], top[2], next
 end
@@ -161,9 +162,8 @@ end
 -- factor) and `score` (text: its best queued score, nil when none) come from the caller;
 -- `next_ms` is text. The writes are gathered in `out` = {prio = {host, p, ...},
 -- due = {ms, host, ...}, idle = {host, ...}} and made by flush_released, a few calls for
--- a whole batch. Values go to Redis as text: a Lua number passed to redis.call is
--- formatted with '%.14g', which costs about a microsecond each. An unboosted priority is
--- the score as the reply gave it (the same text while it has at most 14 digits).
+-- a whole batch. Values go to Redis as text (see best_url). An unboosted priority is the
+-- score as the reply gave it (the same text a number of at most 14 digits would give).
 local function schedule_released(out, host, score, boost, next_ms)
   if not score then
     out.idle[#out.idle + 1] = host
@@ -228,7 +228,8 @@ end
 -- 'id\nhost\nscore\nattempts\ntrust\ncarry\nurl' (trust and carry: see lease_take; members
 -- of older forms lack carry, or both); the worker holds the same string, so completing
 -- needs no second lookup. Returns host, score, attempts, url, carry (nil when absent).
--- (string.match: a quarter of the cost of finding each newline in turn.)
+-- (One string.match costs about what finding each newline with string.find and cutting
+-- the fields with string.sub does, 8,100 against 8,400 instructions, in one call.)
 local function parse_lease(member)
   local host, score, attempts, carry, url =
     string.match(member, '^[^\n]*\n([^\n]*)\n([^\n]*)\n([^\n]*)\n[^\n]*\n([^\n]*)\n(.*)$')

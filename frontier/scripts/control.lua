@@ -206,8 +206,7 @@ if state ~= 'active' then
   if state == 'blocked' then
     redis.call('HDEL', S.prio, host)
   end
-elseif leased(f[1]) then  -- placed when its lease ends
-else
+elseif not leased(f[1]) then  -- a leased host is placed when its lease ends
   local url, score = best_url(hot, cold, cap)
   if not url then
     redis.call('ZREM', S.due, host)
