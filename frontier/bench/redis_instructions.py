@@ -25,7 +25,6 @@ from typing import Any
 from frontier.admission import Admission
 from frontier.embedded import LOOPBACK, find_server_binary, free_port
 from frontier.exceptions import ConfigError
-from frontier.model import Completion, Outcome
 from frontier.redis_client import connect
 from frontier.store import FrontierStore, redis_tuning
 from frontier.urls import Scope
@@ -72,7 +71,7 @@ async def count(urls: int, hosts: int, lease_limit: int, exponent: float = 1.0,
     """Admit ``urls`` URLs, lease and complete ``lease_limit`` of them one call at a time;
     the server's instructions per URL in each phase."""
     from frontier.bench.frontier_bench import (
-        LEASE_BATCH, LEASERS, admit_pipelined, bench_settings, synthetic_urls)
+        admit_pipelined, bench_settings, drain_one_at_a_time, synthetic_urls)
 
     valgrind = _tool("valgrind")
     with tempfile.TemporaryDirectory() as tmp:
@@ -97,14 +96,9 @@ async def count(urls: int, hosts: int, lease_limit: int, exponent: float = 1.0,
             _control(proc.pid, "--instr=on")
             await admit_pipelined(admission, candidates)
             _control(proc.pid, "--dump=admit")
-            done = 0
-            while done < lease_limit:
-                got = await asyncio.gather(*(store.lease(LEASE_BATCH) for _ in range(LEASERS)))
-                leases = [x for g in got for x in g]
-                if not leases:
-                    break
-                await store.complete_many([Completion(x, Outcome.FETCHED) for x in leases])
-                done += len(leases)
+            # the frontier bench's one-at-a-time drain (its INFO calls around each step add
+            # a few tens of instructions a URL)
+            done = (await drain_one_at_a_time(store, [client], lease_limit))["done"]
             _control(proc.pid, "--dump=lease")
             _control(proc.pid, "--instr=off")
         finally:
