@@ -22,7 +22,7 @@ from prometheus_client import CollectorRegistry, Counter, Gauge, Histogram
 from prometheus_client.core import CounterMetricFamily, Metric
 
 from frontier.model import STATES, AdmitResult, Outcome
-from frontier.robots import STATE_ALLOW_ALL, STATE_DISALLOW_ALL, STATE_RULES
+from frontier.robots_rules import STATE_ALLOW_ALL, STATE_DISALLOW_ALL, STATE_RULES
 
 JOB_LABEL = "job"
 ROBOTS_POLICIES = (STATE_RULES, STATE_ALLOW_ALL, STATE_DISALLOW_ALL)  # RFC 9309 s.2.3.1

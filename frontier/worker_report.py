@@ -29,7 +29,8 @@ import orjson
 from frontier.exceptions import StoreError, StoreUnavailable
 from frontier.keys import Keys
 from frontier.metrics import WorkerMetrics
-from frontier.robots import STATE_DISALLOW_ALL, RobotsFetchResult, state_for_status
+from frontier.robots import RobotsFetchResult
+from frontier.robots_rules import STATE_DISALLOW_ALL, state_for_status
 from frontier.store import FrontierStore, redis_boundary
 
 log = logging.getLogger(__name__)

@@ -35,7 +35,7 @@ from warcio.archiveiterator import ArchiveIterator
 
 from frontier.embedded import LOOPBACK, RedisProcess, find_server_binary
 from frontier.exceptions import RedisLaunchError
-from frontier.robots import product_token
+from frontier.robots_rules import product_token
 from frontier.settings import JobSettings
 from frontier.store import redis_tuning
 from frontier.urls import canonicalize

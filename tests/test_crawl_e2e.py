@@ -18,7 +18,7 @@ import pytest
 from warcio.archiveiterator import ArchiveIterator
 
 from frontier.runner import crawl as _crawl
-from frontier.robots import product_token
+from frontier.robots_rules import product_token
 from frontier.settings import load_settings
 from frontier.urls import canonicalize
 from tests.servers import RedisServer

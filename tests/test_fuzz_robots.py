@@ -1,4 +1,4 @@
-"""Fuzzing robots.txt parsing and matching (frontier/robots.py) with hypothesis.
+"""Fuzzing robots.txt parsing and matching (frontier/robots_rules.py) with hypothesis.
 
 Example counts come from the hypothesis profile (tests/conftest.py): "ci" by default,
 HYPOTHESIS_PROFILE=fuzz for 10,000 a test.
@@ -26,7 +26,7 @@ import pytest
 from hypothesis import example, given
 from hypothesis import strategies as st
 
-from frontier.robots import DEFAULT_CRAWL_DELAY_CAP_S, RobotsRules, product_token
+from frontier.robots_rules import DEFAULT_CRAWL_DELAY_CAP_S, RobotsRules, product_token
 
 pytestmark = pytest.mark.fuzz
 

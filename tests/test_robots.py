@@ -23,15 +23,8 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 
 from frontier.exceptions import ConfigError, FetchError, StoreUnavailable
-from frontier.robots import (
-    DEFAULT_MAX_BYTES,
-    MIN_PARSE_BYTES,
-    RobotsCache,
-    RobotsFetchResult,
-    RobotsRules,
-    product_token,
-    robots_url,
-)
+from frontier.robots import MIN_PARSE_BYTES, RobotsCache, RobotsFetchResult, robots_url
+from frontier.robots_rules import DEFAULT_MAX_BYTES, RobotsRules, product_token
 
 LOOPBACK = "127.0.0.1"
 REDIS_DEFAULT_PORT = 6379

@@ -18,7 +18,7 @@ from protego import Protego
 
 from frontier.keys import Keys
 from frontier.model import Lease, Outcome
-from frontier.robots import RobotsRules
+from frontier.robots_rules import RobotsRules
 from frontier.settings import load_settings
 from frontier.sitemaps import (
     BAD_ENTRIES, BAD_GZIP, CAPPED, HOST_QUOTA, NOT_SITEMAP, OFF_LOCATION, READ_INDEX,
