@@ -28,7 +28,8 @@ local C = {counts = KEYS[1], reasons = KEYS[2], attempts = KEYS[4], dead = KEYS[
 local S = {due = KEYS[6], ready = KEYS[7], prio = KEYS[8], touched = KEYS[9]}
 local out = {}
 local tally = {}
-local ended = {}
+local ended = {}  -- the members ended here, in order (and as a set)
+local nended = 0
 local released = {prio = {}, due = {}, idle = {}}
 local requeued = 0  -- leases handed back
 local members = {}
@@ -36,54 +37,76 @@ for i = 0, n - 1 do
   members[i + 1] = ARGV[8 + 6 * i]
 end
 local expiries = n > 0 and redis.call('ZMSCORE', KEYS[3], unpack(members)) or {}
-local hosts, scores, tries, urls, carries = {}, {}, {}, {}, {}  -- per lease, parsed once
+-- Per lease, parsed once: its host, attempts and carried fields (cf[6 * (i - 1) + 1 ..
+-- + 6], carried[i]) in one match that stops before the URL; the score and URL only when
+-- needed (full), and the whole member by parse_lease for a lease of the older form.
+local hosts, tries, carried, cf, scores, urls = {}, {}, {}, {}, {}, {}
 for i = 1, n do
-  hosts[i], scores[i], tries[i], urls[i], carries[i] = parse_lease(members[i])
+  local k = 6 * (i - 1)
+  local host, attempts
+  host, attempts, cf[k + 1], cf[k + 2], cf[k + 3], cf[k + 4], cf[k + 5], cf[k + 6] =
+    string.match(members[i], CARRIED)
+  if host then
+    hosts[i], tries[i], carried[i] = host, attempts, true
+  else
+    hosts[i], scores[i], tries[i], urls[i] = parse_lease(members[i])
+    carried[i] = false
+  end
+end
+local function full(i)  -- the lease's score and URL
+  if urls[i] == nil then
+    local _
+    _, scores[i], _, urls[i] = parse_lease(members[i])
+  end
+  return scores[i], urls[i]
 end
 local touched = {}  -- per lease: its host was touched while leased
 if n > 0 and redis.call('SCARD', S.touched) > 0 then
   touched = redis.call('SMISMEMBER', S.touched, unpack(hosts))
 end
 local fresh = {}  -- touched hosts read afresh here: no longer touched
-local function text(v)  -- a carried field: '' stands for an absent one
-  if v == '' then
-    return nil
-  end
-  return v
-end
 local a = 8
 for i = 0, n - 1 do
   local member, outcome, reason = ARGV[a], ARGV[a + 1], ARGV[a + 2]
-  local rt_text, extra, crawl = ARGV[a + 3], tonumber(ARGV[a + 4]), ARGV[a + 5]
-  local rt = tonumber(rt_text)
+  -- (numbers from text by arithmetic: '+ 0' converts as tonumber does, without the cost
+  -- of a library call)
+  local rt_text, extra, crawl = ARGV[a + 3], ARGV[a + 4] + 0, ARGV[a + 5]
+  local rt = rt_text + 0
   a = a + 6
   local hk, hot, cold = KEYS[10 + 3 * i], KEYS[11 + 3 * i], KEYS[12 + 3 * i]
   local expiry = expiries[i + 1]  -- one ZMSCORE for the batch
   if not expiry or ended[member] then  -- (the leases ZSET is trimmed at the end)
-    out[#out + 1] = 'not_held'
-  elseif tonumber(expiry) < now then
-    out[#out + 1] = 'expired'
+    out[i + 1] = 'not_held'
+  elseif expiry + 0 < now then
+    out[i + 1] = 'expired'
   else
-    local host, score, attempts, url = hosts[i + 1], scores[i + 1], tries[i + 1], urls[i + 1]
-    local carry = carries[i + 1]
-    ended[#ended + 1] = member
+    local host, attempts = hosts[i + 1], tries[i + 1]
+    nended = nended + 1
+    ended[nended] = member
     ended[member] = true
-    local f, best
-    local carried = carry and touched[i + 1] ~= 1 and outcome ~= 'release' and outcome ~= 'retry'
-    if carried then
-      local next, delay, crawl_ms, boost, pf, fetched =
-        string.match(carry, '^([^,]*),([^,]*),([^,]*),([^,]*),([^,]*),([^,]*)$')
-      f = {text(delay), text(crawl_ms), text(boost), 'active', text(fetched), text(pf)}
-      best = text(next)
+    -- the host's fields, as text ('' for an absent one), carried or read afresh
+    local delay, crawl_ms, boost_t, state, fetched_t, pf, best
+    local fast = carried[i + 1] and touched[i + 1] ~= 1 and outcome ~= 'release'
+                 and outcome ~= 'retry'
+    if fast then
+      local k = 6 * i
+      best, delay, crawl_ms, boost_t = cf[k + 1], cf[k + 2], cf[k + 3], cf[k + 4]
+      pf, fetched_t, state = cf[k + 5], cf[k + 6], 'active'
+      if best == '' then
+        best = nil
+      end
     else
-      f = redis.call('HMGET', hk, 'delay_ms', 'crawl_ms', 'boost', 'state', 'fetched', 'pf')
+      local f = redis.call('HMGET', hk, 'delay_ms', 'crawl_ms', 'boost', 'state', 'fetched', 'pf')
+      delay, crawl_ms, boost_t = f[1] or '', f[2] or '', f[3] or ''
+      state, fetched_t, pf = f[4], f[5] or '', f[6] or ''
       if touched[i + 1] == 1 then
         fresh[#fresh + 1] = host
       end
     end
-    local fetched = tonumber(f[5] or '0')
+    local fetched = fetched_t == '' and 0 or fetched_t + 0
     if outcome == 'release' then
-      if f[4] == 'blocked' then
+      local score, url = full(i + 1)
+      if state == 'blocked' then
         redis.call('HDEL', KEYS[4], url)
         tally['excluded:host_blocked'] = (tally['excluded:host_blocked'] or 0) + 1
         journal(C.ended, 'excluded', 'host_blocked', url)
@@ -92,9 +115,11 @@ for i = 0, n - 1 do
         requeued = requeued + 1
       end
     elseif outcome == 'retry' then
+      local score, url = full(i + 1)
       retry_or_bury(C, hk, hot, cold, url, score, reason, cap, max_attempts)
     else
       if attempts ~= '0' then
+        local _, url = full(i + 1)
         redis.call('HDEL', KEYS[4], url)
       end
       if outcome == 'fetched' then
@@ -104,7 +129,7 @@ for i = 0, n - 1 do
       tally[key] = (tally[key] or 0) + 1
     end
     if crawl ~= '' then
-      f[2] = crawl
+      crawl_ms = crawl
     end
     -- max(min delay, min(factor x rt, cap), extra, operator delay, crawl-delay), compared
     -- in line (each call of a library function costs about as much as a Redis command's
@@ -119,44 +144,46 @@ for i = 0, n - 1 do
     if extra > gap then
       gap = extra
     end
-    if f[1] then
-      local delay = tonumber(f[1])
-      if delay > gap then
-        gap = delay
+    if delay ~= '' then
+      local ms = delay + 0
+      if ms > gap then
+        gap = ms
       end
     end
-    if f[2] and f[2] ~= '0' then
-      local delay = tonumber(f[2])
-      if delay > gap then
-        gap = delay
+    if crawl_ms == '' then
+      crawl_ms = '0'
+    elseif crawl_ms ~= '0' then
+      local ms = crawl_ms + 0
+      if ms > gap then
+        gap = ms
       end
     end
     -- numbers go to Redis as text made here (see schedule_released; '%d' drops the
     -- fraction of a positive time, as floor would); the lease field is cleared in the same
     -- call ('' = no lease, _lib.lua)
     local next_ms = string.format('%d', now + gap)
-    redis.call('HSET', hk, 'next', next_ms, 'rt_ms', rt_text, 'crawl_ms', f[2] or '0',
+    redis.call('HSET', hk, 'next', next_ms, 'rt_ms', rt_text, 'crawl_ms', crawl_ms,
                'fetched', string.format('%d', fetched), 'lease', '')
-    if f[4] == 'active' then
+    if state == 'active' then
       local boost = 1
-      if f[3] and f[3] ~= '1' then
-        boost = tonumber(f[3])
+      if boost_t ~= '' and boost_t ~= '1' then
+        boost = boost_t + 0
       end
-      if f[6] and f[6] ~= '1' then
-        boost = boost * tonumber(f[6])
+      if pf ~= '' and pf ~= '1' then
+        boost = boost * pf
       end
-      if not carried then
+      if not fast then
         local _
         _, best = best_url(hot, cold, cap)
       end
       schedule_released(released, host, best, boost, next_ms)
     end
-    out[#out + 1] = 'ok'
+    out[i + 1] = 'ok'
   end
 end
-if #ended > 0 then
+if nended > 0 then
   each_chunk(ended, 1000, function(...) redis.call('ZREM', KEYS[3], ...) end)
-  redis.call('HINCRBY', KEYS[1], 'leased', -#ended)
+  redis.call('HINCRBY', KEYS[1], 'leased', -nended)
 end
 each_chunk(fresh, 1000, function(...) redis.call('SREM', S.touched, ...) end)
 if requeued > 0 then
