@@ -161,24 +161,25 @@ end
 -- next time and priority are needed. `boost` (a number: the operator's boost x the trust
 -- factor) and `score` (text: its best queued score, nil when none) come from the caller;
 -- `next_ms` is text. The writes are gathered in `out` = {prio = {host, p, ...},
--- due = {ms, host, ...}, idle = {host, ...}} and made by flush_released, a few calls for
+-- due = {ms, host, ...}, idle = {host, ...}, np =, nd =, ni = their lengths} and made by flush_released, a few calls for
 -- a whole batch. Values go to Redis as text (see best_url). An unboosted priority is the
 -- score as the reply gave it (the same text a number of at most 14 digits would give).
 local function schedule_released(out, host, score, boost, next_ms)
   if not score then
-    out.idle[#out.idle + 1] = host
+    local ni = out.ni + 1
+    out.idle[ni], out.ni = host, ni
     return
   end
-  local prio = out.prio
-  prio[#prio + 1] = host
+  local np, nd = out.np, out.nd  -- (counts kept: '#' searches the table each time)
+  local prio, due = out.prio, out.due
+  prio[np + 1] = host
   if boost == 1 and #score <= 14 then
-    prio[#prio + 1] = score
+    prio[np + 2] = score
   else
-    prio[#prio + 1] = tonumber(score) * boost
+    prio[np + 2] = score * boost
   end
-  local due = out.due
-  due[#due + 1] = next_ms
-  due[#due + 1] = host
+  due[nd + 1], due[nd + 2] = next_ms, host
+  out.np, out.nd = np + 2, nd + 2
 end
 
 local function each_chunk(items, step, fn)

@@ -27,10 +27,11 @@ local C = {counts = KEYS[1], reasons = KEYS[2], attempts = KEYS[4], dead = KEYS[
            ended = KEYS[#KEYS]}
 local S = {due = KEYS[6], ready = KEYS[7], prio = KEYS[8], touched = KEYS[9]}
 local out = {}
-local tally = {}
+local tally = {}  -- 'outcome:reason' -> count, for outcomes other than fetched
+local nfetched = 0
 local ended = {}  -- the members ended here, in order (and as a set)
 local nended = 0
-local released = {prio = {}, due = {}, idle = {}}
+local released = {prio = {}, due = {}, idle = {}, np = 0, nd = 0, ni = 0}
 local requeued = 0  -- leases handed back
 local members = {}
 for i = 0, n - 1 do
@@ -124,9 +125,11 @@ for i = 0, n - 1 do
       end
       if outcome == 'fetched' then
         fetched = fetched + 1
+        nfetched = nfetched + 1
+      else
+        local key = outcome .. ':' .. reason
+        tally[key] = (tally[key] or 0) + 1
       end
-      local key = outcome == 'fetched' and outcome or (outcome .. ':' .. reason)
-      tally[key] = (tally[key] or 0) + 1
     end
     if crawl ~= '' then
       crawl_ms = crawl
@@ -190,12 +193,11 @@ if requeued > 0 then
   redis.call('HINCRBY', KEYS[1], 'queued', requeued)
 end
 flush_released(S, released)
+if nfetched > 0 then
+  redis.call('HINCRBY', KEYS[1], 'fetched', nfetched)
+end
 for key, count in pairs(tally) do
-  if key == 'fetched' then
-    redis.call('HINCRBY', KEYS[1], 'fetched', count)
-  else
-    redis.call('HINCRBY', KEYS[1], string.match(key, '^[a-z]+'), count)
-    redis.call('HINCRBY', KEYS[2], key, count)
-  end
+  redis.call('HINCRBY', KEYS[1], string.match(key, '^[a-z]+'), count)
+  redis.call('HINCRBY', KEYS[2], key, count)
 end
 return out
