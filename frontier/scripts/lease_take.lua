@@ -9,9 +9,9 @@
 -- ARGV[11 ..] the n hosts: the caller's choice first, then stand-ins, best first
 -- A host is leased only if this call takes it out of ready (no other caller did), it is
 -- active and holds no lease: so at most one lease per politeness key exists at any time.
--- Which hosts are still ready is read with one ZMSCORE (the caller's choice; stand-ins
--- only when some were taken), and the hosts taken leave ready in one ZREM at the end (the
--- script runs alone, so nothing takes them in between).
+-- Each host is taken out of ready by its own ZREM, whose reply (1 or 0) tells whether it
+-- was still there: one call instead of a read of its score (a reply Redis formats as a
+-- double, thousands of instructions) and its share of a removal of all at the end.
 -- Hosts are taken in order until `want` are: a host another caller took since lease_pick
 -- is replaced by the next stand-in (one held back or with nothing queued is not).
 -- Link spam (docs/priority.md): a host whose trust is below the threshold (admit.lua), and
@@ -39,34 +39,22 @@ local want = tonumber(ARGV[10])
 local cap = tonumber(ARGV[4])
 local taken = 0
 local out = {}
+local nout = 0
 local held = {}
 local seq = redis.call('HINCRBY', KEYS[1], 'lease_seq', n) - n
 local retried = redis.call('HLEN', KEYS[4]) > 0
-local ready = {}  -- each host's score in ready (false: not there), read when first needed
-local function still_ready(i)  -- (1-based) read as many hosts as are still wanted
-  if ready[i] == nil then
-    local last = math.min(n, i + want - taken - 1, i + 999)
-    local part = redis.call('ZMSCORE', KEYS[2], unpack(ARGV, 10 + i, 10 + last))
-    for j = 1, #part do
-      ready[i + j - 1] = part[j]
-    end
-  end
-  return ready[i]
-end
-local took = {}  -- the hosts this call takes out of ready, in order (and as a set)
 for i = 0, n - 1 do
   if taken >= want then
     break
   end
   local host = ARGV[11 + i]
   local hk, hot, cold, outs = KEYS[7 + 4 * i], KEYS[8 + 4 * i], KEYS[9 + 4 * i], KEYS[10 + 4 * i]
-  if still_ready(i + 1) and not took[host] then
-    took[host] = true
-    took[#took + 1] = host
+  if redis.call('ZREM', KEYS[2], host) == 1 then  -- still ready (and not named twice)
     taken = taken + 1
     local f = redis.call('HMGET', hk, 'state', 'lease', 'trust', 'suspect', 'tlease', 'seeded',
                          'mark', 'probe', 'pf', 'delay_ms', 'crawl_ms', 'boost', 'fetched')
-    if f[1] == 'active' and not leased(f[2]) then
+    local lease = f[2]
+    if f[1] == 'active' and (not lease or lease == '') then  -- (leased(), in line)
       local gap, probing = 0, false
       local trust = f[3]
       local allowed = 0  -- (its last lease's time matters only when a gap applies)
@@ -100,24 +88,23 @@ for i = 0, n - 1 do
         local member = id .. '\n' .. host .. '\n' .. score .. '\n' .. attempts .. '\n' .. signal
                        .. '\n' .. next .. ',' .. (f[10] or '') .. ',' .. (f[11] or '') .. ','
                        .. (f[12] or '') .. ',' .. (f[9] or '') .. ',' .. (f[13] or '') .. '\n' .. url
-        held[#held + 1] = ARGV[1]
-        held[#held + 1] = member
+        nout = nout + 1
+        held[2 * nout - 1], held[2 * nout] = ARGV[1], member
+        out[nout] = member
         if trust then
           redis.call('HSET', hk, 'lease', id, 'tlease', ARGV[5])
         else
           redis.call('HSET', hk, 'lease', id)
         end
-        out[#out + 1] = member
       elseif not wait then
         redis.call('HDEL', KEYS[5], host)
       end
     end
   end
 end
-each_chunk(took, 1000, function(...) redis.call('ZREM', KEYS[2], ...) end)
-if #out > 0 then
+if nout > 0 then
   each_chunk(held, 1000, function(...) redis.call('ZADD', KEYS[3], ...) end)
-  redis.call('HINCRBY', KEYS[1], 'queued', -#out)
-  redis.call('HINCRBY', KEYS[1], 'leased', #out)
+  redis.call('HINCRBY', KEYS[1], 'queued', -nout)
+  redis.call('HINCRBY', KEYS[1], 'leased', nout)
 end
 return out
