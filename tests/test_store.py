@@ -331,6 +331,36 @@ async def test_take_passes_over_hosts_taken_since_the_pick(make_store: StoreFact
     assert (await store.counts()).leased == 5
 
 
+async def test_a_race_between_pick_and_take_costs_no_lease(make_store: StoreFactory,
+                                                           monkeypatch: pytest.MonkeyPatch) -> None:
+    # Another process leases this process's chosen hosts between its pick and its take:
+    # the stand-ins (one per four chosen hosts, frontier/store.py stand_ins) and the second
+    # round still lease as many URLs as asked for, no host twice. Before the stand-ins
+    # were capped every host picked went to the take as a stand-in.
+    import frontier.store as store_module
+
+    this = make_store(store={"partitions": 1})
+    other = make_store(store={"partitions": 1})
+    await admit(this, *(f"http://h{i:02d}.test/{p}" for i in range(40) for p in "ab"))
+    real_run_many = store_module.run_many
+    raced = False
+
+    async def racing(redis: Any, calls: Any) -> Any:
+        nonlocal raced
+        if not raced and calls and calls[0][0] is this.scripts.lease_take:
+            raced = True
+            taken = await other.lease(6)  # the other process's best hosts: this one's too
+            assert len(taken) == 6
+        return await real_run_many(redis, calls)
+
+    monkeypatch.setattr(store_module, "run_many", racing)
+    got = await this.lease(8)
+    assert raced
+    assert len(got) == 8
+    assert len({x.host for x in got}) == 8
+    assert (await this.counts()).leased == 14
+
+
 async def test_lease_calls_made_at_once_choose_different_hosts(make_store: StoreFactory,
                                                                clock: Clock) -> None:
     # one process's lease calls made at once go one at a time, so three calls of 4 lease
