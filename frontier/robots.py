@@ -43,7 +43,7 @@ from frontier.robots_rules import (
     state_for_status,
     truncate_body,
 )
-from frontier.robots_rules import RobotsRules as RobotsRules  # re-exported: workers/loop.py
+from frontier.robots_rules import RobotsRules
 from frontier.scripts import CallBatcher
 
 log = logging.getLogger(__name__)

@@ -33,7 +33,8 @@ from frontier.metrics import WorkerMetrics
 from frontier.mirrors import MirrorHosts
 from frontier.model import Candidate, Completion, Lease, Outcome
 from frontier.priority import distribute, url_host
-from frontier.robots import RobotsCache, RobotsFetchResult, RobotsRules, robots_url
+from frontier.robots import RobotsCache, RobotsFetchResult, robots_url
+from frontier.robots_rules import RobotsRules
 from frontier.settings import JobSettings
 from frontier.simhash import NearDuplicateIndex, hamming, simhash64
 from frontier.sitemaps import SitemapReader, sitemap_url, split_sitemap
