@@ -39,11 +39,11 @@ from frontier.robots_rules import (
     ROBOTS_PATH,
     STATE_DISALLOW_ALL,
     STATE_RULES,
+    RobotsRules,
     product_token,
     state_for_status,
     truncate_body,
 )
-from frontier.robots_rules import RobotsRules
 from frontier.scripts import CallBatcher
 
 log = logging.getLogger(__name__)
