@@ -116,9 +116,11 @@ async def _scan_part(redis: Any, pk: PartitionKeys, limit: int) -> set[str]:
 
 async def read_hosts(store: FrontierStore, *, limit: int = HOST_SCAN_LIMIT,
                      top: int = TOP_HOSTS, shown: int = CONTROLLED_SHOWN) -> HostTable:
-    """Read at most about ``limit`` host records and rank them."""
+    """Read at most about ``limit`` host records, and those of every host under control,
+    and rank them. ``limit`` 0 reads only the hosts under control (what the metrics
+    need: the known hosts are counted, not read)."""
     redis, parts = store.redis, store.keys.parts
-    per_part = max(1, math.ceil(limit / len(parts)))
+    per_part = math.ceil(limit / len(parts))
     rows: list[HostRow] = []
     known = 0
     async with redis_boundary("hosts"):
