@@ -450,8 +450,7 @@ async def test_host_table_ranks_and_stays_bounded(plain_job: Job) -> None:
 
 async def test_the_metrics_refresh_reads_only_controlled_hosts(plain_job: Job) -> None:
     # The stats loop refreshes the board's metrics every few seconds in the crawl's own
-    # process: it reads the records of hosts under control, not of every host (that cost
-    # a 1,200-host crawl about 5 % of its CPU).
+    # process: it reads the records of hosts under control, not of every host.
     store: FrontierStore = plain_job.store
     await plain_job.admission.admit([Candidate(f"http://h{n:02d}.test/") for n in range(30)])
     await store.control("h03.test", "pause")
