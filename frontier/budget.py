@@ -11,7 +11,7 @@ from __future__ import annotations
 from typing import Any
 
 from frontier.keys import Keys
-from frontier.store import redis_boundary
+from frontier.redis_boundary import redis_boundary
 
 _RESERVE = """
 -- KEYS[1] budget hash  ARGV[1] wanted  ARGV[2] max pages

@@ -15,7 +15,7 @@ from typing import Any
 from redis.asyncio import Redis
 from redis.asyncio.cluster import RedisCluster
 
-from frontier.store import redis_boundary
+from frontier.redis_boundary import redis_boundary
 
 DigestKey = Callable[[str], str]
 """payload digest -> the Redis HASH holding it."""

@@ -16,7 +16,8 @@ from dataclasses import asdict, dataclass, field
 from typing import Any
 
 from frontier.keys import PartitionKeys
-from frontier.store import FrontierStore, redis_boundary
+from frontier.redis_boundary import redis_boundary
+from frontier.store import FrontierStore
 
 HOST_SCAN_LIMIT = 5000  # host records read per refresh
 SCAN_CHUNK = 500

@@ -27,9 +27,11 @@ from frontier.exceptions import (
 from frontier.folders import FolderLock, Owner, owner_redis_url, say_taken_over
 from frontier.keys import Keys
 from frontier.model import AdmitResult, Candidate
+from frontier.redis_boundary import redis_boundary
 from frontier.redis_client import connect, connect_auto
 from frontier.settings import JobSettings, settings_from_dict
-from frontier.store import FrontierStore, redis_boundary, redis_tuning
+from frontier.store import FrontierStore
+from frontier.store_tuning import redis_tuning
 
 
 @dataclass

@@ -21,8 +21,9 @@ from dataclasses import dataclass, field
 from typing import Any
 
 from frontier.exceptions import ConfigError
+from frontier.redis_boundary import redis_boundary
 from frontier.scripts import ScriptCall, run_many, script_source
-from frontier.store import FrontierStore, redis_boundary
+from frontier.store import FrontierStore
 from frontier.urls import fingerprint, host_of, politeness_key
 
 MIRROR_REASON = "mirror_host"

@@ -16,9 +16,10 @@ from dataclasses import dataclass
 from typing import Any
 
 from frontier.keys import PartitionKeys
+from frontier.redis_boundary import redis_boundary
 from frontier.revisit import RevisitState, short_digest
 from frontier.scripts import ScriptCall, run_many, script_source
-from frontier.store import FrontierStore, redis_boundary
+from frontier.store import FrontierStore
 
 RELEASE_BATCH = 500  # pages per partition and release (or sooner) call
 SAMPLE = 256  # pages per partition sampled for the estimated freshness

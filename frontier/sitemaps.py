@@ -30,8 +30,8 @@ from typing import Any
 
 from frontier.exceptions import UrlError
 from frontier.model import Candidate, Lease, Outcome
+from frontier.redis_boundary import redis_boundary
 from frontier.settings import JobSettings
-from frontier.store import redis_boundary
 from frontier.urls import canonicalize, host_of
 
 MARK = "#sitemap"

@@ -1,30 +1,37 @@
-"""The Redis frontier: admit, lease, complete, reap, host controls and counts.
+"""The Redis frontier: admit, lease, complete, reap and counts.
 
 All state changes happen inside the Lua scripts of ``frontier/scripts``, one partition
 per call, with ``now`` passed in. This module groups work by partition, hands every key
-to the scripts, and translates Redis errors into sluice errors.
+to the scripts, and translates Redis errors into sluice errors (frontier/redis_boundary.py).
+The store's other parts live beside it: operator controls (frontier/store_controls.py),
+read-only facts for explain and the admin API (frontier/store_facts.py), and the server
+tuning and skiplist marks that keep Redis's encodings compact and fast
+(frontier/store_tuning.py).
 """
 
 from __future__ import annotations
 
 import asyncio
-import contextlib
 import logging
 import math
 import time
-from collections.abc import AsyncIterator, Callable, Iterable, Sequence
+from collections.abc import Callable, Iterable, Sequence
 from dataclasses import dataclass, field
 from typing import Any, NamedTuple
 
-from redis import exceptions as redis_errors
 from redis.asyncio.cluster import RedisCluster
 
-from frontier.controls import MAX_BOOST, MIN_BOOST, echo
-from frontier.exceptions import LeaseNotHeld, StoreError, StoreUnavailable
+from frontier.exceptions import LeaseNotHeld
 from frontier.keys import Keys, PartitionKeys
-from frontier.model import AdmitResult, Completion, Counts, Lease, Outcome, STATES
+from frontier.model import AdmitResult, Completion, Counts, Lease, STATES
+from frontier.redis_boundary import redis_boundary, reply_text
 from frontier.scripts import ScriptCall, Scripts, run_many, run_replicated
 from frontier.settings import JobSettings
+from frontier.store_controls import HostControls
+from frontier.store_facts import FrontierFacts
+from frontier.store_tuning import ServerTuning, seen_buckets
+# tests/faultkit.py imports redis_tuning from here (its home is frontier/store_tuning.py)
+from frontier.store_tuning import redis_tuning  # noqa: F401
 
 # a host's trust is split over at least this many out-linked hosts: its first pages show
 # only a few of the hosts it links to; the seeds' hosts on the adversarial webs link to 35
@@ -33,7 +40,6 @@ TRUST_SPLIT_MIN_HOSTS = 20
 
 log = logging.getLogger(__name__)
 
-CONTROL_REFUSED = "control refused:"  # how the control script starts a refusal
 PROMOTE_LIMIT = 1000  # due hosts moved to ready per lease_pick call
 REAP_BATCH = 500  # expired leases handled per reap call and partition
 ORPHAN_CUTOFF_MS = 2**62  # later than any lease's expiry
@@ -42,6 +48,8 @@ CLOCK_RESYNC_S = 60.0  # how often a store synced with the server's clock checks
 CLOCK_SKEW_WARN_MS = 1000  # a local clock this far off the server's is logged
 LEASE_ROUNDS = 2
 STAND_IN_SHARE = 4  # a take call gets one stand-in per this many chosen hosts
+RELEASE = "release"  # the complete script's outcome for a lease handed back unfinished
+TRUST_MEMO_SIZE = 100_000  # leased hosts whose trust this store remembers for admission
 
 
 def stand_ins(chosen: int) -> int:
@@ -52,50 +60,6 @@ def stand_ins(chosen: int) -> int:
     3 % of Redis's work for a lease when all hosts picked went). A shortfall beyond the
     stand-ins is made up by the next round."""
     return max(1, chosen // STAND_IN_SHARE)
-COLD_SCAN_CHUNK = 1000  # cold-list entries read per call when looking for one URL
-COLD_SCAN_LIMIT = 200_000  # entries of one cold list searched before giving up
-RELEASE = "release"  # the complete script's outcome for a lease handed back unfinished
-SKIPLIST_MARK_HEAD = "~sluice keeps this sorted set a skiplist~"
-HASH_LISTPACK_ENTRIES = 64  # above a host hash's fields (about 30 at most), below a partition's hosts
-TRUST_MEMO_SIZE = 100_000  # leased hosts whose trust this store remembers for admission
-
-
-def _text(value: Any) -> str:
-    return value.decode() if isinstance(value, bytes) else str(value)
-
-
-def _encodable(text: str) -> bool:
-    """True if ``text`` can be sent to Redis (UTF-8: no lone surrogates)."""
-    try:
-        text.encode("utf-8")
-    except UnicodeEncodeError:
-        return False
-    return True
-
-
-def _in_control_state(row: dict[str, Any], which: str) -> bool:
-    """Whether a host-list row is paused, blocked, boosted or delayed (``which``)."""
-    if which in ("paused", "blocked"):
-        return bool(row["state"] == which)
-    if which == "boosted":
-        return bool(row["boost"] != 1.0)
-    return bool(which == "delayed" and row["delay_s"] > 0)
-
-
-def _control_value(action: str, value: Any) -> str:
-    """A control value as the control script reads it: a delay in whole ms, a boost as
-    given. Values that are not finite pass as text for the script to refuse."""
-    if value is None:
-        return ""
-    if isinstance(value, bool) or not isinstance(value, (int, float)):
-        raise StoreError(f"host control refused: {action} value {echo(value)} is not a number")
-    try:
-        number = float(value)
-    except OverflowError:
-        number = math.inf if value > 0 else -math.inf
-    if action == "delay" and math.isfinite(number) and abs(number) < 1e12:
-        return str(round(number * 1000))
-    return repr(number)
 
 
 def _linking_args(args: list[Any],
@@ -113,39 +77,6 @@ def _linking_args(args: list[Any],
 
 def now_ms(clock: Callable[[], float] = time.time) -> int:
     return int(clock() * 1000)
-
-
-def raised_inside_redis_client(exc: BaseException) -> bool:
-    """True if ``exc`` was raised by code of the redis-py package (or the event loop's
-    transport under it), not by sluice: during a Cluster failover redis-py's asyncio
-    client can raise AttributeError or RuntimeError on a connection torn down under a
-    command, where a ConnectionError was meant."""
-    files = []
-    tb = exc.__traceback__
-    while tb is not None:
-        files.append(tb.tb_frame.f_code.co_filename)
-        tb = tb.tb_next
-    if not files or not any("/redis/" in f for f in files):
-        return False
-    # raised in redis-py itself, or in the event loop's transport it was writing to
-    # (uvloop's handles are Cython: their frames name .pyx files)
-    return "/redis/" in files[-1] or "uvloop" in files[-1]
-
-
-@contextlib.asynccontextmanager
-async def redis_boundary(what: str) -> AsyncIterator[None]:
-    """Translate redis-py errors into sluice errors."""
-    try:
-        yield
-    except (redis_errors.ConnectionError, redis_errors.TimeoutError, OSError) as exc:
-        raise StoreUnavailable(f"Redis unavailable during {what}: {exc}") from exc
-    except redis_errors.RedisError as exc:
-        raise StoreError(f"Redis error during {what}: {exc}") from exc
-    except (AttributeError, RuntimeError) as exc:
-        if not raised_inside_redis_client(exc):
-            raise
-        raise StoreUnavailable(
-            f"Redis unavailable during {what} (connection torn down: {exc!r})") from exc
 
 
 class QueuedUrl(NamedTuple):
@@ -177,37 +108,7 @@ class PartitionBatch:
         return sum(len(v) for v in self.hosts.values()) + len(self.refused)
 
 
-PARTITION_SKEW = 4.0  # room for partitions that hold big hosts (Zipf-sized sites)
-BUCKET_FILL = 0.75  # target fill of a seen bucket at the expected crawl size
-
-
-def seen_buckets(settings: JobSettings) -> int:
-    """URL-seen buckets per partition, sized so each stays a compact intset.
-
-    A bucket past ``seen_bucket_entries`` members turns into a hash table: still exact,
-    only bigger (about 50 bytes a URL instead of 8).
-    """
-    s = settings.store
-    assert s.partitions is not None, "decide the layout first (JobSettings.laid_out)"
-    per_partition = min(s.expected_urls, s.expected_urls / s.partitions * PARTITION_SKEW)
-    return max(1, math.ceil(per_partition / (s.seen_bucket_entries * BUCKET_FILL)))
-
-
-def redis_tuning(settings: JobSettings) -> dict[str, str]:
-    """Server settings that keep the frontier compact (listpack hot windows, intset buckets)
-    and its per-partition hashes fast: a listpack hash is searched field by field, so the
-    partitions' host priorities ('prio', read for every lease) turn into hash tables past
-    ``HASH_LISTPACK_ENTRIES`` hosts, while a host's own hash (a few dozen fields at most)
-    stays a compact listpack."""
-    return {
-        "zset-max-listpack-entries": str(settings.store.hot_capacity),
-        "zset-max-listpack-value": str(settings.scope.max_url_length + 16),
-        "set-max-intset-entries": str(settings.store.seen_bucket_entries),
-        "hash-max-listpack-entries": str(HASH_LISTPACK_ENTRIES),
-    }
-
-
-class FrontierStore:
+class FrontierStore(ServerTuning, HostControls, FrontierFacts):
     """One job's frontier in Redis (a single server or a Cluster)."""
 
     def __init__(
@@ -242,47 +143,6 @@ class FrontierStore:
         """The job's partition count (decided when the store was made)."""
         assert self.settings.store.partitions is not None
         return self.settings.store.partitions
-
-    # -- setup ---------------------------------------------------------------------------
-
-    async def tune_server(self) -> bool:
-        """Apply :func:`redis_tuning` with CONFIG SET; False if the server refuses."""
-        try:
-            for name, value in redis_tuning(self.settings).items():
-                await self.redis.config_set(name, value)
-        except redis_errors.RedisError as exc:
-            log.warning("could not tune Redis (%s): memory per URL will be higher", exc)
-            return False
-        return True
-
-    def skiplist_mark(self) -> str:
-        """The member that keeps a partition's due, ready and leases sets skiplists: longer
-        than any member a listpack may hold (``zset-max-listpack-value``, tuned to the
-        longest URL), so Redis converts the set at once and, the mark never leaving, keeps
-        it so. A listpack set is searched member by member (scores read back as text):
-        at the hundred-odd hosts or leases of a busy partition each insert or lookup cost
-        more than the whole rest of a lease (docs/benchmarks.md). Hosts and leases never
-        look like it (no URL is this long); scripts pass over it by its score (+inf in due
-        and leases, -inf in ready) or its missing priority."""
-        return SKIPLIST_MARK_HEAD + "~" * (self.settings.scope.max_url_length + 17)
-
-    async def mark_sets(self) -> None:
-        """Put the skiplist mark in every partition's due, ready and leases sets (a store
-        does at its first lease; idempotent)."""
-        mark = self.skiplist_mark()
-        async with redis_boundary("mark sets"):
-            await asyncio.gather(*(
-                self.redis.zadd(key, {mark: score}, nx=True)
-                for pk in self.keys.parts
-                for key, score in ((pk.due, math.inf), (pk.leases, math.inf),
-                                   (pk.ready, -math.inf))))
-
-    async def set_size(self, key: str) -> int:
-        """Members of a due, ready or leases set, the skiplist mark not counted."""
-        size = int(await self.redis.zcard(key))
-        if size and await self.redis.zscore(key, self.skiplist_mark()) is not None:
-            size -= 1
-        return size
 
     def _now(self, now: int | None) -> int:
         return now_ms(self.clock) + self._offset_ms if now is None else now
@@ -577,7 +437,7 @@ class FrontierStore:
                 call(p, [leases[i] for i in idx]) for p, idx in by_part.items()])
         for idx, res in zip(by_part.values(), results):
             for i, status in zip(idx, res):
-                statuses[i] = _text(status)
+                statuses[i] = reply_text(status)
         return statuses
 
     async def reap(self, now: int | None = None, *, orphans: bool = False) -> dict[str, int]:
@@ -630,71 +490,6 @@ class FrontierStore:
             totals["rescheduled"] = pulled
         return totals
 
-    # -- operator controls -----------------------------------------------------------------
-
-    async def control(self, host: str, action: str, value: float | None = None,
-                      now: int | None = None, *, create: bool = True) -> str:
-        """Apply an operator's action (one of ``HOST_ACTIONS``) to one politeness key;
-        returns its state. ``value``: the boost multiplier, or the delay in seconds.
-
-        The control script checks every argument before its first write and refuses with
-        nothing changed (StoreError): an unknown action, a value that is missing, not
-        finite or out of range, an odd key, or (``create=False``) a key the frontier has
-        no record of. Operator input is validated before this by frontier.controls.
-        """
-        for text in (host, action):
-            if not isinstance(text, str) or not _encodable(text):
-                raise StoreError(f"host control refused: {echo(text)} is not text")
-        pk = self.keys.part_for(host)
-        pol = self.settings.politeness
-        keys = [pk.counts, pk.reasons, pk.due, pk.ready, pk.prio, pk.touched, pk.hosts,
-                pk.controlled, pk.host(host), pk.hot(host), pk.cold(host), pk.held_hot(host),
-                pk.held_cold(host)]
-        args = [self._now(now), host, action, _control_value(action, value),
-                self.settings.store.hot_capacity, 1 if create else 0, repr(MIN_BOOST),
-                repr(MAX_BOOST), int(pol.max_delay_s * 1000), int(pol.min_delay_s * 1000),
-                repr(float(pol.response_time_factor)), int(pol.max_delay_s * 1000),
-                repr(self.settings.priority.suspect_penalty)]
-        try:
-            async with redis_boundary("control"):
-                state = await self.scripts.control(keys, args)
-        except StoreError as exc:
-            cause = exc.__cause__
-            if isinstance(cause, redis_errors.ResponseError) and str(cause).startswith(
-                    CONTROL_REFUSED):
-                raise StoreError(f"host {echo(host)}: {cause}") from None
-            raise
-        return _text(state)
-
-    async def host_known(self, host: str) -> bool:
-        """True if the frontier has a record of this politeness key (found by admission,
-        or made by an operator's control). Records are never removed."""
-        if not _encodable(host):
-            return False
-        async with redis_boundary("host info"):
-            return bool(await self.redis.exists(self.keys.part_for(host).host(host)))
-
-    async def controlled_hosts(self, which: str | None = None) -> list[dict[str, Any]]:
-        """The hosts under operator control (paused, blocked, boosted or delayed), by name;
-        ``which`` (one of those four words) keeps the hosts in that state."""
-        async with redis_boundary("host list"):
-            members = await asyncio.gather(
-                *(self.redis.smembers(pk.controlled) for pk in self.keys.parts))
-            hosts = sorted(_text(h) for row in members for h in row)
-            rows = await asyncio.gather(*(self._control_row(h) for h in hosts))
-        return [r for r in rows if which is None or _in_control_state(r, which)]
-
-    async def _control_row(self, host: str) -> dict[str, Any]:
-        pk = self.keys.part_for(host)
-        state, boost, delay, held = await self.redis.hmget(
-            pk.host(host), "state", "boost", "delay_ms", "held")
-        queued = await self.redis.zcard(pk.hot(host)) + await self.redis.llen(pk.cold(host))
-        due = await self.redis.zscore(pk.due, host)
-        return {"host": host, "state": _text(state) if state is not None else None,
-                "boost": float(boost or 1), "delay_s": int(delay or 0) / 1000,
-                "queued": queued, "held": int(held or 0),
-                "due_ms": None if due is None else int(due)}
-
     # -- reading ---------------------------------------------------------------------------
 
     async def counts(self) -> Counts:
@@ -716,87 +511,6 @@ class FrontierStore:
                 name = k.decode() if isinstance(k, bytes) else k
                 out.reasons[name] = out.reasons.get(name, 0) + int(v)
         return out
-
-    async def host_info(self, host: str) -> dict[str, Any]:
-        """The stored fields of one politeness key plus its queue length and schedule."""
-        pk = self.keys.part_for(host)
-        async with redis_boundary("host info"):
-            fields = await self.redis.hgetall(pk.host(host))
-            hot = await self.redis.zcard(pk.hot(host))
-            cold = await self.redis.llen(pk.cold(host))
-            due = await self.redis.zscore(pk.due, host)
-            ready = await self.redis.zscore(pk.ready, host)
-        info: dict[str, Any] = {
-            (k.decode() if isinstance(k, bytes) else k): (v.decode() if isinstance(v, bytes) else v)
-            for k, v in fields.items()
-        }
-        info.update(queued=hot + cold, due_ms=due, ready_priority=ready)
-        return info
-
-    async def url_facts(self, url: str, fingerprint: int, host: str) -> dict[str, Any]:
-        """Everything stored about one canonical URL and its politeness key (for explain).
-
-        Reads only: URL-seen bucket, hot window (score and rank), cold list (position),
-        leases, attempts, dead letters, the host hash, its linking-hosts count and the
-        partition's schedule sets. Per-URL ended states are not stored.
-        """
-        pk = self.keys.part_for(host)
-        r = self.redis
-        out: dict[str, Any] = {"partition": pk.index}
-        async with redis_boundary("explain"):
-            out["seen"] = bool(await r.sismember(pk.seen(self.bucket_of(fingerprint)), fingerprint))
-            out["hot_score"] = await r.zscore(pk.hot(host), url)
-            out["hot_rank"] = await r.zrevrank(pk.hot(host), url)
-            out["hot_size"] = await r.zcard(pk.hot(host))
-            out["cold_size"] = await r.llen(pk.cold(host))
-            out["cold_position"], out["cold_score"] = await self._find_cold(pk.cold(host), url)
-            out["lease"] = None
-            for member, expiry in await r.zrange(pk.leases, 0, -1, withscores=True):
-                text = member.decode() if isinstance(member, bytes) else member
-                if text.rsplit("\n", 1)[-1] == url:
-                    out["lease"] = Lease.from_member(text, int(expiry))
-            attempts = await r.hget(pk.attempts, url)
-            out["attempts"] = int(attempts) if attempts is not None else 0
-            dead = await r.hget(pk.dead, url)
-            out["dead_reason"] = dead.decode() if isinstance(dead, bytes) else dead
-            fields = await r.hgetall(pk.host(host))
-            out["host"] = {_text(k): _text(v) for k, v in fields.items()}
-            out["linking_hosts"] = int(await r.pfcount(pk.linking_hosts(host)))
-            out["spam"] = await self._spam_counts(pk, host)
-            out["due_ms"] = await r.zscore(pk.due, host)
-            out["ready_priority"] = await r.zscore(pk.ready, host)
-            out["ready_rank"] = await r.zrevrank(pk.ready, host)
-            out["ready_size"] = await self.set_size(pk.ready)
-            out["due_size"] = await self.set_size(pk.due)
-            out["claimed_until_ms"] = await r.zscore(pk.claims, host)
-            prio = await r.hget(pk.prio, host)
-            out["priority"] = float(prio) if prio is not None else None
-        return out
-
-    async def _spam_counts(self, pk: PartitionKeys, host: str) -> dict[str, int]:
-        """The link counts behind a host's link-spam signals (HyperLogLog estimates):
-        trusted linking hosts, out-linked hosts, reciprocal hosts (linking and linked) and
-        trusted one-way linking hosts (trusted, not linked back)."""
-        r = self.redis
-        linking, out, trusted = pk.linking_hosts(host), pk.out_hosts(host), pk.trusted_hosts(host)
-        ins, outs, good = [int(await r.pfcount(k)) for k in (linking, out, trusted)]
-        both = int(await r.pfcount(linking, out))
-        return {"trusted_linking_hosts": good, "out_hosts": outs,
-                "reciprocal_hosts": max(0, ins + outs - both),
-                "trusted_one_way": max(0, int(await r.pfcount(trusted, out)) - outs)}
-
-    async def _find_cold(self, key: str, url: str) -> tuple[int | None, int | None]:
-        """(0-based position, score) of ``url`` in a cold list, or (None, None)."""
-        suffix = " " + url
-        for start in range(0, COLD_SCAN_LIMIT, COLD_SCAN_CHUNK):
-            chunk = await self.redis.lrange(key, start, start + COLD_SCAN_CHUNK - 1)
-            for i, raw in enumerate(chunk):
-                entry = _text(raw)
-                if entry.endswith(suffix) and " " not in entry[: len(entry) - len(suffix)]:
-                    return start + i, int(float(entry[: len(entry) - len(suffix)]))
-            if len(chunk) < COLD_SCAN_CHUNK:
-                break
-        return None, None
 
     async def take_ended(self, most: int = ENDED_BATCH) -> list[tuple[str, str, str]]:
         """Take up to ``most`` entries of each partition's ended journal: (outcome, reason,

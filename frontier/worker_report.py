@@ -29,9 +29,10 @@ import orjson
 from frontier.exceptions import StoreError, StoreUnavailable
 from frontier.keys import Keys
 from frontier.metrics import WorkerMetrics
+from frontier.redis_boundary import redis_boundary
 from frontier.robots import RobotsFetchResult
 from frontier.robots_rules import STATE_DISALLOW_ALL, state_for_status
-from frontier.store import FrontierStore, redis_boundary
+from frontier.store import FrontierStore
 
 log = logging.getLogger(__name__)
 

@@ -14,7 +14,8 @@ from redis.asyncio.cluster import RedisCluster as AsyncRedisCluster
 
 from frontier.redis_client import connect
 from frontier.settings import JobSettings
-from frontier.store import FrontierStore, redis_tuning
+from frontier.store import FrontierStore
+from frontier.store_tuning import redis_tuning
 from tests.servers import RedisCluster, RedisServer
 
 TUNING = redis_tuning(JobSettings())

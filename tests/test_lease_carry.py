@@ -18,7 +18,8 @@ import pytest
 
 from frontier.admission import Admission
 from frontier.model import Candidate, Completion, Lease, Outcome
-from frontier.store import FrontierStore, _text
+from frontier.redis_boundary import reply_text
+from frontier.store import FrontierStore
 from frontier.urls import Scope
 from tests.conftest import Clock, StoreFactory
 
@@ -47,7 +48,8 @@ async def best_queued(store: FrontierStore, host: str) -> float | None:
     """The best score the host queues, read from its queue (hot window and cold list)."""
     pk = store.keys.part_for(host)
     scores = [s for _, s in await store.redis.zrange(pk.hot(host), 0, -1, withscores=True)]
-    scores += [float(_text(item).split(" ", 1)[0]) for item in await store.redis.lrange(pk.cold(host), 0, -1)]
+    scores += [float(reply_text(item).split(" ", 1)[0])
+               for item in await store.redis.lrange(pk.cold(host), 0, -1)]
     return max(scores) if scores else None
 
 

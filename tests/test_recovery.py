@@ -10,7 +10,8 @@ import pytest
 import frontier.store
 from frontier.exceptions import StoreUnavailable
 from frontier.model import Candidate, Completion, Lease, Outcome
-from frontier.store import FrontierStore, redis_boundary
+from frontier.redis_boundary import redis_boundary
+from frontier.store import FrontierStore
 from tests.conftest import Clock, StoreFactory
 from tests.test_priority import admission
 

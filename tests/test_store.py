@@ -15,9 +15,10 @@ from frontier.exceptions import ConfigError, LeaseNotHeld, StoreError
 from frontier.job import load_settings as load_job_settings
 from frontier.job import open_job
 from frontier.model import Candidate, Completion, Lease, Outcome
+from frontier.redis_boundary import reply_text
 from frontier.scripts import run_many
 from frontier.settings import CLUSTER_PARTITIONS, SINGLE_SERVER_PARTITIONS, load_settings
-from frontier.store import FrontierStore, _text
+from frontier.store import FrontierStore
 from frontier.urls import Scope
 from tests.conftest import Clock, StoreFactory
 
@@ -325,9 +326,10 @@ async def test_take_passes_over_hosts_taken_since_the_pick(make_store: StoreFact
     expires = t + 60_000
     hosts = [*shown[:3], shown[2], *shown[3:]]
     (members,) = await run_many(store.redis, [store._take_call(0, hosts, 3, expires, t)])
-    assert [Lease.from_member(_text(m), expires).host for m in members] == shown[2:5]
+    assert [Lease.from_member(reply_text(m), expires).host for m in members] == shown[2:5]
     pk = store.keys.part(0)
-    assert [_text(h) for h in await store.redis.zrangebyscore(pk.ready, "(-inf", "+inf")] == [shown[5]]
+    ready = await store.redis.zrangebyscore(pk.ready, "(-inf", "+inf")
+    assert [reply_text(h) for h in ready] == [shown[5]]
     assert (await store.counts()).leased == 5
 
 

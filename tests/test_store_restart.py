@@ -20,7 +20,8 @@ from frontier.exceptions import StoreUnavailable
 from frontier.model import Candidate, Completion, Outcome
 from frontier.redis_client import connect
 from frontier.settings import JobSettings
-from frontier.store import FrontierStore, redis_tuning
+from frontier.store import FrontierStore
+from frontier.store_tuning import redis_tuning
 from frontier.urls import Scope
 from tests.servers import RedisServer
 

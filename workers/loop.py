@@ -33,12 +33,13 @@ from frontier.metrics import WorkerMetrics
 from frontier.mirrors import MirrorHosts
 from frontier.model import Candidate, Completion, Lease, Outcome
 from frontier.priority import distribute, url_host
+from frontier.redis_boundary import redis_boundary
 from frontier.robots import RobotsCache, RobotsFetchResult, robots_url
 from frontier.robots_rules import RobotsRules
 from frontier.settings import JobSettings
 from frontier.simhash import NearDuplicateIndex, hamming, simhash64
 from frontier.sitemaps import SitemapReader, sitemap_url, split_sitemap
-from frontier.store import FrontierStore, redis_boundary
+from frontier.store import FrontierStore
 from frontier.revisit_fetch import WorkerRevisits
 from frontier.urls import canonicalize
 from frontier.worker_report import WorkerReport

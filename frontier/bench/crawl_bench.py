@@ -179,7 +179,7 @@ def main(pages: int = 10_000, seed: int = 5, profile: bool = False,
     from frontier.embedded import RedisProcess
     from frontier.process import run
     from frontier.settings import JobSettings
-    from frontier.store import redis_tuning
+    from frontier.store_tuning import redis_tuning
 
     proc, port, seeds = start_web(int(pages * 1.2), seed)
     by_count: dict[int, tuple[list[float], list[float]]] = {n: ([], []) for n in processes}

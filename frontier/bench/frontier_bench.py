@@ -30,7 +30,8 @@ from frontier.embedded import EmbeddedRedis
 from frontier.redis_client import connect
 from frontier.model import Candidate, Completion, Outcome
 from frontier.settings import JobSettings
-from frontier.store import FrontierStore, redis_tuning
+from frontier.store import FrontierStore
+from frontier.store_tuning import redis_tuning
 from frontier.urls import Scope
 
 WORDS = ("news", "item", "page", "story", "archive", "doc", "view", "topic", "post", "entry")

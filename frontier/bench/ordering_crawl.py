@@ -28,7 +28,8 @@ from frontier.model import Candidate, Completion, Lease, Outcome
 from frontier.priority import distribute
 from frontier.redis_client import connect
 from frontier.settings import JobSettings
-from frontier.store import FrontierStore, redis_tuning
+from frontier.store import FrontierStore
+from frontier.store_tuning import redis_tuning
 from synthweb.graph import SyntheticWeb
 from synthweb.model import Behaviour
 

@@ -26,7 +26,8 @@ from frontier.admission import Admission
 from frontier.embedded import LOOPBACK, find_server_binary, free_port
 from frontier.exceptions import ConfigError
 from frontier.redis_client import connect
-from frontier.store import FrontierStore, redis_tuning
+from frontier.store import FrontierStore
+from frontier.store_tuning import redis_tuning
 from frontier.urls import Scope
 
 START_TIMEOUT_S = 60.0  # a server under valgrind takes seconds to answer its first ping

@@ -41,7 +41,8 @@ from frontier.redis_client import connect
 from frontier.revisit import freshness, optimal_allocation
 from frontier.revisit_store import Observation, RevisitStore
 from frontier.settings import JobSettings
-from frontier.store import FrontierStore, redis_tuning
+from frontier.store import FrontierStore
+from frontier.store_tuning import redis_tuning
 from synthweb.changing import DAY_S, START_EPOCH, ChangingPage, ChangingWeb
 
 UA = "sluice-bench/0.1 (+http://operator.test/contact)"
