@@ -1,5 +1,6 @@
 """A Redis Cluster of a few masters on loopback, started from the redis-server binary:
-for ``sluice bench frontier --cluster`` and for the tests (tests/servers.py).
+for ``sluice bench frontier --cluster`` and for the tests (tests/servers.py; with
+replicas, tests/faultkit.py).
 
     with LoopbackCluster(folder, config={...}) as cluster:
         client = connect("redis+cluster://" + cluster.address)
@@ -15,6 +16,7 @@ import time
 from collections.abc import Mapping
 from pathlib import Path
 from types import TracebackType
+from typing import Self
 
 import redis
 from redis.backoff import NoBackoff
@@ -72,13 +74,27 @@ def find_cli_binary(server_binary: str) -> str:
     raise RedisLaunchError("no redis-cli or valkey-cli found to create the cluster")
 
 
-def cluster_info(port: int) -> dict[str, str]:
+def cluster_info(port: int, *, timeout_s: float | None = None) -> dict[str, str]:
     """``CLUSTER INFO`` of the node on ``port`` (empty when it does not answer)."""
+    return _info_fields(port, ("CLUSTER", "INFO"), timeout_s)
+
+
+def replication_info(port: int, *, timeout_s: float | None = None) -> dict[str, str]:
+    """``INFO replication`` of the node on ``port``: its role, and a master's
+    ``connected_slaves`` or a replica's ``master_port`` and ``master_link_status`` (empty
+    when it does not answer)."""
+    return _info_fields(port, ("INFO", "replication"), timeout_s)
+
+
+def _info_fields(port: int, command: tuple[str, ...], timeout_s: float | None) -> dict[str, str]:
+    """A ``field:value`` reply of the node on ``port`` as text (``timeout_s``: how long a
+    reply may take; None waits)."""
     client = redis.Redis(
-        host=LOOPBACK, port=port, decode_responses=True, retry=Retry(NoBackoff(), 0)
+        host=LOOPBACK, port=port, decode_responses=True, retry=Retry(NoBackoff(), 0),
+        socket_timeout=timeout_s,
     )
     try:
-        raw = client.execute_command("CLUSTER", "INFO")
+        raw = client.execute_command(*command)
     except redis.RedisError:
         return {}
     finally:
@@ -91,7 +107,10 @@ def cluster_info(port: int) -> dict[str, str]:
 
 class LoopbackCluster:
     """``masters`` cluster-mode masters with all 16384 slots assigned, on loopback, their
-    data in ``directory``."""
+    data in ``directory``; with ``replicas``, that many replicas of each master as well
+    (``redis-cli --cluster create --cluster-replicas``), started once every one is synced."""
+
+    READY_TIMEOUT_S = CLUSTER_READY_TIMEOUT_S  # how long start() waits for cluster_state:ok
 
     def __init__(
         self,
@@ -100,11 +119,13 @@ class LoopbackCluster:
         config: Mapping[str, str] | None = None,
         appendonly: bool = True,
         masters: int = CLUSTER_MASTERS,
+        replicas: int = 0,
     ) -> None:
         self.dir = Path(directory)
         self._config = dict(config or {})
         self._appendonly = appendonly
         self._masters = masters
+        self._replicas = replicas
         self.nodes: list[RedisProcess] = []
 
     @property
@@ -120,11 +141,11 @@ class LoopbackCluster:
     def url(self) -> str:
         return f"redis://{LOOPBACK}:{self.ports[0]}"
 
-    def start(self) -> LoopbackCluster:
+    def start(self) -> Self:
         binary = find_server_binary()
         taken: set[int] = set()
         try:
-            for index in range(self._masters):
+            for index in range(self._masters * (1 + self._replicas)):
                 port = cluster_port(taken)
                 taken.add(port)
                 node = RedisProcess(
@@ -151,7 +172,8 @@ class LoopbackCluster:
     def _create(self, cli: str) -> None:
         addresses = [f"{LOOPBACK}:{port}" for port in self.ports]
         result = subprocess.run(
-            [cli, "--cluster", "create", *addresses, "--cluster-replicas", "0", "--cluster-yes"],
+            [cli, "--cluster", "create", *addresses,
+             "--cluster-replicas", str(self._replicas), "--cluster-yes"],
             capture_output=True,
             text=True,
             timeout=CLUSTER_CREATE_TIMEOUT_S,
@@ -163,26 +185,38 @@ class LoopbackCluster:
             )
 
     def _wait_ok(self) -> None:
-        deadline = time.monotonic() + CLUSTER_READY_TIMEOUT_S
+        deadline = time.monotonic() + self.READY_TIMEOUT_S
         while True:
             infos = [cluster_info(port) for port in self.ports]
             if all(
                 info.get("cluster_state") == "ok"
                 and info.get("cluster_slots_assigned") == str(CLUSTER_SLOTS)
-                and info.get("cluster_known_nodes") == str(self._masters)
+                and info.get("cluster_known_nodes") == str(len(self.nodes))
                 for info in infos
-            ):
+            ) and self._replicas_synced():
                 return
             if time.monotonic() >= deadline:
                 raise RedisLaunchError(f"cluster did not reach cluster_state:ok: {infos}")
             time.sleep(POLL_INTERVAL_S)
+
+    def _replicas_synced(self) -> bool:
+        """Every master has its replicas attached and every replica has synced with its
+        master (``master_link_status:up``); true at once without replicas."""
+        if not self._replicas:
+            return True
+        roles = [replication_info(port) for port in self.ports]
+        masters = [r for r in roles if r.get("role") == "master"]
+        return (len(masters) == self._masters
+                and all(r.get("connected_slaves") == str(self._replicas) for r in masters)
+                and all(r.get("master_link_status") == "up"
+                        for r in roles if r.get("role") == "slave"))
 
     def stop(self) -> None:
         for node in self.nodes:
             node.stop()
         self.nodes = []
 
-    def __enter__(self) -> LoopbackCluster:
+    def __enter__(self) -> Self:
         return self.start()
 
     def __exit__(self, exc_type: type[BaseException] | None, exc: BaseException | None,

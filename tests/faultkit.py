@@ -28,18 +28,17 @@ from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
 
-import redis
-from redis.backoff import NoBackoff
-from redis.retry import Retry
 from warcio.archiveiterator import ArchiveIterator
 
-from frontier.embedded import LOOPBACK, RedisProcess, find_server_binary
+from frontier.embedded import LOOPBACK, RedisProcess
 from frontier.exceptions import RedisLaunchError
+from frontier.local_cluster import (
+    CLUSTER_SLOTS, LoopbackCluster, cluster_info, replication_info,
+)
 from frontier.robots_rules import product_token
 from frontier.settings import JobSettings
 from frontier.store import redis_tuning
 from frontier.urls import canonicalize
-from tests.servers import CLUSTER_CONFIG_FILE, CLUSTER_SLOTS, cluster_port, find_cli_binary
 from synthweb.graph import SyntheticWeb, WebSpec
 from synthweb.server import RequestRecord, SyntheticServer
 
@@ -349,92 +348,38 @@ class Crew:
 # -- a Redis Cluster with replicas -----------------------------------------------------------
 
 
-def _info(port: int, section: str) -> dict[str, str]:
-    client = redis.Redis(host=LOOPBACK, port=port, decode_responses=True,
-                         retry=Retry(NoBackoff(), 0), socket_timeout=2.0)
-    try:
-        if section == "cluster":
-            raw = client.execute_command("CLUSTER", "INFO")
-        else:
-            raw = client.execute_command("INFO", section)
-    except redis.RedisError:
-        return {}
-    finally:
-        client.close()
-    if isinstance(raw, dict):
-        return {str(k): str(v) for k, v in raw.items()}
-    return dict(line.split(":", 1) for line in str(raw).splitlines() if ":" in line)
+INFO_TIMEOUT_S = 2.0  # a node's INFO read during a failover: how long it may take
 
 
-class ReplicatedCluster:
-    """Three masters and three replicas on loopback, a short node timeout so that a
-    replica takes over a dead master within seconds (Redis Cluster spec: failover)."""
+class ReplicatedCluster(LoopbackCluster):
+    """Three masters and three replicas on loopback (frontier/local_cluster.py), a short
+    node timeout so that a replica takes over a dead master within seconds (Redis Cluster
+    spec: failover)."""
 
     NODE_TIMEOUT_MS = 1000
     READY_TIMEOUT_S = 60.0
 
     def __init__(self, directory: Path, masters: int = 3) -> None:
-        self.dir = directory
-        self.masters = masters
-        self.nodes: list[RedisProcess] = []
+        super().__init__(directory, masters=masters, replicas=1, config=server_tuning({
+            "cluster-node-timeout": str(self.NODE_TIMEOUT_MS),
+            "cluster-replica-validity-factor": "0",
+        }))
 
     @property
     def url(self) -> str:
         return f"redis+cluster://{LOOPBACK}:{self.nodes[0].port}"
 
-    def __enter__(self) -> ReplicatedCluster:
-        binary = find_server_binary()
-        taken: set[int] = set()
-        try:
-            for index in range(self.masters * 2):
-                port = cluster_port(taken)
-                taken.add(port)
-                node = RedisProcess(self.dir / f"node{index}", port=port, binary=binary,
-                                    extra_config=server_tuning({
-                                        "cluster-enabled": "yes",
-                                        "cluster-config-file": CLUSTER_CONFIG_FILE,
-                                        "cluster-node-timeout": str(self.NODE_TIMEOUT_MS),
-                                        "cluster-replica-validity-factor": "0",
-                                    }))
-                self.nodes.append(node)
-                node.start()
-            addresses = [f"{LOOPBACK}:{n.port}" for n in self.nodes]
-            done = subprocess.run(
-                [find_cli_binary(binary), "--cluster", "create", *addresses,
-                 "--cluster-replicas", "1", "--cluster-yes"],
-                capture_output=True, text=True, timeout=60, check=False)
-            if done.returncode != 0:
-                raise RedisLaunchError(f"cluster create failed:\n{done.stdout}\n{done.stderr}")
-            self.wait_healthy(self.nodes, replicas=True)
-        except BaseException:
-            self.__exit__()
-            raise
-        return self
-
-    def __exit__(self, *exc: object) -> None:
-        for node in self.nodes:
-            node.stop()
-
     def masters_now(self) -> list[RedisProcess]:
         return [n for n in self.nodes if n.is_running()
-                and _info(n.port, "replication").get("role") == "master"]
+                and _replication(n.port).get("role") == "master"]
 
-    def wait_healthy(self, live: list[RedisProcess], *, replicas: bool) -> None:
-        """Every live node sees cluster_state:ok and all slots served; with ``replicas``
-        every master also has its replica attached."""
+    def wait_serving(self, live: list[RedisProcess]) -> None:
+        """Every live node sees cluster_state:ok and all slots served."""
         deadline = time.monotonic() + self.READY_TIMEOUT_S
         while True:
-            infos = [_info(n.port, "cluster") for n in live]
-            ok = all(i.get("cluster_state") == "ok"
-                     and i.get("cluster_slots_ok") == str(CLUSTER_SLOTS) for i in infos)
-            if ok and replicas:
-                roles = [_info(n.port, "replication") for n in live]
-                masters = [r for r in roles if r.get("role") == "master"]
-                ok = (len(masters) == self.masters
-                      and all(r.get("connected_slaves") == "1" for r in masters)
-                      and all(r.get("master_link_status") == "up"  # synced, not waiting
-                              for r in roles if r.get("role") == "slave"))
-            if ok:
+            infos = [cluster_info(n.port, timeout_s=INFO_TIMEOUT_S) for n in live]
+            if all(i.get("cluster_state") == "ok"
+                   and i.get("cluster_slots_ok") == str(CLUSTER_SLOTS) for i in infos):
                 return
             if time.monotonic() > deadline:
                 raise RedisLaunchError(f"cluster not healthy: {infos}")
@@ -445,15 +390,19 @@ class ReplicatedCluster:
         promoted and every live node serves all slots again; returns the killed node."""
         victim = next(n for n in self.masters_now() if n is not spare)
         replica = next(n for n in self.nodes
-                       if _info(n.port, "replication").get("master_port") == str(victim.port))
+                       if _replication(n.port).get("master_port") == str(victim.port))
         victim.kill()
         deadline = time.monotonic() + self.READY_TIMEOUT_S
-        while _info(replica.port, "replication").get("role") != "master":
+        while _replication(replica.port).get("role") != "master":
             if time.monotonic() > deadline:
                 raise RedisLaunchError(f"replica {replica.port} of {victim.port} not promoted")
             time.sleep(0.05)
-        self.wait_healthy([n for n in self.nodes if n.is_running()], replicas=False)
+        self.wait_serving([n for n in self.nodes if n.is_running()])
         return victim
+
+
+def _replication(port: int) -> dict[str, str]:
+    return replication_info(port, timeout_s=INFO_TIMEOUT_S)
 
 
 # -- the audit ---------------------------------------------------------------------------
