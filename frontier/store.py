@@ -30,8 +30,6 @@ from frontier.settings import JobSettings
 from frontier.store_controls import HostControls
 from frontier.store_facts import FrontierFacts
 from frontier.store_tuning import ServerTuning, seen_buckets
-# tests/faultkit.py imports redis_tuning from here (its home is frontier/store_tuning.py)
-from frontier.store_tuning import redis_tuning  # noqa: F401
 
 # a host's trust is split over at least this many out-linked hosts: its first pages show
 # only a few of the hosts it links to; the seeds' hosts on the adversarial webs link to 35

@@ -37,7 +37,7 @@ from frontier.local_cluster import (
 )
 from frontier.robots_rules import product_token
 from frontier.settings import JobSettings
-from frontier.store import redis_tuning
+from frontier.store_tuning import redis_tuning
 from frontier.urls import canonicalize
 from synthweb.graph import SyntheticWeb, WebSpec
 from synthweb.server import RequestRecord, SyntheticServer
