@@ -32,3 +32,7 @@ def test_the_command_prints_the_figures() -> None:
     assert result["server"].startswith("Redis server v=")
     assert result["redis_instructions_per_leased_and_completed_url"] > result[
         "redis_instructions_per_admitted_url"] > 0
+    # the append-only file formats every write a script makes: more work, never less
+    for key in ("redis_instructions_per_admitted_url",
+                "redis_instructions_per_leased_and_completed_url"):
+        assert result[f"{key}_with_append_only_file"] > result[key]
