@@ -118,9 +118,9 @@ class StatusBoard:
         self.record(fetched, reasons)
         if self.metrics is None:
             return
-        # the controls only: the metrics need no host records beyond those (the whole
-        # table is up to 5,000 HMGETs every hosts_every_s, in the crawl's own process);
-        # the page reads the whole table when it is asked for
+        # the controls only: the metrics need no other host records (the whole table
+        # would be up to 5,000 HMGETs a step, in the crawl's own process); the page
+        # reads the whole table when it is asked for
         table = await read_hosts(self.job.store, limit=0)
         workers = await read_workers(self.job.redis, self.job.store.keys)
         self.metrics.update_board(len(workers), table.known, table.control_counts)

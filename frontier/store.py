@@ -295,8 +295,8 @@ class FrontierStore(ServerTuning, HostControls, FrontierFacts):
                     (chosen if i < want else spare).setdefault(p, []).append(host)
                 expires = t + int(self.settings.lease.ttl_s * 1000)
                 got = await run_many(self.redis, [
-                    self._take_call(p, hosts + spare.get(p, [])[:stand_ins(len(hosts))], len(hosts),
-                                    expires, t)
+                    self._take_call(p, hosts + spare.get(p, [])[:stand_ins(len(hosts))],
+                                    len(hosts), expires, t)
                     for p, hosts in chosen.items()])
                 for members in got:
                     leases += [Lease.from_member(m.decode(), expires) for m in members]

@@ -24,7 +24,8 @@ from frontier.settings import JobSettings
 log = logging.getLogger("frontier.store")  # the name its log line has always had
 
 SKIPLIST_MARK_HEAD = "~sluice keeps this sorted set a skiplist~"
-HASH_LISTPACK_ENTRIES = 64  # above a host hash's fields (about 30 at most), below a partition's hosts
+# above a host hash's fields (about 30 at most), below a partition's hosts
+HASH_LISTPACK_ENTRIES = 64
 PARTITION_SKEW = 4.0  # room for partitions that hold big hosts (Zipf-sized sites)
 BUCKET_FILL = 0.75  # target fill of a seen bucket at the expected crawl size
 

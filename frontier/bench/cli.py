@@ -22,7 +22,8 @@ def add_bench_command(sub: argparse._SubParsersAction[argparse.ArgumentParser]) 
                    help="frontier: also run on a 3-master Redis Cluster on loopback")
     b.add_argument("--instructions", action="store_true",
                    help="frontier: count Redis's instructions per URL under valgrind "
-                   "without and with the append-only file (small sizes; the same on a busy machine)")
+                   "without and with the append-only file (small sizes; the same on a busy "
+                   "machine)")
     b.add_argument("--lease-urls", type=positive(int), metavar="N",
                    help="frontier: lease and complete at most N URLs (default: drain)")
     b.add_argument("--processes", type=_process_counts, default=(1,), metavar="N[,N...]",

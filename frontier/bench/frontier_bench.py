@@ -325,6 +325,7 @@ async def phases(client: Any, nodes: list[Any], settings: JobSettings, urls: int
     one = await drain_one_at_a_time(store, nodes, one_limit)
     loops = await drain_in_loops(store, limit_all - one["done"])
     done = one["done"] + loops["done"]
+    one_done = max(one["done"], 1)
     lease_total_s = time.perf_counter() - t1
     lease_py_cpu = time.process_time() - cpu1
     lease_redis_cpu = await redis_cpu_s(nodes) - redis1
@@ -351,8 +352,8 @@ async def phases(client: Any, nodes: list[Any], settings: JobSettings, urls: int
                                     "python": round(admit_py_cpu / urls * 1e6, 1)},
         "cpu_us_per_leased_and_completed_url": {
             "redis": round(lease_redis_cpu / max(done, 1) * 1e6, 1),
-            "redis_lease_one_at_a_time": round(one["lease_cpu"] / max(one["done"], 1) * 1e6, 1),
-            "redis_complete_one_at_a_time": round(one["complete_cpu"] / max(one["done"], 1) * 1e6, 1),
+            "redis_lease_one_at_a_time": round(one["lease_cpu"] / one_done * 1e6, 1),
+            "redis_complete_one_at_a_time": round(one["complete_cpu"] / one_done * 1e6, 1),
             "python": round(lease_py_cpu / max(done, 1) * 1e6, 1)},
         "redis_commands_per_admitted_url": round(admit_calls / urls, 2),
         "redis_commands_per_leased_and_completed_url": round(lease_calls / max(done, 1), 2),

@@ -161,9 +161,10 @@ end
 -- next time and priority are needed. `boost` (a number: the operator's boost x the trust
 -- factor) and `score` (text: its best queued score, nil when none) come from the caller;
 -- `next_ms` is text. The writes are gathered in `out` = {prio = {host, p, ...},
--- due = {ms, host, ...}, idle = {host, ...}, np =, nd =, ni = their lengths} and made by flush_released, a few calls for
--- a whole batch. Values go to Redis as text (see best_url). An unboosted priority is the
--- score as the reply gave it (the same text a number of at most 14 digits would give).
+-- due = {ms, host, ...}, idle = {host, ...}, and np, nd, ni: their lengths} and made by
+-- flush_released, a few calls for a whole batch. Values go to Redis as text (see
+-- best_url). An unboosted priority is the score as the reply gave it (the same text a
+-- number of at most 14 digits would give).
 local function schedule_released(out, host, score, boost, next_ms)
   if not score then
     local ni = out.ni + 1

@@ -87,7 +87,8 @@ for i = 0, n - 1 do
         end
         local member = id .. '\n' .. host .. '\n' .. score .. '\n' .. attempts .. '\n' .. signal
                        .. '\n' .. next .. ',' .. (f[10] or '') .. ',' .. (f[11] or '') .. ','
-                       .. (f[12] or '') .. ',' .. (f[9] or '') .. ',' .. (f[13] or '') .. '\n' .. url
+                       .. (f[12] or '') .. ',' .. (f[9] or '') .. ',' .. (f[13] or '')
+                       .. '\n' .. url
         nout = nout + 1
         held[2 * nout - 1], held[2 * nout] = ARGV[1], member
         out[nout] = member
