@@ -406,7 +406,7 @@ class NearDuplicateIndex:
             candidates = [flat[i * width:(i + 1) * width] for i in range(len(unsigned))]
         elif isinstance(self.redis, Redis):  # one script call: look up, then store
             found = await self._lookup_and_add(keys, unsigned)
-            candidates = [[set(f)] for f in found]
+            candidates = [[f] for f in found]
             stored_already = True
         else:  # a wrapped client: one SUNION per fingerprint, then the SADDs
             candidates = [[found] for found in await self._unions(keys)]
@@ -415,7 +415,7 @@ class NearDuplicateIndex:
         # index, so a fingerprint is compared only with those sharing a table key
         earlier_by_table: list[dict[int, list[int]]] = [{} for _ in self.tables]
         for i, (fp, values) in enumerate(zip(unsigned, table_values)):
-            stored = {to_unsigned(int(m)) for m in set().union(*candidates[i])}
+            stored = {to_unsigned(int(m)) for bucket in candidates[i] for m in bucket}
             near = {e for table, value in zip(earlier_by_table, values)
                     for e in table.get(value, ())}
             ranked = sorted((hamming(fp, c), c) for c in stored | near)
