@@ -1,6 +1,6 @@
-"""Sample exchanges and fetch-log entries written with workers.archive, and warcio's
-readers to check what was written (tests/test_archive.py, tests/test_fetch_log.py,
-tests/test_archive_faults.py)."""
+"""Sample exchanges and fetch-log entries written with workers.archive and
+workers.fetch_log, and warcio's readers to check what was written (tests/test_archive.py,
+tests/test_fetch_log.py, tests/test_archive_faults.py)."""
 
 from __future__ import annotations
 
@@ -13,7 +13,8 @@ from typing import Any
 
 from warcio.archiveiterator import ArchiveIterator
 
-from workers.archive import FetchEntry, RecordRef, WarcArchive
+from workers.archive import RecordRef, WarcArchive
+from workers.fetch_log import FetchEntry
 
 FETCHED = datetime(2031, 5, 6, 7, 8, 9, 250_000, tzinfo=UTC)
 FILE_CLOCK = datetime(2031, 5, 6, 7, 0, 0, tzinfo=UTC)

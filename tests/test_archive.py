@@ -29,7 +29,7 @@ from warcio.archiveiterator import ArchiveIterator
 from warcio.statusandheaders import StatusAndHeaders
 from warcio.warcwriter import WARCWriter
 
-import workers.archive as archive_module
+import workers.warc_records as records_module
 from tests.archivekit import (
     BODIES,
     FETCHED,
@@ -310,7 +310,7 @@ def test_record_ids_stay_unique_across_threads_and_forks() -> None:
 
     def draw(into: list[str]) -> None:
         for _ in range(5000):
-            into.extend(archive_module._record_ids(3))
+            into.extend(records_module._record_ids(3))
 
     try:
         threads = [threading.Thread(target=draw, args=(ids,)) for ids in drawn]
@@ -320,17 +320,17 @@ def test_record_ids_stay_unique_across_threads_and_forks() -> None:
             thread.join()
     finally:
         sys.setswitchinterval(sys_interval)
-    archive_module._record_ids(1)  # the pool now holds bytes a child would inherit
+    records_module._record_ids(1)  # the pool now holds bytes a child would inherit
     reader, writer = os.pipe()
     child = os.fork()
     if child == 0:  # pragma: no cover - runs in the child
-        os.write(writer, "\n".join(archive_module._record_ids(3)).encode())
+        os.write(writer, "\n".join(records_module._record_ids(3)).encode())
         os._exit(0)
     os.close(writer)
     os.waitpid(child, 0)
     with os.fdopen(reader) as pipe:
         in_child = pipe.read().split("\n")
-    ids = [i for batch in drawn for i in batch] + archive_module._record_ids(3) + in_child
+    ids = [i for batch in drawn for i in batch] + records_module._record_ids(3) + in_child
     assert len(ids) == 4 * 5000 * 3 + 6 and len(set(ids)) == len(ids)
 
 

@@ -35,7 +35,9 @@ from tests.archivekit import (
     read_lines,
     write_sample,
 )
-from workers.archive import FetchLog, RecordRef
+from workers.archive import RecordRef
+from workers.disk_writes import disk_fault
+from workers.fetch_log import FetchLog
 
 
 # --- disk faults ------------------------------------------------------------------------
@@ -52,7 +54,7 @@ DISK_ERRNOS = ["ENOSPC", "EDQUOT", "EROFS", "EIO", "EFBIG", "ENOENT", "ESTALE", 
 def test_disk_errors_become_one_line_disk_faults(name: str) -> None:
     code = getattr(errno, name)
     path = Path("/data/out\nnext/warc/x\udcff.warc.gz")
-    fault = archive_module.disk_fault(OSError(code, os.strerror(code)), path)
+    fault = disk_fault(OSError(code, os.strerror(code)), path)
     assert isinstance(fault, DiskFault)
     message = str(fault)
     assert len(message.splitlines()) == 1
@@ -62,8 +64,8 @@ def test_disk_errors_become_one_line_disk_faults(name: str) -> None:
 
 
 def test_other_errors_are_not_disk_faults() -> None:
-    assert archive_module.disk_fault(OSError(errno.EBADF, "bad"), Path("x")) is None
-    assert archive_module.disk_fault(ValueError("x"), Path("x")) is None
+    assert disk_fault(OSError(errno.EBADF, "bad"), Path("x")) is None
+    assert disk_fault(ValueError("x"), Path("x")) is None
 
 
 @contextlib.contextmanager

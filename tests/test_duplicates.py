@@ -29,7 +29,8 @@ from frontier.keys import Keys
 from frontier.settings import load_settings
 from tests.loopback import start_site
 from tests.servers import RedisServer
-from workers.archive import WarcArchive, payload_digest
+from workers.archive import WarcArchive
+from workers.warc_records import payload_digest
 
 UA = "sluice-test/0.1 (+http://operator.test/contact)"
 PAGES = 4

@@ -110,7 +110,7 @@ async def test_an_ended_url_shows_its_outcome_from_the_fetch_log(
         make_store: StoreFactory, tmp_path: Path) -> None:
     from datetime import UTC, datetime
 
-    from workers.archive import FetchEntry, FetchLog
+    from workers.fetch_log import FetchEntry, FetchLog
 
     store = make_store(politeness=NO_DELAY)
     await admission(store).admit([Candidate("http://e.test/a"), Candidate("http://f.test/b")])

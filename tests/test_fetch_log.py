@@ -1,4 +1,4 @@
-"""Tests for workers.archive's fetch log (JSON lines, one a fetch): its fields, lines
+"""Tests for workers.fetch_log, the fetch log (JSON lines, one a fetch): its fields, lines
 reaching the file at each flush (fsynced), several workers appending to one file, and
 a torn last line cut back on open."""
 
@@ -13,9 +13,9 @@ import pytest
 from hypothesis import given
 from hypothesis import strategies as st
 
-import workers.archive as archive_module
+import workers.fetch_log as fetch_log_module
 from tests.archivekit import entry, read_lines
-from workers.archive import FetchLog
+from workers.fetch_log import FetchLog
 
 
 def test_fetch_log_lines_and_fields(tmp_path: Path) -> None:
@@ -151,4 +151,4 @@ def test_opening_the_fetch_log_cuts_a_torn_last_line(cut: int) -> None:
         with FetchLog(Path(tmp)) as log:
             log.write(entry(99))
         assert [line["depth"] for line in read_lines(path)] == [*range(kept), 99]
-        assert archive_module.repair_fetch_log(path) == path.stat().st_size  # whole already
+        assert fetch_log_module.repair_fetch_log(path) == path.stat().st_size  # whole already

@@ -29,14 +29,9 @@ from warcio.archiveiterator import ArchiveIterator
 from warcio.checker import Checker
 from warcio.recordloader import ArcWarcRecordLoader
 
-from workers.archive import (
-    FetchEntry,
-    FetchLog,
-    RecordRef,
-    WarcArchive,
-    repair_warc,
-    rewrite_response_headers,
-)
+from workers.archive import RecordRef, WarcArchive, repair_warc
+from workers.fetch_log import FetchEntry, FetchLog
+from workers.warc_records import rewrite_response_headers
 
 FILE_CLOCK = datetime(2031, 5, 6, 7, 0, 0, tzinfo=UTC)
 # Characters that have broken writers: line breaks, NUL, separators, escapes, quotes,

@@ -43,9 +43,10 @@ from frontier.store import FrontierStore
 from frontier.revisit_fetch import WorkerRevisits
 from frontier.urls import canonicalize
 from frontier.worker_report import WorkerReport
-from workers.archive import (
-    FetchEntry, FetchLog, OutLink, WarcArchive, new_record_id, payload_digest, warc_date)
-from workers.archive import NOT_MODIFIED_PROFILE
+from workers.archive import WarcArchive
+from workers.fetch_log import FetchEntry, FetchLog
+from workers.warc_records import (
+    NOT_MODIFIED_PROFILE, OutLink, new_record_id, payload_digest, warc_date)
 from workers.fetcher import Fetcher, Response
 from workers.offload import PagePool
 from workers.parser import ParsedPage, looks_binary, parse_html
