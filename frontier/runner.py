@@ -7,7 +7,7 @@ process or in worker processes of their own.
 Worker processes are ``sluice worker`` children. They share one job (its settings, page
 budget and frontier live in Redis) and one output folder: each writes WARC files of
 its own (the process id is in the file name) and appends to the one fetch log, whose
-appends hold an exclusive ``flock`` (workers/archive.py), so the log stays one file of
+appends hold an exclusive ``flock`` (workers/fetch_log.py), so the log stays one file of
 whole lines. A child that dies (``kill -9``, a bug) loses nothing: its leases expire
 after ``lease.ttl_s`` and the reaper queues them again, while the other children go on.
 A stop signal reaches the parent only (each child runs in a process group of its own)
